@@ -1,0 +1,1 @@
+"""Luigi tasks, product I/O and the command line of lightledger."""
