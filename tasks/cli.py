@@ -1,7 +1,180 @@
-"""Command line of lightledger."""
+"""The ``lightledger`` command line.
+
+``lightledger reduce VISIT.toml``
+    run the chain of stages on Luigi's local scheduler (or a central one with
+    ``--scheduler-host``) and print the final light-curve product's path last;
+``lightledger simulate SCENARIO OUTDIR``
+    render a fictional visit with known truth;
+``lightledger demo [DIR]``
+    render a small scan visit, reduce it and compare with the truth;
+``lightledger audit PATH``
+    verify checksums and lineage of one product or a whole notebook;
+``lightledger compare A B``
+    differences between two entries or two products.
+
+A user's mistake (a missing file, a bad key, a malformed product) prints one
+line ``lightledger: error: ...`` on standard error and exits with status 2;
+a failed stage exits with status 1.
+"""
+
+import argparse
+import os
 import sys
+import time
+from pathlib import Path
+
+from lightledger.pipeline import __version__
+from lightledger.pipeline.errors import LightledgerError
+from lightledger.pipeline.parameters import STAGE_ORDER, parse_assignment
+
+__all__ = ["main"]
+
+
+class Progress:
+    """A terminal progress bar per stage step, written to standard error."""
+
+    def __init__(self, stream=None):
+        self.stream = stream or sys.stderr
+        self.tty = self.stream.isatty()
+        self.last = {}
+
+    def __call__(self, stage, what, done, total):
+        key = (stage, what)
+        now = time.monotonic()
+        if not self.tty and done not in (0, total) and now - self.last.get(key, 0) < 2.0:
+            return
+        self.last[key] = now
+        width = 24
+        filled = int(width * done / max(total, 1))
+        bar = "#" * filled + "-" * (width - filled)
+        line = f"{stage:>9} [{bar}] {done:>5}/{total:<5} {what}"
+        if self.tty:
+            end = "\n" if done >= total else ""
+            self.stream.write("\r" + line + end)
+        else:
+            self.stream.write(line + "\n")
+        self.stream.flush()
+
+
+def _parser():
+    parser = argparse.ArgumentParser(
+        prog="lightledger",
+        description="Reduce time-series spectroscopy of transiting planets into light curves.")
+    parser.add_argument("--version", action="version", version=f"lightledger {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    red = sub.add_parser("reduce", help="reduce a visit described by a TOML file")
+    red.add_argument("visit", help="visit description (TOML)")
+    red.add_argument("--workers", type=int, default=1, help="parallel Luigi workers (default 1)")
+    red.add_argument("--set", dest="settings", action="append", default=[], metavar="STAGE.KEY=VALUE",
+                     help="override one stage parameter (repeatable)")
+    red.add_argument("--until", choices=STAGE_ORDER, help="stop after this stage")
+    red.add_argument("--force", choices=STAGE_ORDER, action="append", default=[],
+                     help="run this stage (and the ones after it) again even if complete")
+    red.add_argument("--scheduler-host", default=None,
+                     help="use a central Luigi scheduler (luigid) on this host instead of the local one")
+    red.add_argument("--scheduler-port", type=int, default=8082)
+
+    sim = sub.add_parser("simulate", help="render a fictional visit with known truth")
+    sim.add_argument("scenario", nargs="?", help="scenario name (see --list)")
+    sim.add_argument("outdir", nargs="?", help="directory to write the visit into")
+    sim.add_argument("--seed", type=int, default=0)
+    sim.add_argument("--exposures", type=int, default=None, help="number of exposures")
+    sim.add_argument("--list", action="store_true", help="list the scenarios and exit")
+
+    demo = sub.add_parser("demo", help="render a small scan visit, reduce it, compare with the truth")
+    demo.add_argument("dir", nargs="?", default="lightledger-demo")
+    demo.add_argument("--exposures", type=int, default=60)
+    demo.add_argument("--seed", type=int, default=1)
+    demo.add_argument("--workers", type=int, default=2)
+
+    aud = sub.add_parser("audit", help="verify checksums and lineage of products")
+    aud.add_argument("path", help="a product, a stage folder, a notebook folder or a visit TOML")
+
+    cmp_ = sub.add_parser("compare", help="differences between two entries or two products")
+    cmp_.add_argument("a")
+    cmp_.add_argument("b")
+    return parser
 
 
 def main(argv=None):
-    print("lightledger: not yet")
+    """Entry point of the ``lightledger`` console script."""
+    args = _parser().parse_args(argv)
+    try:
+        return _COMMANDS[args.command](args)
+    except LightledgerError as exc:
+        print(f"lightledger: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("lightledger: interrupted; complete products are kept, partial ones were not written",
+              file=sys.stderr)
+        return 130
+
+
+def _cmd_reduce(args):
+    from .run import reduce_visit
+
+    settings = [parse_assignment(text) for text in args.settings]
+    result = reduce_visit(args.visit, settings=settings, workers=args.workers, until=args.until,
+                          force=args.force, progress=Progress(),
+                          scheduler=(args.scheduler_host, args.scheduler_port)
+                          if args.scheduler_host else None)
+    for line in result.messages:
+        print(line, file=sys.stderr)
+    if not result.ok:
+        return 1
+    print(f"notebook page: {result.page}", file=sys.stderr)
+    print(result.final)
     return 0
+
+
+def _cmd_simulate(args):
+    from lightledger.synthetic_data.render import render
+    from lightledger.synthetic_data.scenarios import SCENARIOS
+
+    if args.list or not args.scenario:
+        for name, text in SCENARIOS.items():
+            print(f"{name:<16} {text}")
+        return 0
+    if not args.outdir:
+        raise LightledgerError("simulate: give an output directory: lightledger simulate SCENARIO OUTDIR")
+    progress = Progress()
+    visit = render(args.scenario, args.outdir, seed=args.seed, n_exposures=args.exposures,
+                   progress=lambda done, total: progress("simulate", "exposures", done, total))
+    print(visit)
+    return 0
+
+
+def _cmd_demo(args):
+    from .demo import run_demo
+
+    return run_demo(args.dir, n_exposures=args.exposures, seed=args.seed, workers=args.workers,
+                    progress=Progress())
+
+
+def _cmd_audit(args):
+    from .audit import audit
+
+    report = audit(args.path)
+    for line in report.lines:
+        print(line)
+    for problem in report.problems:
+        print(f"problem: {problem}", file=sys.stderr)
+    print(f"{report.n_products} products checked, {len(report.problems)} problems")
+    return 1 if report.problems else 0
+
+
+def _cmd_compare(args):
+    from .compare import compare
+
+    for line in compare(args.a, args.b):
+        print(line)
+    return 0
+
+
+_COMMANDS = {"reduce": _cmd_reduce, "simulate": _cmd_simulate, "demo": _cmd_demo,
+             "audit": _cmd_audit, "compare": _cmd_compare}
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,280 @@
+"""Every stage parameter, declared once.
+
+The reduction has four stages, run in this order:
+
+``calibrate``
+    raw ramps to calibrated frames (electrons, variance, data-quality bits);
+``extract``
+    calibrated frames to one spectrum per exposure on a common wavelength grid,
+    with the drifts;
+``bin``
+    spectra to light curves in wavelength channels and a white band, with
+    barycentric times and covariates;
+``detrend``
+    light curves divided by a fitted systematics model, with event depths.
+
+Each stage's parameters are listed here with their default, type, allowed
+values and meaning.  The visit description (``[stages.NAME]`` tables), the
+command line (``--set NAME.KEY=VALUE``), the Luigi tasks and the product
+headers all go through :func:`resolve`, so a parameter exists in exactly one
+place.  A stage's ``version`` is part of the hash that names its products:
+raise it whenever a change to the stage's code changes its numbers.
+"""
+
+import difflib
+from dataclasses import dataclass, field
+
+from .errors import ParameterError
+
+__all__ = ["Param", "StageSpec", "STAGES", "STAGE_ORDER", "resolve", "parse_assignment",
+           "nearest"]
+
+
+@dataclass(frozen=True)
+class Param:
+    """One stage parameter.
+
+    Parameters
+    ----------
+    name : str
+        Key in ``[stages.STAGE]`` and in ``--set STAGE.KEY=VALUE``.
+    default : object
+        Value used when the visit description does not set it.
+    kind : {"float", "int", "bool", "str", "floats"}
+        Type; ``"floats"`` is a list of numbers.
+    doc : str
+        One line: meaning and unit.
+    choices : tuple of str, optional
+        Allowed values of a ``"str"`` parameter.
+    minimum, maximum : float, optional
+        Inclusive bounds of a number.
+    length : int, optional
+        Required length of a ``"floats"`` list.
+    """
+
+    name: str
+    default: object
+    kind: str
+    doc: str
+    choices: tuple = ()
+    minimum: float | None = None
+    maximum: float | None = None
+    length: int | None = None
+    optional: bool = False
+
+    def check(self, value, where):
+        """Return ``value`` converted to this parameter's type, or raise.
+
+        ``where`` names the file or option the value came from.
+        """
+        label = f"{where}: {self.name}"
+        if value is None and self.optional:
+            return None
+        if self.kind == "bool":
+            if isinstance(value, str) and value.lower() in ("true", "false"):
+                return value.lower() == "true"
+            if not isinstance(value, bool):
+                raise ParameterError(f"{label} must be true or false, not {value!r}")
+            return value
+        if self.kind == "str":
+            if not isinstance(value, str):
+                raise ParameterError(f"{label} must be a string, not {value!r}")
+            if self.choices and value not in self.choices:
+                raise ParameterError(f"{label} must be one of {', '.join(self.choices)}; "
+                                     f"got {value!r}{_suggest(value, self.choices)}")
+            return value
+        if self.kind in ("float", "int"):
+            value = _number(value, self.kind, label)
+            self._bounds(value, label)
+            return value
+        if self.kind == "floats":
+            if isinstance(value, str):
+                text = value.strip().strip("[]")
+                value = [v for v in text.replace(",", " ").split()] if text else []
+            if not isinstance(value, (list, tuple)):
+                raise ParameterError(f"{label} must be a list of numbers, not {value!r}")
+            values = [_number(v, "float", label) for v in value]
+            if self.length is not None and len(values) != self.length:
+                raise ParameterError(f"{label} must hold {self.length} numbers, got {len(values)}")
+            for v in values:
+                self._bounds(v, label)
+            return tuple(values)
+        raise AssertionError(self.kind)
+
+    def _bounds(self, value, label):
+        if self.minimum is not None and value < self.minimum:
+            raise ParameterError(f"{label} must be >= {self.minimum}, got {value}")
+        if self.maximum is not None and value > self.maximum:
+            raise ParameterError(f"{label} must be <= {self.maximum}, got {value}")
+
+
+def _number(value, kind, label):
+    if isinstance(value, bool):
+        raise ParameterError(f"{label} must be a number, not {value!r}")
+    if isinstance(value, str):
+        try:
+            value = float(value)
+        except ValueError:
+            raise ParameterError(f"{label} must be a number, not {value!r}") from None
+    if not isinstance(value, (int, float)):
+        raise ParameterError(f"{label} must be a number, not {value!r}")
+    if kind == "int":
+        if float(value) != int(value):
+            raise ParameterError(f"{label} must be a whole number, not {value!r}")
+        return int(value)
+    return float(value)
+
+
+@dataclass(frozen=True)
+class StageSpec:
+    """The declared parameters and code version of one stage."""
+
+    name: str
+    version: str
+    doc: str
+    params: tuple = field(default_factory=tuple)
+
+    def param(self, key, where):
+        for p in self.params:
+            if p.name == key:
+                return p
+        names = [p.name for p in self.params]
+        raise ParameterError(f"{where}: unknown key {self.name}.{key}"
+                             f"{_suggest(key, names)}")
+
+    def defaults(self):
+        return {p.name: p.default for p in self.params}
+
+
+def _suggest(word, candidates):
+    match = nearest(word, candidates)
+    return f" (did you mean {match!r}?)" if match else ""
+
+
+def nearest(word, candidates):
+    """The closest of ``candidates`` to ``word``, or None when none is close."""
+    found = difflib.get_close_matches(str(word), list(candidates), n=1, cutoff=0.5)
+    return found[0] if found else None
+
+
+STAGES = {
+    "calibrate": StageSpec("calibrate", "1", "raw ramps to calibrated frames", (
+        Param("ramp_method", "fit", "str",
+              "staring ramps: 'fit' = weighted up-the-ramp slope, 'diff' = sum of read differences",
+              choices=("fit", "diff")),
+        Param("jump_threshold", 6.0, "float",
+              "cosmic-ray jump threshold in sigma of a pixel's read-difference scatter", minimum=3.0),
+        Param("background_method", "rowcol", "str",
+              "sky model: 'rowcol' = per-column model from rows away from the source, "
+              "'mesh' = photutils Background2D with a segmentation source mask",
+              choices=("rowcol", "mesh", "none")),
+        Param("destripe", "auto", "str",
+              "1/f read-noise removal: 'difference' per read difference, 'frame' per frame, "
+              "'off', or 'auto' (per difference for staring exposures, off for scans)",
+              choices=("auto", "difference", "frame", "off")),
+        Param("band_padding", 3, "int",
+              "rows added on each side of the band a scan crossed in each read difference",
+              minimum=0, maximum=50),
+        Param("chunk_size", 16, "int",
+              "exposures per calibration product (one Luigi task each)", minimum=1),
+    )),
+    "extract": StageSpec("extract", "1", "calibrated frames to aligned spectra", (
+        Param("method", "optimal", "str", "'optimal' (Horne 1986) or 'box'",
+              choices=("optimal", "box")),
+        Param("aperture_padding", 6.0, "float",
+              "rows kept beyond the trace's half-width (stare) or the scanned band (scan)",
+              minimum=0.0),
+        Param("clip_threshold", 5.0, "float",
+              "optimal extraction: reject pixels deviating by more than this many sigma from the profile fit",
+              minimum=2.0),
+        Param("profile_order", 3, "int",
+              "order of the polynomial that smooths the spatial profile along the dispersion",
+              minimum=0, maximum=10),
+        Param("refine_wavelength", True, "bool",
+              "refine the dispersion zero point by cross-correlation with the model spectrum"),
+        Param("align", True, "bool",
+              "resample each spectrum onto the reference grid with its own measured shift"),
+    )),
+    "bin": StageSpec("bin", "1", "spectra to channel light curves", (
+        Param("edges", (), "floats", "channel edges in micrometres (takes precedence when given)",
+              minimum=0.0),
+        Param("width", 0.0, "float", "uniform channel width in micrometres (used when edges is empty)",
+              minimum=0.0),
+        Param("n_channels", 10, "int", "number of channels when neither edges nor width is given",
+              minimum=1),
+        Param("equal_counts", False, "bool",
+              "with n_channels: make the channels hold equal numbers of photons"),
+        Param("white_range", (), "floats", "white band [lo, hi] in micrometres; empty = all channels",
+              minimum=0.0),
+        Param("fill", "profile", "str",
+              "masked pixels: 'profile' = fill from the scaled median spectrum, 'flag' = flag the channel-exposure",
+              choices=("profile", "flag")),
+    )),
+    "detrend": StageSpec("detrend", "1", "light curves divided by a systematics model", (
+        Param("visit_order", 1, "int", "order of the visit-long polynomial in time", minimum=0, maximum=4),
+        Param("orbit_order", 2, "int",
+              "order of the orbit-phase polynomial shared by all orbits (-1 = none)", minimum=-1, maximum=4),
+        Param("orbit_ramp", True, "bool", "fit an exponential ramp at the start of every orbit"),
+        Param("scan_offset", True, "bool", "fit a flux offset between forward and reverse scans"),
+        Param("drop_first_orbit", True, "bool", "leave the first orbit of a multi-orbit visit out of the fit"),
+        Param("fit", "joint", "str",
+              "'joint' = systematics and event depth together; 'outside' = systematics from "
+              "out-of-event exposures only, then the depth", choices=("joint", "outside")),
+        Param("phase_curve", False, "bool", "add a sinusoidal phase-curve term at the orbital period"),
+        Param("common_mode", False, "bool",
+              "divide each channel by the white light curve's systematics model before fitting it"),
+    )),
+}
+
+#: Stages in the order the reduction runs them.
+STAGE_ORDER = ("calibrate", "extract", "bin", "detrend")
+
+
+def resolve(stage, overrides=None, where="parameters"):
+    """Defaults of ``stage`` updated with validated ``overrides``.
+
+    Parameters
+    ----------
+    stage : str
+        One of :data:`STAGE_ORDER`.
+    overrides : dict, optional
+        Key to value; each key must be declared for the stage.
+    where : str
+        Names the source of the overrides in error messages (a file name or
+        ``--set``).
+
+    Returns
+    -------
+    params : dict
+        Every parameter of the stage, with converted values.
+
+    Raises
+    ------
+    ParameterError
+        For an unknown stage or key (naming the nearest valid one) or a value
+        of the wrong type or out of bounds.
+    """
+    if stage not in STAGES:
+        raise ParameterError(f"{where}: unknown stage {stage!r}{_suggest(stage, STAGES)}; "
+                             f"stages are {', '.join(STAGE_ORDER)}")
+    spec = STAGES[stage]
+    params = spec.defaults()
+    for key, value in (overrides or {}).items():
+        params[key] = spec.param(key, where).check(value, f"{where}: {stage}")
+    return params
+
+
+def parse_assignment(text):
+    """Split ``"STAGE.KEY=VALUE"`` into ``(stage, key, value)``, checked.
+
+    The value is converted to the parameter's type.
+    """
+    where = f"--set {text}"
+    if "=" not in text or "." not in text.split("=", 1)[0]:
+        raise ParameterError(f"{where}: expected STAGE.KEY=VALUE, e.g. extract.clip_threshold=4")
+    lhs, value = text.split("=", 1)
+    stage, key = lhs.strip().split(".", 1)
+    if stage not in STAGES:
+        raise ParameterError(f"{where}: unknown stage {stage!r}{_suggest(stage, STAGES)}")
+    param = STAGES[stage].param(key.strip(), where)
+    return stage, param.name, param.check(value.strip(), where)

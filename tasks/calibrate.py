@@ -1,0 +1,185 @@
+"""Calibrate stage: raw ramps to calibrated frames, one Luigi task per chunk of exposures.
+
+Products in ``NOTEBOOK/calibrate-IDENT/``:
+
+``inventory.ecsv``
+    one row per exposure in start-time order: file, index, start time, read
+    times, scan velocity, observer position, subarray origin;
+``frames-NNN.fits``
+    the calibrated exposures of chunk NNN: FLUX (electrons), VARIANCE
+    (electrons squared), MASK (the project's bitfield) as cubes of shape
+    (n_exposures, n_rows, n_columns), and EXPOSURES, a table of per-exposure
+    facts (mid-time, exposure time, scan direction and rate, background level,
+    flagged pixels by kind);
+``exposures.ecsv``
+    the EXPOSURES tables of every chunk joined;
+``calibrate.png``
+    a calibrated frame, its mask and background, and flagged-pixel counts
+    and background against time;
+``entry.json``
+    the notebook entry (written last).
+"""
+
+import time
+
+import luigi
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table, vstack
+
+from lightledger.pipeline import mask as dq
+from lightledger.pipeline.calibrate import calibrate_exposure
+
+from .base import ENTRY_NAME, VisitTask
+from .geometry import expected_source_rows
+from .products import write_ecsv, write_fits
+from .rawio import inventory, inventory_table, read_exposure, refs_from_table
+from .references import load_references
+
+__all__ = ["Inventory", "CalibrateChunk", "Calibrate", "chunk_ranges", "read_chunk"]
+
+
+def chunk_ranges(n_exposures, chunk_size):
+    """(start, stop) exposure ranges of each chunk."""
+    return [(i, min(i + chunk_size, n_exposures)) for i in range(0, n_exposures, chunk_size)]
+
+
+class Inventory(VisitTask):
+    """List the visit's exposures from the raw headers."""
+
+    stage = "calibrate"
+
+    def output(self):
+        return luigi.LocalTarget(str(self.folder / "inventory.ecsv"))
+
+    def run(self):
+        visit = self.config
+        refs = inventory(visit.raw, visit.profile)
+        table = inventory_table(refs)
+        files = sorted({r.file for r in refs})
+        with self.output().temporary_path() as tmp:
+            write_ecsv(tmp, table, self.provenance([visit.path, visit.profile.path, *files]))
+
+
+def read_inventory(task):
+    table = Table.read(task.input_inventory().path, format="ascii.ecsv")
+    return table, refs_from_table(table, task.config.raw)
+
+
+class CalibrateChunk(VisitTask):
+    """Calibrate one chunk of consecutive exposures."""
+
+    stage = "calibrate"
+    chunk = luigi.IntParameter(description="chunk number (chunks of calibrate.chunk_size exposures)")
+
+    def requires(self):
+        return self.stage_task(Inventory)
+
+    def input_inventory(self):
+        return self.input()
+
+    def output(self):
+        return luigi.LocalTarget(str(self.folder / f"frames-{self.chunk:03d}.fits"))
+
+    def run(self):
+        visit, params = self.config, self.params
+        table, refs = read_inventory(self)
+        start, stop = chunk_ranges(len(refs), params["chunk_size"])[self.chunk]
+        refs = refs[start:stop]
+        ny, nx = refs[0].shape[1:]
+        ref = load_references(visit.profile, (ny, nx), refs[0].origin, visit.target["source_x"])
+        flux = np.empty((len(refs), ny, nx), np.float32)
+        var = np.empty_like(flux)
+        bits = np.empty((len(refs), ny, nx), np.uint16)
+        rows = []
+        for i, exp in enumerate(refs):
+            self.progress(i, len(refs), f"chunk {self.chunk} exposures")
+            reads = read_exposure(exp, visit.profile)
+            source_rows = expected_source_rows(visit, nx, ny, exp.origin, exp.scan_velocity,
+                                               exp.exposure_time)
+            cal = calibrate_exposure(
+                reads, np.asarray(exp.read_times), bias_adu=ref.bias, dark_rate=ref.dark,
+                flat=ref.flat, nonlinearity=ref.nonlinearity, bad_pixels=ref.bad_pixels,
+                gain=visit.profile.gain, read_noise=visit.profile.read_noise,
+                saturation_adu=visit.profile.saturation, scan_velocity=exp.scan_velocity,
+                source_rows=source_rows, ramp_method=params["ramp_method"],
+                background_method=params["background_method"], destripe=params["destripe"],
+                jump_threshold=params["jump_threshold"], band_padding=params["band_padding"])
+            flux[i], var[i], bits[i] = cal.flux, cal.variance, cal.bits
+            row = {"exposure": start + i, "start_mjd_utc": exp.start_mjd,
+                   "mid_offset": cal.mid_time_offset, "integration_time": cal.integration_time,
+                   "exposure_time": exp.exposure_time, "scan_velocity": exp.scan_velocity,
+                   "scan_direction": int(np.sign(exp.scan_velocity)),
+                   "background_level": cal.background_level,
+                   "obsgeo": np.asarray(exp.obsgeo if exp.obsgeo else (np.nan,) * 3, float)}
+            row.update({f"n_{name.lower()}": cal.flag_counts.get(name, 0) for name in dq.FLAGS})
+            rows.append(row)
+        self.progress(len(refs), len(refs), f"chunk {self.chunk} exposures")
+        exposures = Table(rows=rows, names=list(rows[0]))
+        for col, unit in (("start_mjd_utc", "d"), ("mid_offset", "s"), ("integration_time", "s"),
+                          ("exposure_time", "s"), ("scan_velocity", "pix / s"),
+                          ("background_level", "electron"), ("obsgeo", "m")):
+            exposures[col].unit = unit
+        hdus = [fits.ImageHDU(flux, name="FLUX"), fits.ImageHDU(var, name="VARIANCE"),
+                fits.ImageHDU(bits, name="MASK", uint=True),
+                fits.BinTableHDU(exposures, name="EXPOSURES")]
+        hdus[0].header["BUNIT"] = ("electron", "charge collected from the zero read to the last read")
+        hdus[1].header["BUNIT"] = ("electron2", "variance of FLUX")
+        hdus[2].header["COMMENT"] = "lightledger data-quality bitfield; see lightledger.pipeline.mask"
+        for name, value in dq.FLAGS.items():
+            hdus[2].header[f"DQ_{value}"[:8]] = name
+        inputs = [self.input().path, *sorted({e.file for e in refs}),
+                  *[f for f in visit.profile.files.values() if f is not None]]
+        with self.output().temporary_path() as tmp:
+            write_fits(tmp, hdus, self.provenance(inputs),
+                       header={"CHUNK": self.chunk, "EXPFIRST": start, "EXPLAST": stop - 1})
+
+
+def read_chunk(path, *, exposures_only=False):
+    """FLUX, VARIANCE, MASK cubes and the EXPOSURES table of a calibrated chunk."""
+    with fits.open(path, memmap=False) as hdul:
+        table = Table(hdul["EXPOSURES"].data)
+        if exposures_only:
+            return table
+        return (np.asarray(hdul["FLUX"].data, float), np.asarray(hdul["VARIANCE"].data, float),
+                np.asarray(hdul["MASK"].data), table)
+
+
+class Calibrate(VisitTask):
+    """Every chunk of the visit calibrated, the exposures joined, the diagnostic figure."""
+
+    stage = "calibrate"
+
+    def requires(self):
+        return self.stage_task(Inventory)
+
+    def output(self):
+        return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
+
+    def chunk_tasks(self):
+        n = len(Table.read(self.input().path, format="ascii.ecsv"))
+        return [self.stage_task(CalibrateChunk, chunk=i)
+                for i in range(len(chunk_ranges(n, self.params["chunk_size"])))]
+
+    def run(self):
+        started = time.time()
+        chunks = self.chunk_tasks()
+        yield chunks
+        paths = [c.output().path for c in chunks]
+        exposures = vstack([read_chunk(p, exposures_only=True) for p in paths])
+        table_path = self.folder / "exposures.ecsv"
+        write_ecsv(table_path, exposures, self.provenance(paths))
+        from .figures import calibrate_figure
+        middle = paths[len(paths) // 2]
+        flux, var, bits, _ = read_chunk(middle)
+        fig_path = self.folder / "calibrate.png"
+        calibrate_figure(fig_path, flux[0], bits[0], exposures)
+        counts = {name: int(np.sum(exposures[f"n_{name.lower()}"])) for name in dq.FLAGS}
+        metrics = {"exposures": len(exposures), "chunks": len(paths),
+                   "median background (e-/pixel)": float(np.median(exposures["background_level"])),
+                   **{f"flagged {k.lower()} (pixel-exposures)": v for k, v in counts.items() if v}}
+        self.write_entry(self.output().path, [self.input().path, *paths],
+                         [*paths, table_path, self.input().path], metrics, [fig_path], started)
+
+    def final_product(self):
+        return self.folder / "exposures.ecsv"

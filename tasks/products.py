@@ -1,0 +1,219 @@
+"""Writing products: the one place every FITS, ECSV, figure and entry goes through.
+
+Every product is written to a temporary file beside its final name and moved
+into place with :func:`os.replace` only once complete, so a killed run never
+leaves a partial product where a complete one is expected.  FITS products get
+CHECKSUM and DATASUM (the FITS checksum convention), and a primary header
+that records:
+
+=========  ==========================================================
+LLSTAGE    the stage that made the product
+LLSTGVER   the stage's code version
+LLVERS     the lightledger version
+LLIDENT    the identity hash of the stage entry (the folder's suffix)
+LLVISIT    the visit's name
+=========  ==========================================================
+
+plus HISTORY cards listing every parameter and every input with its SHA-256,
+and a binary table extension PROVENANCE with the same in columns
+``kind`` (``param`` or ``input``), ``name``, ``value`` and ``sha256``.
+"""
+
+import json
+import os
+import tempfile
+from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from lightledger.pipeline import __version__
+
+from .rawio import sha256_of
+
+__all__ = ["Provenance", "atomic_path", "write_fits", "write_ecsv", "write_json",
+           "save_figure", "read_provenance"]
+
+
+class Provenance:
+    """What made a product: stage, parameters, inputs.
+
+    Parameters
+    ----------
+    stage : str
+    stage_version : str
+    identity : str
+        Identity hash of the stage entry.
+    params : dict
+        Stage parameters (name to value).
+    inputs : dict
+        Input path (str) to SHA-256 hex digest.
+    visit : str
+        Visit name.
+    """
+
+    def __init__(self, stage, stage_version, identity, params, inputs, visit=""):
+        self.stage = stage
+        self.stage_version = str(stage_version)
+        self.identity = identity
+        self.params = dict(params)
+        self.inputs = dict(inputs)
+        self.visit = visit
+
+    def header_cards(self, header):
+        header["LLSTAGE"] = (self.stage, "lightledger stage that made this product")
+        header["LLSTGVER"] = (self.stage_version, "code version of that stage")
+        header["LLVERS"] = (__version__, "lightledger version")
+        header["LLIDENT"] = (self.identity, "identity hash of the notebook entry")
+        header["LLVISIT"] = (self.visit[:60], "visit name")
+        for key, value in sorted(self.params.items()):
+            header.add_history(f"param {self.stage}.{key} = {_text(value)}")
+        for path, digest in sorted(self.inputs.items()):
+            header.add_history(f"input {Path(path).name} sha256 {digest}")
+
+    def table_hdu(self):
+        rows = [("param", k, _text(v), "") for k, v in sorted(self.params.items())]
+        rows += [("input", str(p), "", d) for p, d in sorted(self.inputs.items())]
+        if not rows:
+            rows = [("none", "", "", "")]
+        kinds, names, values, digests = zip(*rows)
+        table = Table([list(kinds), list(names), list(values), list(digests)],
+                      names=("kind", "name", "value", "sha256"))
+        hdu = fits.BinTableHDU(table, name="PROVENANCE")
+        return hdu
+
+    def meta(self):
+        return {"stage": self.stage, "stage_version": self.stage_version,
+                "software_version": __version__, "identity": self.identity,
+                "visit": self.visit, "params": {k: _jsonable(v) for k, v in self.params.items()},
+                "inputs": self.inputs}
+
+
+def _text(value):
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_text(v) for v in value) + "]"
+    return str(value)
+
+
+def _jsonable(value):
+    if isinstance(value, tuple):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, (np.floating, np.integer)):
+        return value.item()
+    if isinstance(value, Path):
+        return str(value)
+    return value
+
+
+@contextmanager
+def atomic_path(path):
+    """Yield a temporary path beside ``path``; move it into place on success.
+
+    On an exception the temporary file is removed and ``path`` is untouched.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}-", suffix=path.suffix + ".part",
+                               dir=path.parent)
+    os.close(fd)
+    try:
+        yield Path(tmp)
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_fits(path, hdus, provenance, *, header=None):
+    """Write a FITS product with provenance and checksums, atomically.
+
+    Parameters
+    ----------
+    path : str or Path
+        Final name; must end in ``.fits``.
+    hdus : list of astropy.io.fits HDUs
+        Extensions (an ImageHDU, BinTableHDU, ...); a primary HDU is made.
+    provenance : Provenance
+    header : dict, optional
+        Extra primary-header keywords: name to value or (value, comment).
+
+    Returns
+    -------
+    sha256 : str
+        SHA-256 of the written file.
+    """
+    path = Path(path)
+    if path.suffix != ".fits":
+        raise ValueError(f"{path}: products are plain .fits files")
+    primary = fits.PrimaryHDU()
+    provenance.header_cards(primary.header)
+    for key, value in (header or {}).items():
+        primary.header[key] = value
+    hdul = fits.HDUList([primary, *hdus, provenance.table_hdu()])
+    with atomic_path(path) as tmp:
+        hdul.writeto(tmp, overwrite=True, checksum=True)
+    return sha256_of(path)
+
+
+def write_ecsv(path, table, provenance):
+    """Write an astropy Table as ECSV with provenance in its metadata, atomically.
+
+    Returns the SHA-256 of the written file.
+    """
+    table = table.copy(copy_data=False)
+    table.meta.update({"lightledger": provenance.meta()})
+    with atomic_path(path) as tmp:
+        table.write(tmp, format="ascii.ecsv", overwrite=True)
+    return sha256_of(path)
+
+
+def write_json(path, document):
+    """Write a JSON document atomically (UTF-8, indented)."""
+    with atomic_path(path) as tmp:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(document, fh, indent=2, sort_keys=False, default=_jsonable)
+            fh.write("\n")
+    return sha256_of(path)
+
+
+def save_figure(fig, path, *, dpi=110):
+    """Save a matplotlib figure as PNG atomically and close it."""
+    import matplotlib.pyplot as plt
+
+    try:
+        with atomic_path(path) as tmp:
+            fig.savefig(tmp, format="png", dpi=dpi)
+    finally:
+        plt.close(fig)
+    return sha256_of(path)
+
+
+def read_provenance(path):
+    """The provenance recorded in a FITS or ECSV product.
+
+    Returns
+    -------
+    dict with keys stage, stage_version, identity, params (dict) and
+    inputs (dict path -> sha256); empty dict when the file has none.
+    """
+    path = Path(path)
+    if path.suffix == ".fits":
+        with fits.open(path) as hdul:
+            hdr = hdul[0].header
+            if "LLSTAGE" not in hdr or "PROVENANCE" not in hdul:
+                return {}
+            table = Table(hdul["PROVENANCE"].data)
+            params = {r["name"]: r["value"] for r in table if r["kind"] == "param"}
+            inputs = {r["name"]: r["sha256"] for r in table if r["kind"] == "input"}
+            return {"stage": hdr["LLSTAGE"], "stage_version": hdr.get("LLSTGVER", ""),
+                    "identity": hdr.get("LLIDENT", ""), "params": params, "inputs": inputs}
+    if path.suffix == ".ecsv":
+        table = Table.read(path, format="ascii.ecsv")
+        meta = table.meta.get("lightledger", {})
+        return dict(meta)
+    return {}
