@@ -166,12 +166,13 @@ STAGES = {
               "cosmic-ray jump threshold in sigma of a pixel's read-difference scatter", minimum=3.0),
         Param("background_method", "rowcol", "str",
               "sky model: 'rowcol' = per-column model from rows away from the source, "
-              "'mesh' = photutils Background2D with a segmentation source mask",
-              choices=("rowcol", "mesh", "none")),
+              "'2d' = photutils Background2D with a segmentation source mask, "
+              "'constant' = one clipped level, 'none'",
+              choices=("rowcol", "2d", "constant", "none")),
         Param("destripe", "auto", "str",
-              "1/f read-noise removal: 'difference' per read difference, 'frame' per frame, "
+              "1/f read-noise removal: 'differences' per read difference, 'frame' per frame, "
               "'off', or 'auto' (per difference for staring exposures, off for scans)",
-              choices=("auto", "difference", "frame", "off")),
+              choices=("auto", "differences", "frame", "off")),
         Param("band_padding", 3, "int",
               "rows added on each side of the band a scan crossed in each read difference",
               minimum=0, maximum=50),

@@ -163,6 +163,25 @@ class VisitTask(luigi.Task):
         if reporter is not None:
             reporter(self.stage, what, done, total)
 
+    def on_failure(self, exception):
+        """Record a one-line reason for the command line, then let Luigi record its own."""
+        import traceback
+
+        from lightledger.pipeline.errors import LightledgerError
+
+        if isinstance(exception, LightledgerError):
+            text = f"lightledger: error: {exception}"
+        else:
+            text = (f"lightledger: {self.task_family} failed (a bug; please report it):\n"
+                    + "".join(traceback.format_exception(exception)).rstrip())
+        try:
+            folder = Path(self.config.notebook) / ".failures"
+            folder.mkdir(parents=True, exist_ok=True)
+            (folder / f"{self.task_id}.txt").write_text(text + "\n", encoding="utf-8")
+        except Exception:
+            pass
+        return super().on_failure(exception)
+
     def write_entry(self, path, inputs, outputs, metrics, figures, started):
         """Write the stage's entry.json (the completion marker), atomically."""
         entry = {

@@ -32,7 +32,7 @@ from lightledger.pipeline.calibrate import calibrate_exposure
 
 from .base import ENTRY_NAME, VisitTask
 from .geometry import expected_source_rows
-from .products import write_ecsv, write_fits
+from .products import table_hdu, write_ecsv, write_fits
 from .rawio import inventory, inventory_table, read_exposure, refs_from_table
 from .references import load_references
 
@@ -42,6 +42,13 @@ __all__ = ["Inventory", "CalibrateChunk", "Calibrate", "chunk_ranges", "read_chu
 def chunk_ranges(n_exposures, chunk_size):
     """(start, stop) exposure ranges of each chunk."""
     return [(i, min(i + chunk_size, n_exposures)) for i in range(0, n_exposures, chunk_size)]
+
+
+def _destripe_mode(setting, scan_velocity):
+    """'auto' destripes each read difference of a staring exposure and leaves scans alone."""
+    if setting == "auto":
+        return "off" if scan_velocity else "differences"
+    return setting
 
 
 class Inventory(VisitTask):
@@ -57,8 +64,7 @@ class Inventory(VisitTask):
         refs = inventory(visit.raw, visit.profile)
         table = inventory_table(refs)
         files = sorted({r.file for r in refs})
-        with self.output().temporary_path() as tmp:
-            write_ecsv(tmp, table, self.provenance([visit.path, visit.profile.path, *files]))
+        write_ecsv(self.output().path, table, self.provenance([visit.path, visit.profile.path, *files]))
 
 
 def read_inventory(task):
@@ -103,8 +109,10 @@ class CalibrateChunk(VisitTask):
                 gain=visit.profile.gain, read_noise=visit.profile.read_noise,
                 saturation_adu=visit.profile.saturation, scan_velocity=exp.scan_velocity,
                 source_rows=source_rows, ramp_method=params["ramp_method"],
-                background_method=params["background_method"], destripe=params["destripe"],
-                jump_threshold=params["jump_threshold"], band_padding=params["band_padding"])
+                background_method=params["background_method"],
+                destripe=_destripe_mode(params["destripe"], exp.scan_velocity),
+                jump_threshold=params["jump_threshold"],
+                scan_options={"pad_rows": params["band_padding"]} if exp.scan_velocity else None)
             flux[i], var[i], bits[i] = cal.flux, cal.variance, cal.bits
             row = {"exposure": start + i, "start_mjd_utc": exp.start_mjd,
                    "mid_offset": cal.mid_time_offset, "integration_time": cal.integration_time,
@@ -122,16 +130,15 @@ class CalibrateChunk(VisitTask):
             exposures[col].unit = unit
         hdus = [fits.ImageHDU(flux, name="FLUX"), fits.ImageHDU(var, name="VARIANCE"),
                 fits.ImageHDU(bits, name="MASK", uint=True),
-                fits.BinTableHDU(exposures, name="EXPOSURES")]
-        hdus[0].header["BUNIT"] = ("electron", "charge collected from the zero read to the last read")
+                table_hdu(exposures, "EXPOSURES")]
+        hdus[0].header["BUNIT"] = ("electron", "charge from the zero read to the last read")
         hdus[1].header["BUNIT"] = ("electron2", "variance of FLUX")
         hdus[2].header["COMMENT"] = "lightledger data-quality bitfield; see lightledger.pipeline.mask"
         for name, value in dq.FLAGS.items():
             hdus[2].header[f"DQ_{value}"[:8]] = name
         inputs = [self.input().path, *sorted({e.file for e in refs}),
                   *[f for f in visit.profile.files.values() if f is not None]]
-        with self.output().temporary_path() as tmp:
-            write_fits(tmp, hdus, self.provenance(inputs),
+        write_fits(self.output().path, hdus, self.provenance(inputs),
                        header={"CHUNK": self.chunk, "EXPFIRST": start, "EXPLAST": stop - 1})
 
 

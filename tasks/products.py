@@ -33,7 +33,7 @@ from lightledger.pipeline import __version__
 
 from .rawio import sha256_of
 
-__all__ = ["Provenance", "atomic_path", "write_fits", "write_ecsv", "write_json",
+__all__ = ["Provenance", "atomic_path", "table_hdu", "write_fits", "write_ecsv", "write_json",
            "save_figure", "read_provenance"]
 
 
@@ -127,6 +127,33 @@ def atomic_path(path):
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
+
+
+#: Units that the FITS standard lacks, and what FITS tables say instead.
+_FITS_UNITS = {"electron": "count", "electron2": "count2", "electron / s": "count / s"}
+
+
+def table_hdu(table, name):
+    """A binary table HDU of an astropy Table, with FITS-standard units.
+
+    Columns in electrons are written with TUNIT ``count`` (a count of
+    electrons; the FITS standard has no electron unit) and every column's
+    description, when it has one, becomes its TCOMMn comment.
+    """
+    table = table.copy(copy_data=False)
+    comments = {}
+    for col in table.itercols():
+        unit = col.unit.to_string() if col.unit is not None else None
+        if unit in _FITS_UNITS:
+            col.unit = _FITS_UNITS[unit]
+            comments[col.name] = (col.description or col.name) + " (electrons)"
+        elif col.description:
+            comments[col.name] = col.description
+    hdu = fits.BinTableHDU(table, name=name)
+    for i, colname in enumerate(table.colnames, start=1):
+        if colname in comments:
+            hdu.header[f"TCOMM{i}"] = comments[colname][:68]
+    return hdu
 
 
 def write_fits(path, hdus, provenance, *, header=None):

@@ -1,0 +1,199 @@
+"""Detrend stage: channel and white light curves divided by a fitted systematics model.
+
+The systematics model (visit-long polynomial, orbit-phase polynomial,
+per-orbit exponential ramp, scan-direction offset, optional phase curve) is
+fitted with the event's depth, whose shape comes from the visit's a priori
+ephemeris (Mandel & Agol 2002 transit with quadratic limb darkening, or a
+uniform-disk eclipse).
+
+Products in ``NOTEBOOK/detrend-IDENT/``:
+
+``detrended.fits``
+    DETRENDED (one row per exposure: time, whether it entered the fit, the
+    white and channel light curves divided by their systematics, errors,
+    systematics and full models, residuals) and DEPTHS (per channel and the
+    white band, as row ``channel = -1``: depth, error, residual rms, the
+    expected rms from the errors, their ratio, the time-averaging beta
+    factor, reduced chi-square, BIC);
+``detrended.ecsv``, ``depths.ecsv``
+    the same as ECSV;
+``detrend.png``
+    the white light curve before and after, with the model, and the depth
+    spectrum.
+"""
+
+import time
+
+import luigi
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from lightledger.pipeline.detrend import binned_rms, detrend_light_curve, fit_channels
+from lightledger.pipeline.transit import eclipse_flux, transit_flux
+
+from .base import ENTRY_NAME, VisitTask
+from .lightcurves import read_lightcurves, wide_table
+from .products import table_hdu, write_ecsv, write_fits
+
+__all__ = ["Detrend", "event_template", "read_depths"]
+
+
+def event_template(bjd, event):
+    """Unit event shape from the a priori ephemeris, and what one unit of depth means.
+
+    Transit: ``s = (1 - model) / rp_rs**2`` so that the fitted depth is the
+    (rp/rs)^2 of a uniform-disk-equivalent transit. Eclipse: ``s`` is the
+    hidden fraction of the planet (0 out of eclipse, 1 in full eclipse), so
+    the fitted depth is fp / (1 + fp).
+    """
+    shape = dict(t0=event["t0"], period=event["period"], rp_rs=event["rp_rs"],
+                 a_rs=event["a_rs"], inclination=event["inclination"])
+    if event["kind"] == "transit":
+        model = transit_flux(bjd, u1=event["u1"], u2=event["u2"], **shape)
+        return (1.0 - model) / event["rp_rs"] ** 2
+    visible = eclipse_flux(bjd, fp_fs=1.0, **shape) - 1.0
+    return 1.0 - visible
+
+
+def read_depths(path):
+    """The DEPTHS table of a detrend product."""
+    with fits.open(path, memmap=False) as hdul:
+        return Table(hdul["DEPTHS"].data)
+
+
+class Detrend(VisitTask):
+    """Fit systematics and event depth of the white and every channel light curve."""
+
+    stage = "detrend"
+
+    def requires(self):
+        from .lightcurves import Bin
+        return self.stage_task(Bin)
+
+    def output(self):
+        return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
+
+    def final_product(self):
+        return self.folder / "detrended.fits"
+
+    def run(self):
+        started = time.time()
+        visit, params = self.config, self.params
+        lc_path = self.requires().final_product()
+        lc, channels = read_lightcurves(lc_path)
+        t = np.asarray(lc["time_bjd_tdb"], float)
+        template = event_template(t, visit.event)
+        if not np.any(template > 0):
+            from lightledger.pipeline.errors import LightledgerError
+            raise LightledgerError(f"{visit.path}: the {visit.event['kind']} of the ephemeris "
+                                   f"(event.t0, event.period) falls outside the visit's exposures")
+        stare = bool(np.all(np.asarray(lc["scan_direction"]) == 0))
+        bad = np.asarray(lc["flux_outlier"], bool)
+        options = dict(orbit=np.asarray(lc["orbit"], int), orbit_time=np.asarray(lc["orbit_time"], float),
+                       scan_direction=None if stare or not params["scan_offset"]
+                       else np.asarray(lc["scan_direction"], int),
+                       visit_order=params["visit_order"], orbit_order=max(params["orbit_order"], 0)
+                       if not stare else 0,
+                       ramp=params["orbit_ramp"] and not stare,
+                       drop_first_orbit=params["drop_first_orbit"] and not stare,
+                       mode="joint" if params["fit"] == "joint" else "out_of_event",
+                       phase_curve=(visit.event["t0"], visit.event["period"])
+                       if params["phase_curve"] else None)
+        self.progress(0, 2, "white light curve")
+        wf = np.asarray(lc["white_flux"], float)
+        we = np.asarray(lc["white_error"], float)
+        white = detrend_light_curve(t, wf, we ** 2, template,
+                                    mask=bad | np.asarray(lc["white_mask"], bool), **options)
+        self.progress(1, 2, "channel light curves")
+        flux = np.asarray(lc["flux"], float)
+        err = np.asarray(lc["error"], float)
+        mask = np.asarray(lc["mask"], bool) | bad[:, None]
+        chans = fit_channels(t, flux, err ** 2, template, mask=mask,
+                             divide_white=white.systematics if params["common_mode"] else None,
+                             **options)
+        used = np.asarray(white.fit_mask, bool)
+
+        det = Table()
+        det["exposure"] = lc["exposure"]
+        det["time_bjd_tdb"] = t
+        det["time_bjd_tdb"].unit = "d"
+        det["used"] = used
+        det["white_detrended"] = white.detrended_flux
+        det["white_detrended_error"] = white.detrended_error
+        det["white_systematics"] = white.systematics
+        det["white_model"] = white.model
+        det["white_residual"] = white.residuals
+        det["detrended"] = chans.detrended_flux
+        det["detrended_error"] = chans.detrended_error
+        det["systematics"] = chans.systematics
+        det["model"] = chans.model
+        det["residual"] = chans.residuals
+        for name in ("white_systematics", "white_model", "white_residual", "systematics", "model",
+                     "residual"):
+            det[name].unit = "electron"
+
+        def quality(residual, error, fit_mask):
+            r = np.asarray(residual, float)[fit_mask]
+            e = np.asarray(error, float)[fit_mask]
+            rms = float(np.sqrt(np.mean(r ** 2))) if r.size else np.nan
+            expected = float(np.sqrt(np.mean(e ** 2))) if e.size else np.nan
+            beta = np.nan
+            if r.size >= 12:
+                sizes = np.unique(np.clip(np.arange(1, r.size // 4 + 1), 1, None))
+                beta = float(binned_rms(r / np.median(e), sizes).beta)
+            return rms, expected, beta
+
+        rows = []
+        fluxes = [(-1, float(lc.meta.get("WLO", channels["wave_lo"][0])),
+                   float(lc.meta.get("WHI", channels["wave_hi"][-1])), white,
+                   wf, we)]
+        for j in range(len(channels)):
+            fluxes.append((j, float(channels["wave_lo"][j]), float(channels["wave_hi"][j]),
+                           chans.fits[j], flux[:, j], err[:, j]))
+        for j, lo, hi, fit_j, f, e in fluxes:
+            fm = np.asarray(fit_j.fit_mask, bool)
+            norm = fit_j.systematics
+            rms, expected, beta = quality(fit_j.residuals / norm, e / norm, fm)
+            rows.append({"channel": j, "wave_lo": lo, "wave_hi": hi, "wave_mid": 0.5 * (lo + hi),
+                         "depth": fit_j.depth, "depth_error": fit_j.depth_error,
+                         "rms_ppm": rms * 1e6, "expected_ppm": expected * 1e6,
+                         "rms_over_expected": rms / expected if expected else np.nan,
+                         "beta": beta, "reduced_chi2": fit_j.reduced_chi2, "bic": fit_j.bic,
+                         "n_params": fit_j.n_params, "n_used": int(fm.sum()), "tau_min": fit_j.tau * 1440
+                         if fit_j.tau is not None and np.isfinite(fit_j.tau) else np.nan})
+        depths = Table(rows=rows, names=list(rows[0]))
+        for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),
+                           ("tau_min", "min")):
+            depths[name].unit = unit
+        depths.meta["event"] = visit.event["kind"]
+        depths.meta["depth_meaning"] = ("(rp/rs)^2" if visit.event["kind"] == "transit"
+                                        else "fp/(1+fp)")
+
+        prov = self.provenance([lc_path])
+        folder = self.folder
+        fits_path = folder / "detrended.fits"
+        hdus = [table_hdu(det, "DETRENDED"), table_hdu(depths, "DEPTHS")]
+        hdus[1].header["EVENT"] = (visit.event["kind"], "event whose depth was fitted")
+        hdus[1].header["DEPTHIS"] = (depths.meta["depth_meaning"], "meaning of the depth column")
+        write_fits(fits_path, hdus, prov)
+        outputs = [fits_path]
+        for name, table in (("detrended.ecsv", wide_table(det, len(channels))), ("depths.ecsv", depths)):
+            write_ecsv(folder / name, table, prov)
+            outputs.append(folder / name)
+        from .figures import detrend_figure
+        fig = folder / "detrend.png"
+        detrend_figure(fig, t, wf, we, white.model, white.systematics, used,
+                       np.asarray(depths["wave_mid"][1:]), depths["depth"][1:],
+                       depths["depth_error"][1:], visit.event["kind"])
+        w = depths[0]
+        metrics = {"white depth (ppm)": round(float(w["depth"]) * 1e6, 1),
+                   "white depth error (ppm)": round(float(w["depth_error"]) * 1e6, 1),
+                   "white rms (ppm)": round(float(w["rms_ppm"]), 1),
+                   "white rms / expected": round(float(w["rms_over_expected"]), 3),
+                   "white beta": round(float(w["beta"]), 3) if np.isfinite(w["beta"]) else None,
+                   "median channel rms / expected":
+                       round(float(np.nanmedian(depths["rms_over_expected"][1:])), 3),
+                   "exposures fitted": int(used.sum())}
+        self.progress(2, 2, "channel light curves")
+        self.write_entry(self.output().path, [lc_path], outputs, metrics, [fig], started)

@@ -1,0 +1,222 @@
+"""Bin stage: aligned spectra to channel light curves with times and covariates.
+
+Products in ``NOTEBOOK/bin-IDENT/`` (every column is described in the
+README's "Light-curve products" section):
+
+``lightcurves.fits``
+    LIGHTCURVES (one row per exposure: times, white and channel fluxes, errors,
+    masks, covariates), CHANNELS (edges, centres, pixel counts, mean counts)
+    and SPECTRUM (the mean spectrum on the pixel grid);
+``lightcurves.ecsv``, ``channels.ecsv``, ``spectrum.ecsv``
+    the same tables as ECSV, with one column per channel;
+``lightcurves.png``
+    a waterfall of the channel light curves and the white light curve.
+"""
+
+import time
+
+import luigi
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from lightledger.pipeline.binning import (bin_spectra, channel_edges_from_list,
+                                          equal_count_channel_edges, uniform_channel_edges)
+from lightledger.pipeline.covariates import exposure_covariates
+from lightledger.pipeline.errors import ParameterError
+from lightledger.pipeline.timing import barycentric_times
+
+from .base import ENTRY_NAME, VisitTask
+from .products import table_hdu, write_ecsv, write_fits
+
+__all__ = ["Bin", "read_spectra", "read_lightcurves", "wide_table"]
+
+
+def read_spectra(path):
+    """Flux, variance, mask (n_exp, n_pix), pixel edges (um) and the exposure table."""
+    with fits.open(path, memmap=False) as hdul:
+        flux = np.asarray(hdul["FLUX"].data, float)
+        var = np.asarray(hdul["VARIANCE"].data, float)
+        mask = np.asarray(hdul["MASK"].data) > 0
+        wave = Table(hdul["WAVELENGTH"].data)
+        exposures = Table(hdul["EXPOSURES"].data)
+    edges = np.append(np.asarray(wave["wave_lo"], float), float(wave["wave_hi"][-1]))
+    return flux, var, mask, edges, exposures
+
+
+def read_lightcurves(path):
+    """LIGHTCURVES and CHANNELS tables of a bin product."""
+    with fits.open(path, memmap=False) as hdul:
+        return Table(hdul["LIGHTCURVES"].data), Table(hdul["CHANNELS"].data)
+
+
+def _channel_edges(params, pixel_edges, mean_spectrum):
+    lo, hi = float(np.min(pixel_edges)), float(np.max(pixel_edges))
+    if params["edges"]:
+        edges = channel_edges_from_list(params["edges"])
+    elif params["width"] > 0:
+        edges = uniform_channel_edges((lo, hi), width=params["width"])
+    elif params["equal_counts"]:
+        edges = equal_count_channel_edges(pixel_edges, mean_spectrum, params["n_channels"])
+    else:
+        edges = uniform_channel_edges((lo, hi), n_channels=params["n_channels"])
+    edges = np.asarray(edges, float)
+    if edges[0] < lo - 1e-9 or edges[-1] > hi + 1e-9:
+        raise ParameterError(f"bin.edges: channels {edges[0]:.4f}-{edges[-1]:.4f} um reach outside "
+                             f"the extracted spectrum's {lo:.4f}-{hi:.4f} um")
+    return edges
+
+
+def wide_table(lc, n_channels):
+    """The LIGHTCURVES table with one column per channel (for ECSV readers)."""
+    out = Table()
+    for name in lc.colnames:
+        col = lc[name]
+        if col.ndim == 2:
+            for j in range(n_channels):
+                out[f"{name}_{j:02d}"] = col[:, j]
+                out[f"{name}_{j:02d}"].unit = col.unit
+                out[f"{name}_{j:02d}"].description = f"{col.description or name}, channel {j}"
+        else:
+            out[name] = col
+    return out
+
+
+# Column descriptions of LIGHTCURVES; the README's table is written from this.
+COLUMNS = {
+    "exposure": ("", "exposure number in start-time order"),
+    "time_bjd_tdb": ("d", "mid-exposure time, BJD in the TDB scale"),
+    "time_mjd_utc": ("d", "mid-exposure time, MJD in UTC"),
+    "white_flux": ("electron", "white-band flux"),
+    "white_error": ("electron", "1-sigma error of white_flux"),
+    "white_mask": ("", "True where white_flux is unusable"),
+    "flux": ("electron", "channel flux"),
+    "error": ("electron", "1-sigma error of flux"),
+    "mask": ("", "True where the channel flux is unusable"),
+    "n_filled": ("", "pixels of the channel filled from the scaled mean spectrum"),
+    "orbit": ("", "orbit number, 0 = first (one orbit for a stare)"),
+    "orbit_time": ("d", "time since the orbit's first exposure started (orbit phase)"),
+    "visit_time": ("d", "time since the visit's first exposure started"),
+    "scan_direction": ("", "+1 forward scan, -1 reverse scan, 0 staring"),
+    "dx": ("pix", "spectrum shift along the dispersion relative to the reference"),
+    "dy": ("pix", "spatial shift of the trace or scanned band"),
+    "width": ("pix", "spatial width of the trace (Gaussian sigma) or scanned band length"),
+    "background": ("electron", "median sky background per pixel"),
+    "first_orbit": ("", "True in the visit's first orbit"),
+    "first_in_orbit": ("", "True for an orbit's first exposure"),
+    "flux_outlier": ("", "True where the white flux departs from its running median"),
+}
+
+
+class Bin(VisitTask):
+    """Bin the aligned spectra into channel and white light curves."""
+
+    stage = "bin"
+
+    def requires(self):
+        from .extract import Extract
+        return self.stage_task(Extract)
+
+    def output(self):
+        return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
+
+    def final_product(self):
+        return self.folder / "lightcurves.fits"
+
+    def run(self):
+        started = time.time()
+        visit, params = self.config, self.params
+        spectra_path = self.requires().final_product()
+        flux, var, mask, pix_edges, exp = read_spectra(spectra_path)
+        self.progress(0, 3, "binning")
+        good = ~mask & np.isfinite(flux)
+        total = np.nansum(np.where(good, flux, 0.0), axis=1)
+        median_spec = np.nanmedian(np.where(good, flux, np.nan), axis=0)
+        median_spec = np.where(np.isfinite(median_spec), median_spec, 0.0)
+        edges = _channel_edges(params, pix_edges, median_spec)
+        fill = None
+        if params["fill"] == "profile":
+            scale = total / max(np.sum(median_spec), 1e-30)
+            fill = median_spec[None, :] * scale[:, None]
+        binned = bin_spectra(pix_edges, flux, var, mask, edges, fill=fill)
+        white_range = params["white_range"] or (edges[0], edges[-1])
+        white = bin_spectra(pix_edges, flux, var, mask, np.asarray(white_range, float), fill=fill)
+        self.progress(1, 3, "times and covariates")
+
+        mid_mjd = np.asarray(exp["start_mjd_utc"], float) + np.asarray(exp["mid_offset"], float) / 86400
+        geo = np.asarray(exp["obsgeo"], float)
+        obsgeo = None if np.all(np.isnan(geo)) else np.where(np.isnan(geo), 0.0, geo)
+        times = barycentric_times(mid_mjd, visit.target["ra"], visit.target["dec"], obsgeo_m=obsgeo)
+        stare = bool(np.all(np.asarray(exp["scan_direction"]) == 0))
+        cov = exposure_covariates(np.asarray(exp["start_mjd_utc"], float), mid_mjd,
+                                  white_flux=white.flux[:, 0], stare=stare)
+
+        lc = Table()
+        lc["exposure"] = np.asarray(exp["exposure"], int)
+        lc["time_bjd_tdb"] = times.bjd_tdb
+        lc["time_mjd_utc"] = times.mjd_utc
+        lc["white_flux"] = white.flux[:, 0]
+        lc["white_error"] = np.sqrt(white.variance[:, 0])
+        lc["white_mask"] = white.mask[:, 0]
+        lc["flux"] = binned.flux
+        lc["error"] = np.sqrt(binned.variance)
+        lc["mask"] = binned.mask
+        lc["n_filled"] = binned.n_filled
+        for name, values in cov.columns().items():
+            lc[name] = values
+        lc["scan_direction"] = np.asarray(exp["scan_direction"], int)
+        for name in ("dx", "dy", "width"):
+            lc[name] = np.asarray(exp[name], float)
+        lc["background"] = np.asarray(exp["background_level"], float)
+        for name, (unit, text) in COLUMNS.items():
+            if name in lc.colnames:
+                lc[name].unit = unit or None
+                lc[name].description = text
+
+        channels = Table()
+        channels["channel"] = np.arange(len(edges) - 1)
+        channels["wave_lo"] = edges[:-1]
+        channels["wave_hi"] = edges[1:]
+        channels["wave_mid"] = 0.5 * (edges[:-1] + edges[1:])
+        channels["n_pixels"] = binned.weights.sum(axis=0)
+        channels["mean_counts"] = np.nanmean(binned.flux, axis=0)
+        for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),
+                           ("n_pixels", "pix"), ("mean_counts", "electron")):
+            channels[name].unit = unit
+        spectrum = Table()
+        spectrum["wave_lo"] = pix_edges[:-1]
+        spectrum["wave_hi"] = pix_edges[1:]
+        spectrum["flux"] = median_spec
+        spectrum["error"] = np.sqrt(np.nanmedian(np.where(good, var, np.nan), axis=0) / max(len(flux), 1))
+        for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("flux", "electron"),
+                           ("error", "electron")):
+            spectrum[name].unit = unit
+
+        self.progress(2, 3, "writing light curves")
+        prov = self.provenance([spectra_path])
+        folder = self.folder
+        fits_path = folder / "lightcurves.fits"
+        hdus = [table_hdu(lc, "LIGHTCURVES"), table_hdu(channels, "CHANNELS"),
+                table_hdu(spectrum, "SPECTRUM")]
+        hdus[0].header["WLO"] = (float(white_range[0]), "white band lower edge, um")
+        hdus[0].header["WHI"] = (float(white_range[1]), "white band upper edge, um")
+        hdus[0].header["ERRKIND"] = ("1-sigma", "error columns hold standard deviations")
+        write_fits(fits_path, hdus, prov, header={"TIMESYS": "TDB", "TIMEREF": "SOLARSYSTEM"})
+        n_ch = len(edges) - 1
+        outputs = [fits_path]
+        for name, table in (("lightcurves.ecsv", wide_table(lc, n_ch)), ("channels.ecsv", channels),
+                            ("spectrum.ecsv", spectrum)):
+            write_ecsv(folder / name, table, prov)
+            outputs.append(folder / name)
+        from .figures import bin_figure
+        fig = folder / "lightcurves.png"
+        bin_figure(fig, lc, channels)
+        white_flux = lc["white_flux"][~lc["white_mask"]]
+        metrics = {"channels": n_ch, "white band (um)": [float(white_range[0]), float(white_range[1])],
+                   "orbits": int(cov.n_orbits),
+                   "flagged channel-exposures": int(np.sum(binned.mask)),
+                   "filled pixels": int(np.sum(binned.n_filled)),
+                   "white flux median (e-)": float(np.median(white_flux)) if white_flux.size else None,
+                   "flux outliers": int(np.sum(cov.flux_outlier))}
+        self.progress(3, 3, "binning")
+        self.write_entry(self.output().path, [spectra_path], outputs, metrics, [fig], started)
