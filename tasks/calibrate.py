@@ -119,6 +119,7 @@ class CalibrateChunk(VisitTask):
                    "exposure_time": exp.exposure_time, "scan_velocity": exp.scan_velocity,
                    "scan_direction": int(np.sign(exp.scan_velocity)),
                    "background_level": cal.background_level,
+                   "origin_x": exp.origin[0], "origin_y": exp.origin[1],
                    "obsgeo": np.asarray(exp.obsgeo if exp.obsgeo else (np.nan,) * 3, float)}
             row.update({f"n_{name.lower()}": cal.flag_counts.get(name, 0) for name in dq.FLAGS})
             rows.append(row)

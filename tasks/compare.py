@@ -64,7 +64,7 @@ def _describe(path):
 def _white_rms(table, kind):
     if kind == "DETRENDED":
         use = np.asarray(table["used"], bool)
-        r = np.asarray(table["white_residual"], float)[use] / np.asarray(table["white_systematics"])[use]
+        r = np.asarray(table["white_residual"], float)[use]
         return float(np.sqrt(np.mean(r ** 2)) * 1e6)
     f = np.asarray(table["white_flux"], float)
     f = f[np.isfinite(f)] / np.nanmedian(f)

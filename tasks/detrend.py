@@ -96,7 +96,8 @@ class Detrend(VisitTask):
                        visit_order=params["visit_order"], orbit_order=max(params["orbit_order"], 0)
                        if not stare else 0,
                        ramp=params["orbit_ramp"] and not stare,
-                       drop_first_orbit=params["drop_first_orbit"] and not stare,
+                       drop_first_orbit=params["drop_first_orbit"] and not stare
+                       and len(np.unique(lc["orbit"])) > 2,
                        mode="joint" if params["fit"] == "joint" else "out_of_event",
                        phase_curve=(visit.event["t0"], visit.event["period"])
                        if params["phase_curve"] else None)
@@ -112,7 +113,7 @@ class Detrend(VisitTask):
         chans = fit_channels(t, flux, err ** 2, template, mask=mask,
                              divide_white=white.systematics if params["common_mode"] else None,
                              **options)
-        used = np.asarray(white.fit_mask, bool)
+        used = ~np.asarray(white.fit_mask, bool)   # fit_mask is True where left out
 
         det = Table()
         det["exposure"] = lc["exposure"]
@@ -129,8 +130,7 @@ class Detrend(VisitTask):
         det["systematics"] = chans.systematics
         det["model"] = chans.model
         det["residual"] = chans.residuals
-        for name in ("white_systematics", "white_model", "white_residual", "systematics", "model",
-                     "residual"):
+        for name in ("white_systematics", "white_model", "systematics", "model"):
             det[name].unit = "electron"
 
         def quality(residual, error, fit_mask):
@@ -140,7 +140,7 @@ class Detrend(VisitTask):
             expected = float(np.sqrt(np.mean(e ** 2))) if e.size else np.nan
             beta = np.nan
             if r.size >= 12:
-                sizes = np.unique(np.clip(np.arange(1, r.size // 4 + 1), 1, None))
+                sizes = np.arange(1, r.size // 4 + 1)
                 beta = float(binned_rms(r / np.median(e), sizes).beta)
             return rms, expected, beta
 
@@ -152,9 +152,8 @@ class Detrend(VisitTask):
             fluxes.append((j, float(channels["wave_lo"][j]), float(channels["wave_hi"][j]),
                            chans.fits[j], flux[:, j], err[:, j]))
         for j, lo, hi, fit_j, f, e in fluxes:
-            fm = np.asarray(fit_j.fit_mask, bool)
-            norm = fit_j.systematics
-            rms, expected, beta = quality(fit_j.residuals / norm, e / norm, fm)
+            fm = ~np.asarray(fit_j.fit_mask, bool)
+            rms, expected, beta = quality(fit_j.residuals, fit_j.detrended_error, fm)
             rows.append({"channel": j, "wave_lo": lo, "wave_hi": hi, "wave_mid": 0.5 * (lo + hi),
                          "depth": fit_j.depth, "depth_error": fit_j.depth_error,
                          "rms_ppm": rms * 1e6, "expected_ppm": expected * 1e6,

@@ -21,8 +21,10 @@ Products in ``NOTEBOOK/extract-IDENT/``:
 
 import time
 
+import astropy.units as u
 import luigi
 import numpy as np
+from astropy.modeling.physical_models import BlackBody
 from astropy.io import fits
 from astropy.table import Table, hstack, vstack
 
@@ -32,11 +34,13 @@ from lightledger.pipeline.extract import extract_chunk
 from lightledger.pipeline.mask import to_boolean
 from lightledger.pipeline.resample import resample
 from lightledger.pipeline.trace import fit_trace, refine, scan_band
+from lightledger.pipeline.wavelength import (column_wavelengths, pixel_edges, reference_column,
+                                             refine_solution)
 
 from .base import ENTRY_NAME, VisitTask
 from .calibrate import Calibrate, read_chunk
 from .products import table_hdu, write_fits
-from .references import column_wavelengths, load_throughput
+from .references import load_throughput
 
 __all__ = ["ExtractReference", "ExtractChunk", "Extract"]
 
@@ -111,7 +115,7 @@ class ExtractReference(VisitTask):
         header.update(APLO=(lo, "aperture first row"), APHI=(hi, "aperture row after the last"))
         ref_spec = np.sum(median[lo:hi], axis=0)
 
-        origin_x = int(exposures["origin_x"][0]) if "origin_x" in exposures.colnames else 0
+        origin_x = int(exposures["origin_x"][0])
         wave, edges, shift = self._wavelengths(nx, origin_x, ref_spec)
         header["WAVESHFT"] = (float(shift), "refined dispersion zero point shift, pixels")
         table = Table()
@@ -129,22 +133,25 @@ class ExtractReference(VisitTask):
         write_fits(self.output().path, hdus, self.provenance(inputs), header=header)
 
     def _wavelengths(self, nx, origin_x, ref_spec):
-        """Wavelength per column and pixel edges (um); refined when asked and possible."""
+        """Wavelength per column and pixel edges (um), refined against the model spectrum."""
         visit = self.config
-        shift = 0.0
-        if self.params["refine_wavelength"]:
-            throughput = load_throughput(visit.profile)
-            if throughput is not None:
-                from lightledger.pipeline.wavelength import refine_zero_point
-                shift = refine_zero_point(
-                    ref_spec, profile_coefficients=visit.profile.dispersion,
-                    x=np.arange(nx) + origin_x - (visit.target["source_x"] + visit.profile.column_offset),
-                    throughput=throughput, teff=visit.target["teff"])
-        x_ref = visit.target["source_x"] + visit.profile.column_offset + shift
-        centres = np.arange(nx) + origin_x
         coeffs = np.asarray(visit.profile.dispersion, float)
-        wave = np.polynomial.polynomial.polyval(centres - x_ref, coeffs)
-        edges = np.polynomial.polynomial.polyval(np.arange(nx + 1) - 0.5 + origin_x - x_ref, coeffs)
+        x_ref = reference_column(visit.target["source_x"], visit.profile.column_offset)
+        shift = 0.0
+        throughput = load_throughput(visit.profile) if self.params["refine_wavelength"] else None
+        if throughput is not None:
+            pad = 30
+            columns = np.arange(-pad, nx + pad)
+            wave = column_wavelengths(columns, coeffs, x_ref, origin_x=origin_x)
+            dispersion = np.abs(np.gradient(wave))
+            photons = BlackBody(temperature=visit.target["teff"] * u.K)(wave * u.um).value / wave
+            model = np.interp(wave, *throughput, left=0.0, right=0.0) * photons * dispersion
+            order = np.argsort(wave)
+            fit = refine_solution(ref_spec, wave[order], model[order], coeffs, x_ref,
+                                  origin_x=origin_x)
+            coeffs, shift = np.asarray(fit.coefficients, float), float(fit.shift)
+        wave = column_wavelengths(np.arange(nx), coeffs, x_ref, origin_x=origin_x)
+        edges = pixel_edges(nx, coeffs, x_ref, origin_x=origin_x)
         return wave, edges, shift
 
 

@@ -149,7 +149,7 @@ class Bin(VisitTask):
         times = barycentric_times(mid_mjd, visit.target["ra"], visit.target["dec"], obsgeo_m=obsgeo)
         stare = bool(np.all(np.asarray(exp["scan_direction"]) == 0))
         cov = exposure_covariates(np.asarray(exp["start_mjd_utc"], float), mid_mjd,
-                                  white_flux=white.flux[:, 0], stare=stare)
+                                  white_flux=white.flux[:, 0], stare=stare, gap_factor=3.0)
 
         lc = Table()
         lc["exposure"] = np.asarray(exp["exposure"], int)

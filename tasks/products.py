@@ -141,6 +141,7 @@ def table_hdu(table, name):
     description, when it has one, becomes its TCOMMn comment.
     """
     table = table.copy(copy_data=False)
+    table.meta.clear()   # header keywords are set explicitly by the caller
     comments = {}
     for col in table.itercols():
         unit = col.unit.to_string() if col.unit is not None else None

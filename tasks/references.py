@@ -8,8 +8,9 @@ from astropy.table import Table
 
 from lightledger.pipeline.detector import cut_subarray, flat_from_cube
 from lightledger.pipeline.errors import InputFileError
+from lightledger.pipeline.wavelength import column_wavelengths, reference_column
 
-__all__ = ["References", "load_references", "column_wavelengths", "load_throughput"]
+__all__ = ["References", "load_references", "load_throughput"]
 
 
 @dataclass(frozen=True)
@@ -37,17 +38,6 @@ def _primary(path, role, ndim):
     return np.asarray(data, dtype=np.int64 if role == "bad pixels" else np.float64)
 
 
-def column_wavelengths(profile, source_x, nx, origin_x):
-    """Wavelength (um) of each subarray column from the profile's dispersion polynomial.
-
-    x = column + SUBORIGX in full-detector columns; x_ref = source_x + column_offset;
-    wavelength = sum_k c_k (x - x_ref)^k.
-    """
-    x = np.arange(nx) + origin_x
-    x_ref = source_x + profile.column_offset
-    return np.polynomial.polynomial.polyval(x - x_ref, np.asarray(profile.dispersion, float))
-
-
 _CACHE = {}
 
 
@@ -68,7 +58,8 @@ def _load(profile, shape, origin, source_x):
         if profile.flat_range is None:
             raise InputFileError(f"{profile.path}: the flat is a wavelength cube but "
                                  f"flat.wavelength_range is not given")
-        wave = column_wavelengths(profile, source_x, shape[1], origin[0])
+        x_ref = reference_column(source_x, profile.column_offset)
+        wave = column_wavelengths(np.arange(shape[1]), profile.dispersion, x_ref, origin_x=origin[0])
         flat = flat_from_cube(flat, wave, profile.flat_range)
     return References(bias=arrays["bias"], dark=arrays["dark"], flat=flat,
                       nonlinearity=arrays["nonlinearity"], bad_pixels=arrays["bad_pixels"])

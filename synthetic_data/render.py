@@ -1,0 +1,272 @@
+"""Render a fictional scenario into a visit directory ready to reduce.
+
+:func:`render` writes into ``outdir``:
+
+- ``raw/*.fits``: the exposures in the raw layout (version 1);
+- ``calibration/{bias,dark,flat,nonlinearity,bad_pixels}.fits`` and
+  ``calibration/throughput.ecsv``;
+- ``instrument.toml`` and ``visit.toml``;
+- ``truth.fits`` (columns documented in :mod:`.truth`).
+
+A read in ADU is bias + nonlinear(e_linear) / gain + read noise / gain, with
+e_linear the cumulative charge: Poisson increments of source (times the
+flat), sky (times the flat) and dark between reads, plus cosmic-ray hits from
+their read on.  The output is deterministic for a seed: the same bytes apart
+from the CHECKSUM keywords' time stamps.
+"""
+
+import pathlib
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+from astropy.time import Time, TimeDelta
+
+from lightledger.pipeline.errors import ParameterError
+from . import detector, model as vm
+from .scenarios import SCENARIOS, get_scenario
+from .truth import write_truth
+
+__all__ = ["render", "simulate_reads", "SCENARIOS"]
+
+
+def simulate_reads(expected, *, rng, bias, nonlinearity, gain, read_noise, full_well,
+                   row_noise=0.0, column_noise=0.0, cosmic_reads=None, cosmic_pixels=None,
+                   cosmic_electrons=None):
+    """Noisy reads (ADU) of one exposure from its expected cumulative charge.
+
+    Parameters
+    ----------
+    expected : ndarray (n_reads, n_rows, n_columns)
+        Expected cumulative linear charge, electrons (0 at the zero read).
+    rng : numpy.random.Generator
+    bias : ndarray (n_rows, n_columns), ADU
+    nonlinearity : ndarray (K, n_rows, n_columns)
+    gain : float
+        Electrons per ADU.
+    read_noise : float
+        White read noise per read, electrons.
+    full_well : float
+        Clip level of the charge as read, electrons.
+    row_noise, column_noise : float, optional
+        Correlated 1/f read noise along the readout (rows) and the columns,
+        electrons per read.
+    cosmic_reads, cosmic_pixels, cosmic_electrons : array_like, optional
+        Cosmic-ray hits: first read holding the charge, (y, x) pixel, charge.
+
+    Returns
+    -------
+    ndarray of float32 (n_reads, n_rows, n_columns)
+    """
+    charge = detector.poisson_ramp(expected, rng=rng)
+    if cosmic_reads is not None and len(cosmic_reads):
+        n_reads = charge.shape[0]
+        reads = np.asarray(cosmic_reads)
+        after = np.arange(n_reads)[:, None] >= reads[None, :]            # (n_reads, n_hits)
+        ys, xs = np.asarray(cosmic_pixels[0]), np.asarray(cosmic_pixels[1])
+        for_read = after * np.asarray(cosmic_electrons)[None, :]
+        np.add.at(charge, (slice(None), ys, xs), for_read)
+    noise = rng.normal(0.0, read_noise, charge.shape)
+    if row_noise > 0 or column_noise > 0:
+        noise += detector.one_over_f_noise(rng, *charge.shape, row_sigma=row_noise,
+                                           column_sigma=column_noise)
+    return detector.digitise(charge, bias=bias, nonlinearity=nonlinearity, gain=gain,
+                             full_well=full_well, read_noise_e=noise)
+
+
+def _primary_header(model, start_s, obsgeo):
+    sc = model.scenario
+    t = Time(model.date_beg, scale="utc", precision=6) + TimeDelta(start_s, format="sec")
+    h = fits.Header()
+    h["DATE-BEG"] = (t.isot, "UTC of the first exposure's zero read")
+    h["TIMESYS"] = ("UTC", "time scale of DATE-BEG")
+    h["XPOSURE"] = (model.exposure_time, "[s] zero read to last read of one exposure")
+    if obsgeo is not None:
+        for axis, value in zip("XYZ", obsgeo):
+            h[f"OBSGEO-{axis}"] = (float(value), "[m] observer ITRS position at mid-time")
+    return h
+
+
+def _write_raw(path, header, reads, read_times, startoff=None):
+    hdus = [fits.PrimaryHDU(header=header),
+            fits.ImageHDU(reads, name="READS"),
+            fits.ImageHDU(np.asarray(read_times, dtype=np.float64), name="READTIME")]
+    if startoff is not None:
+        hdus.append(fits.ImageHDU(np.asarray(startoff, dtype=np.float64), name="STARTOFF"))
+    fits.HDUList(hdus).writeto(path, overwrite=True, checksum=True)
+
+
+def _write_image(path, array):
+    fits.PrimaryHDU(np.asarray(array)).writeto(path, overwrite=True, checksum=True)
+
+
+def _toml_list(values):
+    return "[" + ", ".join(repr(float(v)) for v in values) + "]"
+
+
+def _write_profile(model, path):
+    sc = model.scenario
+    text = f'''# Instrument profile of a fictional instrument (rendered by the forward model)
+name = "{sc.profile_name}"
+
+[detector]
+gain = {sc.gain!r}
+read_noise = {sc.read_noise!r}
+saturation = {sc.saturation!r}
+full_shape = [{sc.full_shape[0]}, {sc.full_shape[1]}]
+
+[reference_files]
+bias = "calibration/bias.fits"
+dark = "calibration/dark.fits"
+flat = "calibration/flat.fits"
+nonlinearity = "calibration/nonlinearity.fits"
+bad_pixels = "calibration/bad_pixels.fits"
+throughput = "calibration/throughput.ecsv"
+
+[flat]
+wavelength_range = {_toml_list(sc.flat_range)}
+
+[dispersion]
+coefficients = {_toml_list(sc.dispersion)}
+column_offset = {float(sc.column_offset)!r}
+
+[trace]
+row_offset = {float(sc.row_offset)!r}
+tilt = {float(sc.tilt)!r}
+width = {float(sc.psf_sigma)!r}
+'''
+    path.write_text(text)
+
+
+def _write_visit(model, path, wdepth):
+    sc = model.scenario
+    edges = np.asarray(sc.channel_edges)
+    duration = _event_duration(sc)
+    text = f'''# Visit description of a fictional visit (rendered by the forward model)
+[visit]
+name = "{sc.visit_name}"
+raw = "raw"
+profile = "instrument.toml"
+notebook = "notebook"
+
+[target]
+name = "{sc.target_name}"
+ra = {sc.ra!r}
+dec = {sc.dec!r}
+teff = {sc.teff!r}
+source_x = {float(sc.source_x)!r}
+source_y = {float(sc.source_y)!r}
+
+[event]
+kind = "{sc.kind}"
+t0 = {model.t0!r}
+period = {sc.period!r}
+duration = {round(duration, 6)!r}
+rp_rs = {sc.rp_rs!r}
+a_rs = {sc.a_rs!r}
+inclination = {sc.inclination!r}
+u1 = {sc.u1!r}
+u2 = {sc.u2!r}
+
+[stages.calibrate]
+[stages.extract]
+[stages.bin]
+edges = {_toml_list(edges)}
+white_range = {_toml_list([edges[0], edges[-1]])}
+[stages.detrend]
+'''
+    path.write_text(text)
+
+
+def _event_duration(sc):
+    """First-to-fourth contact duration of a circular orbit, days."""
+    b = sc.a_rs * np.cos(np.deg2rad(sc.inclination))
+    arg = np.sqrt(max((1 + sc.rp_rs) ** 2 - b ** 2, 0.0)) / (sc.a_rs * np.sin(np.deg2rad(sc.inclination)))
+    return float(sc.period / np.pi * np.arcsin(min(arg, 1.0)))
+
+
+def render(scenario, outdir, *, seed=0, n_exposures=None, progress=None):
+    """Render a scenario into a visit directory.
+
+    Parameters
+    ----------
+    scenario : str
+        A name in :data:`SCENARIOS`.
+    outdir : str or path-like
+        Directory to write (created; existing files of the same names are
+        overwritten).
+    seed : int, optional
+        Seed of every random draw; the same seed gives the same files.
+    n_exposures : int, optional
+        Exposures of the visit; default the scenario's.
+    progress : callable, optional
+        Called as ``progress(done, total)`` after each exposure.
+
+    Returns
+    -------
+    pathlib.Path
+        Path of the written ``visit.toml``.
+
+    Raises
+    ------
+    lightledger.pipeline.errors.ParameterError
+        For an unknown scenario (the message names the valid ones) or an
+        impossible number of exposures.
+    """
+    sc = get_scenario(scenario)
+    if n_exposures is not None and (int(n_exposures) != n_exposures or n_exposures < 2):
+        raise ParameterError(f"n_exposures must be an integer >= 2; got {n_exposures!r}")
+    model = vm.build_visit(sc, seed=seed, n_exposures=n_exposures)
+    out = pathlib.Path(outdir)
+    (out / "raw").mkdir(parents=True, exist_ok=True)
+    (out / "calibration").mkdir(parents=True, exist_ok=True)
+
+    refs = model.refs
+    for name in ("bias", "dark", "flat", "nonlinearity", "bad_pixels"):
+        _write_image(out / "calibration" / f"{name}.fits", getattr(refs, name))
+    wave = np.round(np.linspace(0.9, 1.9, 501), 6)
+    table = Table({"wavelength": wave, "throughput": vm.throughput_of(sc, wave)})
+    table["wavelength"].unit = "um"
+    table.meta["comment"] = [f"throughput of the fictional instrument {sc.profile_name}"]
+    table.write(out / "calibration" / "throughput.ecsv", format="ascii.ecsv", overwrite=True)
+
+    sub = model.sub_slices
+    bias = refs.bias[sub].astype(float)
+    nonlin = refs.nonlinearity[(slice(None),) + sub].astype(float)
+    noise_seeds = np.random.SeedSequence(seed).spawn(4)[3].spawn(model.n_exposures)
+    cr = model.cosmics
+    n = model.n_exposures
+    per_file = sc.exposures_per_file
+    done = 0
+    for first in range(0, n, per_file):
+        idx = np.arange(first, min(first + per_file, n))
+        cube = np.empty((idx.size, sc.n_reads) + sc.sub_shape, dtype=np.float32)
+        for j, i in enumerate(idx):
+            hits = cr.exposure == i
+            cube[j] = simulate_reads(
+                vm.expected_charge(model, i), rng=np.random.default_rng(noise_seeds[i]),
+                bias=bias, nonlinearity=nonlin, gain=sc.gain, read_noise=sc.read_noise,
+                full_well=sc.full_well, row_noise=sc.row_noise, column_noise=sc.column_noise,
+                cosmic_reads=cr.read[hits], cosmic_pixels=(cr.y[hits], cr.x[hits]),
+                cosmic_electrons=cr.electrons[hits])
+            done += 1
+            if progress is not None:
+                progress(done, n)
+        obsgeo = None if model.obsgeo is None else model.obsgeo[idx].mean(axis=0)
+        header = _primary_header(model, model.start[idx[0]], obsgeo)
+        header["SCANVEL"] = (float(model.velocity[idx[0]]), "[rows/s] signed scan speed")
+        header["SUBORIGX"] = (int(sc.sub_origin[0]), "full-detector column of [0,0]")
+        header["SUBORIGY"] = (int(sc.sub_origin[1]), "full-detector row of [0,0]")
+        header["INSTPROF"] = (sc.profile_name, "instrument profile")
+        path = out / "raw" / f"{sc.name}-{first:04d}.fits"
+        if per_file == 1:
+            _write_raw(path, header, cube[0], model.read_times)
+        else:
+            _write_raw(path, header, cube, model.read_times,
+                       startoff=model.start[idx] - model.start[idx[0]])
+
+    tr = write_truth(model, out / "truth.fits")
+    _write_profile(model, out / "instrument.toml")
+    visit = out / "visit.toml"
+    _write_visit(model, visit, tr["wdepth"])
+    return visit
