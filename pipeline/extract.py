@@ -30,7 +30,12 @@ When ``trace_offset`` (the trace's row offset per column) is given, only the
 that follow the trace with a 4-tap cubic convolution kernel (Keys 1981),
 smoothed along the dispersion there, and sampled back onto the detector rows.
 The data and their variances are never resampled, so the extraction formulas
-keep a diagonal covariance and stay exact.  Without ``trace_offset`` the
+keep a diagonal covariance and stay exact.  Measured on a noiseless trace
+tilted by 0.03 rows per column over 120 columns (tests/test_extract.py):
+along the trace with a cubic polynomial, flux within 0.11 %; along detector
+rows, within 0.003 % with a degree-6 polynomial but off by up to 47 % with
+a degree-1 polynomial.  So pass ``trace_offset`` (or raise ``order``) for
+tilted traces.  Without ``trace_offset`` the
 profile is smoothed along detector rows, which Horne 1986 shows to be adequate
 for traces that are nearly aligned with the rows (the per-row profile of a
 slightly tilted trace is still a smooth function of the column).
@@ -47,7 +52,7 @@ spectroscopy".
 Marsh, T. R. 1989, PASP 101, 1032, "The extraction of highly distorted
 spectra".
 Keys, R. 1981, IEEE Trans. ASSP 29, 1153, "Cubic convolution interpolation
-for digital image processing".
+for digital image processing" (citation from memory).
 """
 
 from dataclasses import dataclass
@@ -203,17 +208,20 @@ def _keys_weights(t):
     ])
 
 
-def _sample_rows(a, good, dy):
+def _sample_rows(a, good, dy, square=False):
     """Sample ``a`` (n_exp, n_rows, n_cols) at rows ``u + dy`` for every row u.
 
     ``dy`` has shape (n_exp, n_cols).  Returns the samples and a validity
-    mask (all four taps inside the frame and good).
+    mask (all four taps inside the frame and good).  With ``square`` the
+    kernel weights are squared (to propagate variances).
     """
     n_exp, ny, nx = a.shape
     pos = np.arange(ny)[None, :, None] + dy[:, None, :]          # (e, u, x)
     base = np.floor(pos).astype(int)
     t = pos - base
     wts = _keys_weights(t)                                        # (4, e, u, x)
+    if square:
+        wts = wts ** 2
     out = np.zeros(pos.shape)
     valid = np.ones(pos.shape, dtype=bool)
     for tap in range(4):      # four kernel taps, not a loop over pixels
@@ -271,7 +279,11 @@ def fit_profile(flux, variance, mask=None, *, spectrum=None, method="polynomial"
     Notes
     -----
     The normalised data ``D / f`` have variance ``V / f^2``, so the fit
-    weights are ``f^2 / V`` (Horne 1986, Table 1, step 5).
+    weights are ``f^2 / V`` (Horne 1986, Table 1, step 5).  For the
+    polynomial, samples deviating by more than ``threshold`` sigma from a
+    7-column running median are left out before the first fit.  Along a
+    trace, a resampled value ``sum_k w_k s_k`` of the four kernel taps has
+    variance ``sum_k w_k^2 V_k / f^2``, whose inverse is its weight.
     """
     flux, variance, good = _validate(flux, variance, mask)
     return _fit_profile(flux, variance, good, spectrum=spectrum, method=method,
@@ -306,10 +318,10 @@ def _fit_profile(flux, variance, good, *, spectrum, method, order, window,
         if not np.all(np.isfinite(dy)):
             raise ParameterError("trace_offset: must be finite")
         sample, valid = _sample_rows(sample, weight > 0, dy)
-        # weight of a resampled value: inverse of the kernel-propagated variance
+        # weight of a resampled value: 1 / sum_k w_k^2 var_k over the four taps
         var_s, _ = _sample_rows(np.where(weight > 0, 1.0 / np.where(weight > 0, weight, 1.0), 0.0),
-                                weight > 0, dy)
-        weight = np.where(valid & (var_s > 0), 1.0 / np.where(var_s > 0, np.abs(var_s), 1.0), 0.0)
+                                weight > 0, dy, square=True)
+        weight = np.where(valid & (var_s > 0), 1.0 / np.where(var_s > 0, var_s, 1.0), 0.0)
 
     if method == "polynomial":
         # screen outliers (cosmic rays) against a 7-column running median first,

@@ -191,6 +191,9 @@ STAGES = {
         Param("profile_order", 3, "int",
               "order of the polynomial that smooths the spatial profile along the dispersion",
               minimum=0, maximum=10),
+        Param("follow_tilt", False, "bool",
+              "optimal extraction: smooth the spatial profile along the fitted trace instead of "
+              "along detector rows (for strongly tilted traces)"),
         Param("refine_wavelength", True, "bool",
               "refine the dispersion zero point by cross-correlation with the model spectrum"),
         Param("align", True, "bool",
@@ -215,13 +218,16 @@ STAGES = {
         Param("visit_order", 1, "int", "order of the visit-long polynomial in time", minimum=0, maximum=4),
         Param("orbit_order", 2, "int",
               "order of the orbit-phase polynomial shared by all orbits (-1 = none)", minimum=-1, maximum=4),
-        Param("orbit_ramp", True, "bool", "fit an exponential ramp at the start of every orbit"),
+        Param("orbit_ramp", True, "bool",
+              "fit an exponential ramp at the start of every orbit (of the visit, for a stare)"),
         Param("scan_offset", True, "bool", "fit a flux offset between forward and reverse scans"),
         Param("drop_first_orbit", True, "bool", "leave the first orbit of a multi-orbit visit out of the fit"),
         Param("fit", "joint", "str",
               "'joint' = systematics and event depth together; 'outside' = systematics from "
               "out-of-event exposures only, then the depth", choices=("joint", "outside")),
-        Param("phase_curve", False, "bool", "add a sinusoidal phase-curve term at the orbital period"),
+        Param("phase_curve", "auto", "str",
+              "sinusoidal phase-curve terms at the orbital period: 'on', 'off', or 'auto' (on for "
+              "an eclipse visit longer than a tenth of the period)", choices=("auto", "on", "off")),
         Param("common_mode", False, "bool",
               "divide each channel by the white light curve's systematics model before fitting it"),
     )),

@@ -20,7 +20,7 @@ References
 Deming, D., et al. 2013, ApJ 774, 95 (spatial scans: the band a source
 crosses during an exposure).
 Sheppard, W. F. 1898, Proc. London Math. Soc. 29, 353 (the 1/12 pixel^2
-correction of a second moment of binned data).
+correction of a second moment of binned data; citation from memory).
 """
 
 from dataclasses import dataclass

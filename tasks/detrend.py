@@ -56,6 +56,12 @@ def event_template(bjd, event):
     return 1.0 - visible
 
 
+def _wants_phase_curve(setting, event, bjd):
+    if setting == "auto":
+        return event["kind"] == "eclipse" and np.ptp(bjd) > 0.1 * event["period"]
+    return setting == "on"
+
+
 def read_depths(path):
     """The DEPTHS table of a detrend product."""
     with fits.open(path, memmap=False) as hdul:
@@ -95,12 +101,12 @@ class Detrend(VisitTask):
                        else np.asarray(lc["scan_direction"], int),
                        visit_order=params["visit_order"], orbit_order=max(params["orbit_order"], 0)
                        if not stare else 0,
-                       ramp=params["orbit_ramp"] and not stare,
+                       ramp=params["orbit_ramp"],
                        drop_first_orbit=params["drop_first_orbit"] and not stare
                        and len(np.unique(lc["orbit"])) > 2,
                        mode="joint" if params["fit"] == "joint" else "out_of_event",
                        phase_curve=(visit.event["t0"], visit.event["period"])
-                       if params["phase_curve"] else None)
+                       if _wants_phase_curve(params["phase_curve"], visit.event, t) else None)
         self.progress(0, 2, "white light curve")
         wf = np.asarray(lc["white_flux"], float)
         we = np.asarray(lc["white_error"], float)

@@ -205,11 +205,12 @@ class ExtractChunk(VisitTask):
             trace_offset = rows - rows.mean()
         spec = extract_chunk(flux, var, bad, method=params["method"], aperture=aperture,
                              threshold=params["clip_threshold"], profile_order=params["profile_order"],
-                             trace_offset=trace_offset if params["method"] == "optimal" else None)
+                             trace_offset=trace_offset if params["follow_tilt"] else None)
         self.progress(1, 3, f"chunk {self.chunk} drifts")
         reference = np.asarray(refspec["flux"], float)
         shifts = spectral_shift(spec.flux, reference, variance=spec.variance, mask=spec.mask)
         out_flux, out_var, out_mask = spec.flux, spec.variance, spec.mask
+        out_mask = out_mask | ~np.isfinite(out_flux) | ~np.isfinite(out_var)
         if params["align"]:
             grid = np.arange(nx + 1) - 0.5
             old = grid[None, :] - shifts.shift[:, None]

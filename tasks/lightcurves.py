@@ -134,13 +134,19 @@ class Bin(VisitTask):
         median_spec = np.nanmedian(np.where(good, flux, np.nan), axis=0)
         median_spec = np.where(np.isfinite(median_spec), median_spec, 0.0)
         edges = _channel_edges(params, pix_edges, median_spec)
-        fill = None
+        fill = fill_var = None
         if params["fill"] == "profile":
+            # a bad pixel takes the median spectrum scaled to its exposure's total, and the
+            # median variance scaled alike
             scale = total / max(np.sum(median_spec), 1e-30)
+            median_var = np.nanmedian(np.where(good, var, np.nan), axis=0)
+            median_var = np.where(np.isfinite(median_var), median_var, np.nan)
             fill = median_spec[None, :] * scale[:, None]
-        binned = bin_spectra(pix_edges, flux, var, mask, edges, fill=fill)
+            fill_var = median_var[None, :] * scale[:, None]
+        binned = bin_spectra(pix_edges, flux, var, mask, edges, fill=fill, fill_variance=fill_var)
         white_range = params["white_range"] or (edges[0], edges[-1])
-        white = bin_spectra(pix_edges, flux, var, mask, np.asarray(white_range, float), fill=fill)
+        white = bin_spectra(pix_edges, flux, var, mask, np.asarray(white_range, float), fill=fill,
+                            fill_variance=fill_var)
         self.progress(1, 3, "times and covariates")
 
         mid_mjd = np.asarray(exp["start_mjd_utc"], float) + np.asarray(exp["mid_offset"], float) / 86400

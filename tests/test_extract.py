@@ -261,6 +261,8 @@ def test_revised_variance_monte_carlo():
 
 
 def test_extract_chunk_aperture_and_types():
+    # Definition of the aperture (self-consistency): pixels outside
+    # [row_lo, row_hi) do not enter; a per-exposure band masks its outer rows.
     rng = np.random.default_rng(2)
     n_exp, ny, nx = 4, 20, 30
     data, var, prof, spec = simulate(rng, n_exp, 9, nx)
@@ -302,6 +304,8 @@ def test_inputs_not_mutated():
 
 
 def test_unusable_columns_and_errors():
+    # Mask contract of RULES.md / STYLE.md: a fully masked column is flagged
+    # and NaN; every-pixel-masked input and bad options raise.
     rng = np.random.default_rng(0)
     data, var, prof, spec = simulate(rng, 2, 9, 20)
     mask = np.zeros(data.shape, bool)

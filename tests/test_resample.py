@@ -137,6 +137,7 @@ def test_density_kind_and_per_row_edges():
 
 
 def test_inputs_not_mutated_and_errors():
+    # photutils' test_input_data_not_mutated practice; mask contract of STYLE.md
     edges = np.arange(11, dtype=float)
     flux = np.arange(10, dtype=float)
     flux[3] = np.nan

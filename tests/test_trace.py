@@ -127,6 +127,7 @@ def test_scan_band_edges(psf):
 
 
 def test_inputs_not_mutated_and_errors():
+    # photutils' test_input_data_not_mutated practice; error contract of STYLE.md
     rng = np.random.default_rng(3)
     cube = gaussian_rows(20, np.full((2, NX), 9.0), 1.2) * SPEC + rng.normal(size=(2, 20, NX))
     mask = rng.random(cube.shape) < 0.01

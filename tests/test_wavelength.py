@@ -112,6 +112,7 @@ def test_align_spectra_integer_exact_and_conserving():
 
 
 def test_inputs_not_mutated_and_errors():
+    # photutils' test_input_data_not_mutated practice; error contract of STYLE.md
     counts, var = observe(0.5)
     lam, mod = model_grid()
     copies = counts.copy(), var.copy(), lam.copy(), mod.copy()
