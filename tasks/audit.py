@@ -7,9 +7,9 @@ notebook folder, or a visit description whose notebook is audited):
 * every product: its SHA-256 is compared with the one its entry recorded;
 * every input the product records is looked up: **missing** (gone),
   **changed** (its bytes differ from the recorded SHA-256), or **stale** (the
-  input itself is intact but something it was made from is missing or
-  changed);
-* the lineage is printed from the raw files to the light curves.
+  input itself is intact but something it was made from, further up the
+  lineage, is missing or changed);
+* the lineage is printed from the light curves back to the raw files.
 
 Each problem is one line naming the product and what is wrong.
 """
@@ -24,10 +24,12 @@ from astropy.io import fits
 from lightledger.pipeline.errors import InputFileError
 
 from .base import ENTRY_NAME
-from .products import read_provenance
+from .products import read_provenance, resolve_input
 from .rawio import sha256_of
 
 __all__ = ["AuditReport", "audit", "find_products"]
+
+_PRODUCT_SUFFIXES = (".fits", ".ecsv")
 
 
 @dataclass
@@ -40,7 +42,7 @@ class AuditReport:
 
 
 def find_products(path):
-    """Products (FITS and ECSV) under ``path``, and the notebook folder they belong to."""
+    """Products (FITS and ECSV files with provenance) under ``path``."""
     path = Path(path)
     if not path.exists():
         raise InputFileError(f"{path}: no such file or folder to audit")
@@ -50,8 +52,8 @@ def find_products(path):
         if not path.is_dir():
             raise InputFileError(f"{path}: the visit has no notebook yet; run lightledger reduce first")
     if path.is_file():
-        return [path]
-    products = sorted(p for p in path.rglob("*") if p.suffix in (".fits", ".ecsv")
+        return [path.resolve()]
+    products = sorted(p.resolve() for p in path.rglob("*") if p.suffix in _PRODUCT_SUFFIXES
                       and not p.name.startswith(".") and p.is_file())
     if not products:
         raise InputFileError(f"{path}: no products (FITS or ECSV) found")
@@ -71,8 +73,8 @@ def _checksum_problems(path):
                         continue
                     if hdu.verify_datasum() != 1:
                         problems.append(f"{path}: HDU {name} DATASUM does not match its data")
-                    if hdu.verify_checksum() != 1:
-                        problems.append(f"{path}: HDU {name} CHECKSUM does not match")
+                    elif hdu.verify_checksum() != 1:
+                        problems.append(f"{path}: HDU {name} CHECKSUM does not match its header")
     except Exception as exc:  # a truncated or garbled file
         problems.append(f"{path}: not a readable FITS file ({exc})")
     return problems
@@ -90,6 +92,56 @@ def _recorded_digest(path):
     return outputs.get(path.name)
 
 
+class _Checker:
+    """Checks products once each and remembers what they were made from."""
+
+    def __init__(self):
+        self.problems = {}   # product -> its own problems
+        self.inputs = {}     # product -> {resolved input path: recorded sha256}
+
+    def check(self, product):
+        if product in self.problems:
+            return self.problems[product]
+        problems = []
+        if product.suffix == ".fits":
+            problems += _checksum_problems(product)
+        recorded = _recorded_digest(product)
+        if recorded is not None and sha256_of(product) != recorded:
+            problems.append(f"{product}: its bytes differ from the SHA-256 its entry recorded")
+        try:
+            prov = read_provenance(product)
+        except Exception as exc:
+            problems.append(f"{product}: provenance unreadable ({exc})")
+            prov = {}
+        inputs = {resolve_input(product, name): digest
+                  for name, digest in prov.get("inputs", {}).items()}
+        for source, digest in inputs.items():
+            if not source.exists():
+                problems.append(f"{product}: input {source} is missing")
+            elif digest and sha256_of(source) != digest:
+                problems.append(f"{product}: input {source} has changed since the product was made")
+        self.problems[product] = problems
+        self.inputs[product] = inputs
+        return problems
+
+    def upstream_problem(self, product, seen=None):
+        """The first problem found further up the lineage of ``product``, or None."""
+        seen = set() if seen is None else seen
+        for source in self.inputs.get(product, {}):
+            if source in seen or source.suffix not in _PRODUCT_SUFFIXES or not source.exists():
+                continue
+            seen.add(source)
+            if not read_provenance(source):
+                continue   # a raw file: checked by its consumer
+            own = self.check(source)
+            if own:
+                return source
+            found = self.upstream_problem(source, seen)
+            if found:
+                return found
+        return None
+
+
 def audit(path):
     """Audit one product or every product under a folder.
 
@@ -104,91 +156,42 @@ def audit(path):
     report = AuditReport()
     products = find_products(path)
     report.n_products = len(products)
-    own = {}      # product -> list of its own problems
-    inputs_of = {}
+    checker = _Checker()
     for product in products:
-        problems = []
-        if product.suffix == ".fits":
-            problems += _checksum_problems(product)
-        recorded = _recorded_digest(product)
-        if recorded is not None and sha256_of(product) != recorded:
-            problems.append(f"{product}: bytes differ from the SHA-256 its entry recorded")
-        try:
-            prov = read_provenance(product)
-        except Exception as exc:
-            problems.append(f"{product}: provenance unreadable ({exc})")
-            prov = {}
-        inputs = prov.get("inputs", {})
-        inputs_of[product] = inputs
-        for name, digest in inputs.items():
-            source = Path(name)
-            if not source.exists():
-                problems.append(f"{product}: input {source} is missing")
-            elif digest and sha256_of(source) != digest:
-                problems.append(f"{product}: input {source} has changed since the product was made")
-        own[product] = problems
-
-    def upstream_bad(product, seen):
-        for name in inputs_of.get(product, {}):
-            source = Path(name)
-            if source in seen:
-                continue
-            seen.add(source)
-            if source in own and (own[source] or upstream_bad(source, seen)):
-                return True
-            if source not in own and source.suffix in (".fits", ".ecsv") and source.exists():
-                inputs_of[source] = read_provenance(source).get("inputs", {})
-                own[source] = [f"{source}: input {n} is missing" for n in inputs_of[source]
-                               if not Path(n).exists()]
-                if own[source] or upstream_bad(source, seen):
-                    return True
-        return False
-
-    for product in products:
-        report.problems += own[product]
-        direct = {Path(n) for n in inputs_of.get(product, {})}
-        if not own[product]:
-            for source in direct:
-                if source.exists() and upstream_bad(source, {source}) or (
-                        source in own and own[source]):
-                    report.problems.append(f"{product}: stale: its input {source} was made from "
-                                           f"inputs that are missing or changed")
-                    break
-    report.lines += _lineage(products, inputs_of)
+        own = checker.check(product)
+        report.problems += own
+        if not own:
+            bad = checker.upstream_problem(product)
+            if bad is not None:
+                report.problems.append(f"{product}: stale: made from {bad.parent.name}/{bad.name}, "
+                                       f"whose own inputs are missing or changed")
+    report.lines += _lineage(products, checker)
     return report
 
 
-def _lineage(products, inputs_of):
-    """Lines of the lineage tree from the most downstream products to the raw files."""
-    consumed = {Path(n) for ins in inputs_of.values() for n in ins}
+def _lineage(products, checker):
+    """Lines of the lineage tree from the most downstream products back to the raw files."""
+    consumed = {src for ins in checker.inputs.values() for src in ins}
     tips = [p for p in products if p not in consumed and p.suffix == ".fits"] or products[-1:]
     lines = ["lineage:"]
     shown = set()
 
     def walk(path, depth):
         label = f"{path.parent.name}/{path.name}"
-        repeat = path in shown
-        lines.append("  " * depth + ("- " if depth else "") + label + (" (above)" if repeat else ""))
-        if repeat:
+        lines.append("  " * depth + ("- " if depth else "") + label + (" (above)" if path in shown else ""))
+        if path in shown:
             return
         shown.add(path)
-        ins = inputs_of.get(path)
-        if ins is None and path.exists() and path.suffix in (".fits", ".ecsv"):
-            try:
-                ins = read_provenance(path).get("inputs", {})
-            except Exception:
-                ins = {}
-            inputs_of[path] = ins
-        raws = [Path(n) for n in (ins or {}) if Path(n).suffix in (".fits", ".ecsv")
-                and (Path(n).parent.name.split("-")[0] in
-                     ("calibrate", "extract", "bin", "detrend"))]
-        others = [Path(n) for n in (ins or {}) if Path(n) not in raws]
-        for source in raws:
+        if path not in checker.inputs and path.exists() and read_provenance(path):
+            checker.check(path)
+        ins = checker.inputs.get(path, {})
+        made = [p for p in ins if p.exists() and p.suffix in _PRODUCT_SUFFIXES and read_provenance(p)]
+        others = sorted(p.name for p in ins if p not in made)
+        for source in made:
             walk(source, depth + 1)
         if others:
-            names = sorted(p.name for p in others)
-            head = ", ".join(names[:4]) + (f" and {len(names) - 4} more" if len(names) > 4 else "")
-            lines.append("  " * (depth + 1) + f"- {len(names)} files: {head}")
+            head = ", ".join(others[:4]) + (f" and {len(others) - 4} more" if len(others) > 4 else "")
+            lines.append("  " * (depth + 1) + f"- {len(others)} raw or reference files: {head}")
 
     for tip in tips:
         walk(tip, 0)

@@ -33,7 +33,7 @@ from lightledger.pipeline import __version__
 from lightledger.pipeline.parameters import STAGE_ORDER, STAGES
 
 from .config import load_visit
-from .products import Provenance, write_json
+from .products import Provenance, relative_input, write_json
 from .rawio import sha256_of
 
 __all__ = ["VisitTask", "visit_config", "stage_identity", "stage_dir", "ENTRY_NAME",
@@ -147,7 +147,7 @@ class VisitTask(luigi.Task):
 
     def provenance(self, inputs):
         """Provenance for a product of this task; ``inputs`` is a list of paths."""
-        digests = {str(p): file_digest(p) for p in inputs}
+        digests = {relative_input(p, self.folder): file_digest(p) for p in inputs}
         return Provenance(self.stage, STAGES[self.stage].version, self.identity, self.params,
                           digests, visit=self.config.name)
 
@@ -198,7 +198,9 @@ class VisitTask(luigi.Task):
             "seconds": round(time.time() - started, 2),
             "params": {k: list(v) if isinstance(v, tuple) else v for k, v in self.params.items()},
             "overrides": self.config.overrides.get(self.stage, {}),
-            "inputs": {str(p): file_digest(p) for p in inputs},
+            "made_from": (stage_dir(self.config, STAGE_ORDER[STAGE_ORDER.index(self.stage) - 1]).name
+                          if self.stage != STAGE_ORDER[0] else str(self.config.raw)),
+            "inputs": {relative_input(p, self.folder): file_digest(p) for p in inputs},
             "outputs": {Path(p).name: file_digest(p) for p in outputs},
             "metrics": metrics,
             "figures": [Path(f).name for f in figures],

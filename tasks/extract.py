@@ -20,6 +20,7 @@ Products in ``NOTEBOOK/extract-IDENT/``:
 """
 
 import time
+import warnings
 
 import astropy.units as u
 import luigi
@@ -88,7 +89,9 @@ class ExtractReference(VisitTask):
             offset += n_chunk
         flux = np.concatenate(frames)
         bad = np.concatenate(masks)
-        median = np.nanmedian(np.where(bad, np.nan, flux), axis=0)
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)    # columns bad in every frame
+            median = np.nanmedian(np.where(bad, np.nan, flux), axis=0)
         median_bad = ~np.isfinite(median)
         median = np.where(median_bad, 0.0, median)
         ny, nx = median.shape

@@ -56,7 +56,8 @@ def extract_figure(path, wavelength, flux, exposures, profile_image):
     """Waterfall of normalised spectra, shifts against time, the spatial profile image."""
     fig, axes = plt.subplots(2, 2, figsize=(11, 7), constrained_layout=True)
     med = np.nanmedian(flux, axis=0)
-    ratio = flux / np.where(med > 0, med, np.nan)
+    bright = med > 0.05 * np.nanmax(med)          # leave the faint ends out of the colour scale
+    ratio = flux / np.where(bright, med, np.nan)
     ratio = ratio / np.nanmedian(ratio, axis=1, keepdims=True)
     lo, hi = np.nanpercentile(ratio, [2, 98])
     axes[0, 0].imshow(ratio, origin="lower", aspect="auto", cmap="viridis", vmin=lo, vmax=hi,
@@ -118,14 +119,14 @@ def detrend_figure(path, time, white, white_error, white_model, white_systematic
     if np.any(~used):
         axes[0].plot(t[~used], white[~used] / med, "x", color="0.6", label="left out")
     order = np.argsort(t)
-    axes[0].plot(t[order], white_model[order] / med, "-", color="k", lw=0.8, label="model")
+    axes[0].plot(t[order], white_model[order] / med, "_", color="k", ms=8, label="model")
     axes[0].set_xlabel("hours since the first exposure")
     axes[0].set_ylabel("white flux / median")
     axes[0].legend(fontsize=8)
     detr = white / white_systematics
     axes[1].errorbar(t[used], detr[used], white_error[used] / white_systematics[used], fmt=".",
                      color="tab:green")
-    axes[1].plot(t[order], (white_model / white_systematics)[order], "-", color="k", lw=0.8)
+    axes[1].plot(t[order], (white_model / white_systematics)[order], "_", color="k", ms=8)
     axes[1].set_xlabel("hours since the first exposure")
     axes[1].set_ylabel("detrended white flux")
     scale = 1e6

@@ -44,6 +44,7 @@ def collect_entries(notebook):
         before = previous.get(entry["stage"])
         entry["changed"] = parameter_changes(before["params"], entry["params"]) if before else {}
         entry["previous"] = before["path"] if before else None
+        entry["input_changed"] = bool(before) and before.get("made_from") != entry.get("made_from")
         previous[entry["stage"]] = entry
     return entries
 
@@ -89,7 +90,10 @@ def _entry_html(entry, notebook):
              f'<div class="meta">{html.escape(entry.get("created", ""))} by '
              f'{html.escape(entry.get("user", "?"))}@{html.escape(entry.get("host", "?"))}, '
              f'{entry.get("seconds", 0):.1f} s, lightledger {html.escape(entry.get("software_version", ""))}'
-             + (f', after {html.escape(entry["previous"])}' if entry.get("previous") else "")
+             + (f', made from {html.escape(entry["made_from"])}' if entry.get("made_from") else "")
+             + (f'; previous entry of this stage {html.escape(entry["previous"])}'
+                if entry.get("previous") else "")
+             + ("; its input differs from the previous entry's" if entry.get("input_changed") else "")
              + ("; superseded by a forced re-run" if entry.get("superseded") else "") + "</div>",
              '<div class="cols"><div><table><tr><th>parameter</th><th>value</th></tr>']
     changed = entry.get("changed", {})

@@ -33,7 +33,7 @@ from lightledger.pipeline import __version__
 
 from .rawio import sha256_of
 
-__all__ = ["Provenance", "atomic_path", "table_hdu", "write_fits", "write_ecsv", "write_json",
+__all__ = ["Provenance", "relative_input", "resolve_input", "atomic_path", "table_hdu", "write_fits", "write_ecsv", "write_json",
            "save_figure", "read_provenance"]
 
 
@@ -49,7 +49,8 @@ class Provenance:
     params : dict
         Stage parameters (name to value).
     inputs : dict
-        Input path (str) to SHA-256 hex digest.
+        Input name (its path relative to the product's folder, see
+        :func:`relative_input`) to SHA-256 hex digest.
     visit : str
         Visit name.
     """
@@ -105,6 +106,21 @@ def _jsonable(value):
     if isinstance(value, Path):
         return str(value)
     return value
+
+
+def relative_input(path, folder):
+    """Name of an input as recorded: its path relative to the product's folder.
+
+    Relative names keep a notebook (with its raw files beside it) valid when
+    the whole visit folder is moved or copied.
+    """
+    return os.path.relpath(Path(path).resolve(), Path(folder).resolve())
+
+
+def resolve_input(product, name):
+    """Absolute path of an input recorded by ``product`` (see :func:`relative_input`)."""
+    name = Path(name)
+    return name if name.is_absolute() else (Path(product).parent / name).resolve()
 
 
 @contextmanager
