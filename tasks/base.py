@@ -63,6 +63,8 @@ def _stamp(path):
 
 def visit_config(path, settings_text="[]"):
     """The validated visit description, cached while the file is unchanged."""
+    if not Path(path).is_file():
+        return load_visit(path, settings_from_text(settings_text))   # raises its one-line error
     return _visit_cached(str(Path(path).resolve()), settings_text, _stamp(path))
 
 

@@ -14,6 +14,7 @@ a memory map, so no stage needs a whole visit in memory.
 """
 
 import hashlib
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -94,6 +95,18 @@ def _extension(hdul, name, path, required=True):
 
 
 def _file_exposures(path, profile):
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            return _read_headers(path, profile)
+        except InputFileError:
+            if any("header" in str(w.message).lower() or "truncated" in str(w.message).lower()
+                   for w in caught):
+                raise InputFileError(f"{path}: the file is truncated or its headers are damaged") from None
+            raise
+
+
+def _read_headers(path, profile):
     kw, ext = profile.keyword, profile.extension
     try:
         hdul = fits.open(path, memmap=True, lazy_load_hdus=True)
@@ -198,10 +211,16 @@ def read_exposure(ref, profile):
     -------
     reads : ndarray of shape (n_reads, ny, nx), float64
     """
-    with fits.open(ref.file, memmap=True) as hdul:
-        data = hdul[profile.extension("READS")].data
-        block = data[ref.index] if ref.index >= 0 else data
-        reads = np.array(block, dtype=np.float64)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            with fits.open(ref.file, memmap=True) as hdul:
+                data = hdul[profile.extension("READS")].data
+                block = data[ref.index] if ref.index >= 0 else data
+                reads = np.array(block, dtype=np.float64)
+    except (OSError, ValueError, KeyError, TypeError, IndexError) as exc:
+        raise InputFileError(f"{ref.file}: cannot read the {profile.extension('READS')} data "
+                             f"of exposure {max(ref.index, 0)} ({exc})") from None
     if reads.shape != ref.shape:
         raise InputFileError(f"{ref.file}: READS changed shape since the inventory")
     return reads
