@@ -88,6 +88,8 @@ def _parser():
     demo.add_argument("--seed", type=int, default=1)
     demo.add_argument("--workers", type=int, default=2)
 
+    sub.add_parser("params", help="list every stage parameter with its default and meaning")
+
     aud = sub.add_parser("audit", help="verify checksums and lineage of products")
     aud.add_argument("path", help="a product, a stage folder, a notebook folder or a visit TOML")
 
@@ -105,6 +107,9 @@ def main(argv=None):
     except LightledgerError as exc:
         print(f"lightledger: error: {exc}", file=sys.stderr)
         return 2
+    except BrokenPipeError:   # output piped into a program that stopped reading (head, less)
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except KeyboardInterrupt:
         print("lightledger: interrupted; complete products are kept, partial ones were not written",
               file=sys.stderr)
@@ -152,6 +157,20 @@ def _cmd_demo(args):
                     progress=Progress())
 
 
+def _cmd_params(args):
+    from lightledger.pipeline.parameters import STAGES
+
+    for spec in STAGES.values():
+        print(f"[stages.{spec.name}]  {spec.doc} (code version {spec.version})")
+        for p in spec.params:
+            default = "[]" if p.default == () else str(p.default).lower() if isinstance(p.default, bool) \
+                else p.default
+            choices = f"  one of: {', '.join(p.choices)}" if p.choices else ""
+            print(f"  {p.name} = {default}\n      {p.doc}{choices}")
+        print()
+    return 0
+
+
 def _cmd_audit(args):
     from .audit import audit
 
@@ -172,7 +191,7 @@ def _cmd_compare(args):
     return 0
 
 
-_COMMANDS = {"reduce": _cmd_reduce, "simulate": _cmd_simulate, "demo": _cmd_demo,
+_COMMANDS = {"reduce": _cmd_reduce, "simulate": _cmd_simulate, "demo": _cmd_demo, "params": _cmd_params,
              "audit": _cmd_audit, "compare": _cmd_compare}
 
 

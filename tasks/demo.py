@@ -66,7 +66,10 @@ def run_demo(directory, *, n_exposures=60, seed=1, workers=2, progress=None, out
     print("", file=out)
     print(f"products: {result.final.parent.parent}", file=out)
     print(f"notebook page: {result.page}", file=out)
-    print(f"light curves: {result.final}", file=out)
+    lightcurves = sorted(result.final.parent.parent.glob("bin-*/lightcurves.ecsv"),
+                         key=lambda p: p.stat().st_mtime)[-1]
+    print(f"light curves for your fitter: {lightcurves}", file=out)
+    print(f"detrended light curves and depths: {result.final}", file=out)
     print("", file=out)
     print(f"{'':<24}{'recovered':<22}{'truth':<24}{'':<12}", file=out)
     for row in rows:
