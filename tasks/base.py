@@ -184,8 +184,12 @@ class VisitTask(luigi.Task):
             pass
         return super().on_failure(exception)
 
-    def write_entry(self, path, inputs, outputs, metrics, figures, started):
-        """Write the stage's entry.json (the completion marker), atomically."""
+    def write_entry(self, path, inputs, outputs, metrics, figures, started, *, extra_seconds=0.0):
+        """Write the stage's entry.json (the completion marker), atomically.
+
+        ``seconds`` is this task's own time since ``started`` plus ``extra_seconds``
+        spent in the stage's other tasks (its chunks).
+        """
         entry = {
             "stage": self.stage,
             "identity": self.identity,
@@ -197,7 +201,7 @@ class VisitTask(luigi.Task):
             "host": socket.gethostname(),
             "software_version": __version__,
             "stage_version": STAGES[self.stage].version,
-            "seconds": round(time.time() - started, 2),
+            "seconds": round(time.time() - started + extra_seconds, 2),
             "params": {k: list(v) if isinstance(v, tuple) else v for k, v in self.params.items()},
             "overrides": self.config.overrides.get(self.stage, {}),
             "made_from": (stage_dir(self.config, STAGE_ORDER[STAGE_ORDER.index(self.stage) - 1]).name
@@ -208,6 +212,13 @@ class VisitTask(luigi.Task):
             "figures": [Path(f).name for f in figures],
         }
         write_json(path, entry)
+
+
+def elapsed_of(paths):
+    """Sum of the ELAPSED primary-header keyword (task seconds) of FITS products."""
+    from astropy.io import fits
+
+    return float(sum(fits.getheader(p).get("ELAPSED", 0.0) for p in paths))
 
 
 def _user():

@@ -30,7 +30,7 @@ from astropy.table import Table, vstack
 from lightledger.pipeline import mask as dq
 from lightledger.pipeline.calibrate import calibrate_exposure
 
-from .base import ENTRY_NAME, VisitTask
+from .base import ENTRY_NAME, VisitTask, elapsed_of
 from .geometry import expected_source_rows
 from .products import table_hdu, write_ecsv, write_fits
 from .rawio import inventory, inventory_table, read_exposure, refs_from_table
@@ -88,6 +88,7 @@ class CalibrateChunk(VisitTask):
         return luigi.LocalTarget(str(self.folder / f"frames-{self.chunk:03d}.fits"))
 
     def run(self):
+        started = time.time()
         visit, params = self.config, self.params
         table, refs = read_inventory(self)
         start, stop = chunk_ranges(len(refs), params["chunk_size"])[self.chunk]
@@ -140,7 +141,8 @@ class CalibrateChunk(VisitTask):
         inputs = [self.input().path, *sorted({e.file for e in refs}),
                   *[f for f in visit.profile.files.values() if f is not None]]
         write_fits(self.output().path, hdus, self.provenance(inputs),
-                       header={"CHUNK": self.chunk, "EXPFIRST": start, "EXPLAST": stop - 1})
+                       header={"CHUNK": self.chunk, "EXPFIRST": start, "EXPLAST": stop - 1,
+                               "ELAPSED": (round(time.time() - started, 3), "seconds this task ran")})
 
 
 def read_chunk(path, *, exposures_only=False):
@@ -170,9 +172,9 @@ class Calibrate(VisitTask):
                 for i in range(len(chunk_ranges(n, self.params["chunk_size"])))]
 
     def run(self):
-        started = time.time()
         chunks = self.chunk_tasks()
         yield chunks
+        started = time.time()     # run() starts again once the chunks are complete
         paths = [c.output().path for c in chunks]
         exposures = vstack([read_chunk(p, exposures_only=True) for p in paths])
         table_path = self.folder / "exposures.ecsv"
@@ -187,7 +189,8 @@ class Calibrate(VisitTask):
                    "median background (e-/pixel)": float(np.median(exposures["background_level"])),
                    **{f"flagged {k.lower()} (pixel-exposures)": v for k, v in counts.items() if v}}
         self.write_entry(self.output().path, [self.input().path, *paths],
-                         [*paths, table_path, self.input().path], metrics, [fig_path], started)
+                         [*paths, table_path, self.input().path], metrics, [fig_path], started,
+                         extra_seconds=elapsed_of(paths))
 
     def final_product(self):
         return self.folder / "exposures.ecsv"

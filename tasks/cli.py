@@ -128,6 +128,13 @@ def _cmd_reduce(args):
         print(line, file=sys.stderr)
     if not result.ok:
         return 1
+    if result.ran:
+        counts = {}
+        for family in result.ran:
+            counts[family] = counts.get(family, 0) + 1
+        print("ran: " + ", ".join(f"{n} {f}" for f, n in counts.items()), file=sys.stderr)
+    else:
+        print("nothing to run: every product is already complete", file=sys.stderr)
     print(f"notebook page: {result.page}", file=sys.stderr)
     print(result.final)
     return 0

@@ -38,7 +38,7 @@ from lightledger.pipeline.trace import fit_trace, refine, scan_band
 from lightledger.pipeline.wavelength import (column_wavelengths, pixel_edges, reference_column,
                                              refine_solution)
 
-from .base import ENTRY_NAME, VisitTask
+from .base import ENTRY_NAME, VisitTask, elapsed_of
 from .calibrate import Calibrate, read_chunk
 from .products import table_hdu, write_fits
 from .references import load_throughput
@@ -69,6 +69,7 @@ class ExtractReference(VisitTask):
         return luigi.LocalTarget(str(self.folder / "reference.fits"))
 
     def run(self):
+        started = time.time()
         visit, params = self.config, self.params
         calib = self.requires()
         paths = _chunk_paths(calib)
@@ -115,7 +116,8 @@ class ExtractReference(VisitTask):
                           TRRMS=(float(trace.residual_rms), "rms of column centroids about the fit"))
             for k, c in enumerate(trace.coefficients):
                 header[f"TRCOEF{k}"] = (float(c), f"trace row polynomial coefficient {k}")
-        header.update(APLO=(lo, "aperture first row"), APHI=(hi, "aperture row after the last"))
+        header.update(APLO=(lo, "aperture first row"), APHI=(hi, "aperture row after the last"),
+                      ELAPSED=(round(time.time() - started, 3), "seconds this task ran"))
         ref_spec = np.sum(median[lo:hi], axis=0)
 
         origin_x = int(exposures["origin_x"][0])
@@ -176,6 +178,7 @@ class ExtractChunk(VisitTask):
         return luigi.LocalTarget(str(self.folder / f"spectra-{self.chunk:03d}.fits"))
 
     def run(self):
+        started = time.time()
         params = self.params
         calib = self.stage_task(Calibrate)
         chunk_path = _chunk_paths(calib)[self.chunk]
@@ -236,7 +239,8 @@ class ExtractChunk(VisitTask):
                 table_hdu(table, "EXPOSURES"),
                 fits.ImageHDU(first_profile, name="PROFILE")]
         write_fits(self.output().path, hdus, self.provenance([chunk_path, self.input().path]),
-                       header={"CHUNK": self.chunk})
+                       header={"CHUNK": self.chunk,
+                           "ELAPSED": (round(time.time() - started, 3), "seconds this task ran")})
         self.progress(3, 3, f"chunk {self.chunk} extraction")
 
 
@@ -255,10 +259,10 @@ class Extract(VisitTask):
         return self.folder / "spectra.fits"
 
     def run(self):
-        started = time.time()
         calib = self.stage_task(Calibrate)
         chunks = [self.stage_task(ExtractChunk, chunk=i) for i in range(len(calib.chunk_tasks()))]
         yield chunks
+        started = time.time()     # run() starts again once the chunks are complete
         fluxes, variances, masks, tables = [], [], [], []
         profile = None
         for task in chunks:
@@ -305,4 +309,4 @@ class Extract(VisitTask):
                    "masked spectral pixels": int(np.sum(mask > 0)),
                    "aperture rows": [int(header["APLO"]), int(header["APHI"])]}
         self.write_entry(self.output().path, inputs, [path, self.input().path], metrics, [fig],
-                         started)
+                         started, extra_seconds=elapsed_of(inputs))

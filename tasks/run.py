@@ -11,6 +11,7 @@ import luigi
 from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER
 
+from . import figures  # noqa: F401  (matplotlib loads once here, not in every worker)
 from .base import ENTRY_NAME, PROGRESS, settings_to_text, stage_dir, visit_config
 from .rawio import inventory
 
@@ -98,6 +99,11 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     logging.getLogger("luigi-interface").setLevel(logging.CRITICAL)
     kwargs = dict(workers=workers, detailed_summary=True, log_level="CRITICAL")
     if scheduler:
+        # Stay alive while other machines' workers run tasks this build needs, so that every
+        # reducer sharing the scheduler finishes with the complete chain.
+        config = luigi.configuration.get_config()
+        config.set("worker", "keep_alive", "true")
+        config.set("worker", "wait_interval", "1.0")
         kwargs.update(scheduler_host=scheduler[0], scheduler_port=scheduler[1])
     else:
         kwargs.update(local_scheduler=True)
