@@ -30,7 +30,7 @@ from astropy.nddata.bitmask import bitfield_to_boolean_mask
 
 __all__ = ["FLAGS", "UNUSABLE", "SATURATED", "JUMP", "SHORT_RAMP",
            "BACKGROUND_OUTLIER", "NOT_FINITE", "EXTRACTION_OUTLIER", "FILLED",
-           "OUTSIDE_BAND", "DO_NOT_USE", "to_boolean", "count_by_flag"]
+           "OUTSIDE_BAND", "UNUSABLE_FLAGS", "to_boolean", "count_by_flag"]
 
 UNUSABLE = 1
 SATURATED = 2
@@ -56,12 +56,12 @@ FLAGS = {
 }
 
 #: Flags that make a pixel unusable for extraction.
-DO_NOT_USE = UNUSABLE | SHORT_RAMP | NOT_FINITE
+UNUSABLE_FLAGS = UNUSABLE | SHORT_RAMP | NOT_FINITE
 
 MASK_DTYPE = np.uint16
 
 
-def to_boolean(bits, flags=DO_NOT_USE):
+def to_boolean(bits, flags=UNUSABLE_FLAGS):
     """Boolean mask, True where any of ``flags`` is set in ``bits``.
 
     Parameters
@@ -69,7 +69,7 @@ def to_boolean(bits, flags=DO_NOT_USE):
     bits : array_like of int
         Bitfield of the project's flags.
     flags : int, optional
-        The flags that count as bad; default :data:`DO_NOT_USE`.
+        The flags that count as bad; default :data:`UNUSABLE_FLAGS`.
 
     Returns
     -------

@@ -22,7 +22,7 @@ from lightledger.tasks.rawio import inventory, read_exposure
 
 RENAMED_KEYWORDS = {"DATE-BEG": "DATE-OBS", "XPOSURE": "EXPTIME", "SCANVEL": "SCANRATE",
                     "SUBORIGX": "COLSTART", "SUBORIGY": "ROWSTART"}
-RENAMED_EXTENSIONS = {"READS": "RAMPDATA", "READTIME": "RAMPTIME", "STARTOFF": "EXPSTART"}
+RENAMED_EXTENSIONS = {"READS": "RAMPDATA", "READTIME": "RAMPTIME", "STARTOFF": "EXPBEGIN"}
 
 
 @pytest.fixture(scope="module")
