@@ -11,6 +11,7 @@ import json
 import os
 import shutil
 import subprocess
+import sys
 from pathlib import Path
 
 import pytest
@@ -131,6 +132,12 @@ def test_audit_finds_flipped_byte_replaced_and_missing_inputs(visit, tmp_path):
     assert f"input {raw[0]} has changed since the product was made" in text
     assert "frames-001.fits is missing" in text
     assert "stale" in text                                    # downstream of the damage
+
+    run = subprocess.run([sys.executable, "-m", "lightledger.tasks.cli", "audit", str(notebook)],
+                         capture_output=True, text=True, timeout=300)
+    assert run.returncode == 1
+    assert run.stderr.count("problem: ") == len(problems)
+    assert "lineage:" in run.stdout and "Traceback" not in run.stderr
 
 
 def _page_requests(page, tmp_path, name):
