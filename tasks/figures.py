@@ -56,10 +56,10 @@ def extract_figure(path, wavelength, flux, exposures, profile_image):
     """Waterfall of normalised spectra, shifts against time, the spatial profile image."""
     fig, axes = plt.subplots(2, 2, figsize=(11, 7), constrained_layout=True)
     med = np.nanmedian(flux, axis=0)
-    bright = med > 0.05 * np.nanmax(med)          # leave the faint ends out of the colour scale
+    bright = med > 0.2 * np.nanmax(med)           # the faint ends would swamp the colour scale
     ratio = flux / np.where(bright, med, np.nan)
     ratio = ratio / np.nanmedian(ratio, axis=1, keepdims=True)
-    lo, hi = np.nanpercentile(ratio, [2, 98])
+    lo, hi = np.nanpercentile(ratio[:, bright], [1, 99]) if np.any(bright) else (0.99, 1.01)
     axes[0, 0].imshow(ratio, origin="lower", aspect="auto", cmap="viridis", vmin=lo, vmax=hi,
                       extent=[wavelength[0], wavelength[-1], 0, len(flux)])
     axes[0, 0].set_xlabel("wavelength (um)")
