@@ -2,6 +2,7 @@
 
 import logging
 import shutil
+import time
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -109,6 +110,17 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
         kwargs.update(local_scheduler=True)
     try:
         summary = luigi.build([task], **kwargs)
+        ran = _ran_families(summary)
+        # With a central scheduler another machine may still be running tasks this chain
+        # needs when this worker runs out of work: wait for them, building again until the
+        # chain completes (a dead worker's tasks return to pending and are taken here).
+        deadline = time.monotonic() + 12 * 3600
+        while scheduler and not task.complete() and _others_running(summary) \
+                and not (failures.exists() and any(failures.iterdir())) \
+                and time.monotonic() < deadline:
+            time.sleep(2.0)
+            summary = luigi.build([task], **kwargs)
+            ran += _ran_families(summary)
     finally:
         PROGRESS.pop("callback", None)
 
@@ -123,7 +135,16 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     from .notebook import write_page
     page = write_page(visit.notebook)
     final = task.final_product() if ok else None
-    return RunResult(ok=ok, final=final, page=page, ran=_ran_families(summary), messages=messages)
+    return RunResult(ok=ok, final=final, page=page, ran=sorted(ran), messages=messages)
+
+
+def _others_running(summary):
+    """True when the build left tasks to workers of other processes or machines."""
+    from luigi.execution_summary import _summary_dict
+
+    sets = _summary_dict(summary.worker)
+    return bool(sets["run_by_other_worker"] or sets["upstream_run_by_other_worker"]
+                or sets["still_pending_ext"] or sets["still_pending_not_ext"])
 
 
 def _ran_families(summary):
