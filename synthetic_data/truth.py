@@ -10,7 +10,7 @@ time_mjd_utc        d          the same instant, MJD (UTC)
 orbit               -          orbit index from 0 (0 for a continuous visit)
 scan_direction      -          +1 forward (toward increasing rows), -1 reverse,
                                0 staring
-white_flux          electron   noise-free source electrons collected from the
+white_flux          electron   (TUNIT "count", a count of electrons) noise-free source electrons collected from the
                                zero read to the last read (XPOSURE) in the
                                white band, with the astrophysical signal and
                                every systematic, before the flat field: what
@@ -154,9 +154,10 @@ def write_truth(model, path):
     sc = model.scenario
     tr = truth_columns(model)
     nch = tr["channel_flux"].shape[1]
-    units = dict(time_bjd_tdb="d", time_mjd_utc="d", white_flux="electron", dx="pixel",
-                 dy="pixel", white_sigma="electron", channel_flux="electron",
-                 channel_sigma="electron")
+    # The FITS standard has no electron unit: counts of electrons are written as "count".
+    units = dict(time_bjd_tdb="d", time_mjd_utc="d", white_flux="count", dx="pixel",
+                 dy="pixel", white_sigma="count", channel_flux="count",
+                 channel_sigma="count")
     names = ["time_bjd_tdb", "time_mjd_utc", "orbit", "scan_direction", "white_flux",
              "white_astro", "ramp_visit", "ramp_orbit", "orbit_phase_poly", "scan_offset",
              "systematics", "dx", "dy", "white_sigma", "channel_flux", "channel_sigma"]
@@ -185,7 +186,7 @@ def write_truth(model, path):
         fits.Column(name="read", format="J", array=cr.read.astype(np.int32)),
         fits.Column(name="y", format="J", array=cr.y.astype(np.int32)),
         fits.Column(name="x", format="J", array=cr.x.astype(np.int32)),
-        fits.Column(name="electrons", format="D", unit="electron", array=cr.electrons),
+        fits.Column(name="electrons", format="D", unit="count", array=cr.electrons),
     ], name="COSMICS")
     primary = fits.PrimaryHDU()
     h = primary.header

@@ -117,15 +117,10 @@ def stare_destripe_off(stare_visit):
 # --------------------------------------------------------------------------
 
 def read_truth(outdir):
-    """EXPOSURES table, CHANNELS table and primary header of truth.fits.
-
-    truth.fits writes TUNIT 'electron', which the FITS standard lacks; the
-    resulting UnitsWarning is about the forward model's file, not the
-    reducer's products, and is silenced here.
-    """
+    """EXPOSURES table, CHANNELS table and primary header of truth.fits."""
     path = Path(outdir) / "truth.fits"
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore", UnitsWarning)
+        warnings.simplefilter("error", UnitsWarning)    # the truth uses FITS-standard units too
         exposures = Table.read(path, hdu="EXPOSURES")
         channels = Table.read(path, hdu="CHANNELS")
     header = fits.getheader(path, 0)
