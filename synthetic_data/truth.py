@@ -1,6 +1,7 @@
 """The truth table of a rendered visit (truth.fits).
 
-HDU ``EXPOSURES`` (binary table, one row per exposure, in time order):
+HDU ``EXPOSURES`` (binary table, one row per exposure, in time order; columns
+in electrons carry TUNIT ``count``, the FITS standard having no electron unit):
 
 ==================  =========  ==============================================
 column              unit       meaning
@@ -10,7 +11,7 @@ time_mjd_utc        d          the same instant, MJD (UTC)
 orbit               -          orbit index from 0 (0 for a continuous visit)
 scan_direction      -          +1 forward (toward increasing rows), -1 reverse,
                                0 staring
-white_flux          electron   (TUNIT "count", a count of electrons) noise-free source electrons collected from the
+white_flux          electron   noise-free source electrons collected from the
                                zero read to the last read (XPOSURE) in the
                                white band, with the astrophysical signal and
                                every systematic, before the flat field: what
