@@ -192,8 +192,8 @@ STAGES = {
               "order of the polynomial that smooths the spatial profile along the dispersion",
               minimum=0, maximum=10),
         Param("follow_tilt", False, "bool",
-              "optimal extraction: smooth the spatial profile along the fitted trace instead of "
-              "along detector rows (for strongly tilted traces)"),
+              "optimal extraction: model the spatial profile along the fitted trace as well as "
+              "along detector rows (for strongly tilted traces; about 8 times slower)"),
         Param("refine_wavelength", True, "bool",
               "refine the dispersion zero point by cross-correlation with the model spectrum"),
         Param("align", True, "bool",
