@@ -463,7 +463,6 @@ def fit_event(flux, variance, template, basis=None, *, mask=None, mode="joint",
         S_u = Bu @ a
         scale = np.sum(wu * su * S_u * su) / np.sum(wu * su * su)
         delta = p_lin[k] / scale if scale != 0 else 0.0
-        chi_prev = np.inf
         for _ in range(int(max_iter)):
             S_u = Bu @ a
             r = fu - S_u * (1.0 - delta * su)
@@ -480,7 +479,6 @@ def fit_event(flux, variance, template, basis=None, *, mask=None, mode="joint",
                 lam *= 0.5
             a, delta = a_try, d_try
             size = np.max(np.abs(lam * step) / np.maximum(np.abs(np.append(a, delta)), 1e-300))
-            chi_prev = chi_now
             if size < 1e-13 or abs(lam * step[k]) < 1e-15:
                 break
         S_u = Bu @ a

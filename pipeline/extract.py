@@ -483,8 +483,6 @@ def _horne_iterate(data, variance, good, profile, threshold, max_iter, read_vari
     use = good.copy()
     rejected = np.zeros(good.shape, dtype=bool)
     var_pix = np.where(good, variance, 1.0)
-    cols = np.arange(data.shape[2])[None, :]
-    exps = np.arange(data.shape[0])[:, None]
     f = None
     for _ in range(max_iter + 1):
         inv = np.where(use, 1.0 / var_pix, 0.0)

@@ -75,7 +75,6 @@ def simulate_reads(expected, *, rng, bias, nonlinearity, gain, read_noise, full_
 
 
 def _primary_header(model, start_s, obsgeo):
-    sc = model.scenario
     t = Time(model.date_beg, scale="utc", precision=6) + TimeDelta(start_s, format="sec")
     h = fits.Header()
     h["DATE-BEG"] = (t.isot, "UTC of the first exposure's zero read")

@@ -36,7 +36,8 @@ from .products import table_hdu, write_ecsv, write_fits
 from .rawio import inventory, inventory_table, read_exposure, refs_from_table
 from .references import load_references
 
-__all__ = ["Inventory", "CalibrateChunk", "Calibrate", "chunk_ranges", "read_chunk"]
+__all__ = ["Inventory", "CalibrateChunk", "Calibrate", "chunk_ranges", "read_chunk",
+           "calibrate_reads"]
 
 
 def chunk_ranges(n_exposures, chunk_size):
@@ -49,6 +50,38 @@ def _destripe_mode(setting, scan_velocity):
     if setting == "auto":
         return "off" if scan_velocity else "differences"
     return setting
+
+
+def calibrate_reads(visit, params, ref, exp, reads):
+    """Calibrate one exposure's reads with the visit's profile and calibrate parameters.
+
+    Parameters
+    ----------
+    visit : config.Visit
+    params : dict
+        The calibrate stage's parameters.
+    ref : references.References
+        Reference arrays cut to the subarray.
+    exp : rawio.ExposureRef
+    reads : ndarray of shape (n_reads, ny, nx), ADU
+
+    Returns
+    -------
+    lightledger.pipeline.calibrate.CalibratedExposure
+    """
+    ny, nx = exp.shape[1:]
+    source_rows = expected_source_rows(visit, nx, ny, exp.origin, exp.scan_velocity,
+                                       exp.exposure_time)
+    return calibrate_exposure(
+        reads, np.asarray(exp.read_times), bias_adu=ref.bias, dark_rate=ref.dark,
+        flat=ref.flat, nonlinearity=ref.nonlinearity, bad_pixels=ref.bad_pixels,
+        gain=visit.profile.gain, read_noise=visit.profile.read_noise,
+        saturation_adu=visit.profile.saturation, scan_velocity=exp.scan_velocity,
+        source_rows=source_rows, ramp_method=params["ramp_method"],
+        background_method=params["background_method"],
+        destripe=_destripe_mode(params["destripe"], exp.scan_velocity),
+        jump_threshold=params["jump_threshold"],
+        scan_options={"pad_rows": params["band_padding"]} if exp.scan_velocity else None)
 
 
 class Inventory(VisitTask):
@@ -102,18 +135,7 @@ class CalibrateChunk(VisitTask):
         for i, exp in enumerate(refs):
             self.progress(i, len(refs), f"chunk {self.chunk} exposures")
             reads = read_exposure(exp, visit.profile)
-            source_rows = expected_source_rows(visit, nx, ny, exp.origin, exp.scan_velocity,
-                                               exp.exposure_time)
-            cal = calibrate_exposure(
-                reads, np.asarray(exp.read_times), bias_adu=ref.bias, dark_rate=ref.dark,
-                flat=ref.flat, nonlinearity=ref.nonlinearity, bad_pixels=ref.bad_pixels,
-                gain=visit.profile.gain, read_noise=visit.profile.read_noise,
-                saturation_adu=visit.profile.saturation, scan_velocity=exp.scan_velocity,
-                source_rows=source_rows, ramp_method=params["ramp_method"],
-                background_method=params["background_method"],
-                destripe=_destripe_mode(params["destripe"], exp.scan_velocity),
-                jump_threshold=params["jump_threshold"],
-                scan_options={"pad_rows": params["band_padding"]} if exp.scan_velocity else None)
+            cal = calibrate_reads(visit, params, ref, exp, reads)
             flux[i], var[i], bits[i] = cal.flux, cal.variance, cal.bits
             row = {"exposure": start + i, "start_mjd_utc": exp.start_mjd,
                    "mid_offset": cal.mid_time_offset, "integration_time": cal.integration_time,

@@ -21,7 +21,6 @@ import argparse
 import os
 import sys
 import time
-from pathlib import Path
 
 from lightledger.pipeline import __version__
 from lightledger.pipeline.errors import LightledgerError

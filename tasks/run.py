@@ -13,7 +13,7 @@ from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER
 
 from . import figures  # noqa: F401  (matplotlib loads once here, not in every worker)
-from .base import ENTRY_NAME, PROGRESS, settings_to_text, stage_dir, visit_config
+from .base import PROGRESS, settings_to_text, stage_dir, visit_config
 from .rawio import inventory
 
 __all__ = ["RunResult", "reduce_visit", "stage_task"]

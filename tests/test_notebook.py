@@ -8,7 +8,6 @@ the page (Chromium's DOM dump and network log).
 """
 
 import json
-import os
 import shutil
 import subprocess
 import sys

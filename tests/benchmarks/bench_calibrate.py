@@ -36,11 +36,9 @@ from pathlib import Path
 
 import numpy as np
 
-from lightledger.pipeline.calibrate import calibrate_exposure
 from lightledger.synthetic_data.render import render
-from lightledger.tasks.calibrate import _destripe_mode  # the task's own 'auto' rule
+from lightledger.tasks.calibrate import _destripe_mode, calibrate_reads
 from lightledger.tasks.config import load_visit
-from lightledger.tasks.geometry import expected_source_rows
 from lightledger.tasks.rawio import inventory, read_exposure
 from lightledger.tasks.references import load_references
 
@@ -55,25 +53,8 @@ def read_all(refs, profile):
     return [read_exposure(ref, profile) for ref in refs]
 
 
-def calibrate_one(visit, params, ref, exp, reads):
-    """One exposure calibrated with the arguments the calibrate chunk task passes."""
-    ny, nx = exp.shape[1:]
-    source_rows = expected_source_rows(visit, nx, ny, exp.origin, exp.scan_velocity,
-                                       exp.exposure_time)
-    return calibrate_exposure(
-        reads, np.asarray(exp.read_times), bias_adu=ref.bias, dark_rate=ref.dark,
-        flat=ref.flat, nonlinearity=ref.nonlinearity, bad_pixels=ref.bad_pixels,
-        gain=visit.profile.gain, read_noise=visit.profile.read_noise,
-        saturation_adu=visit.profile.saturation, scan_velocity=exp.scan_velocity,
-        source_rows=source_rows, ramp_method=params["ramp_method"],
-        background_method=params["background_method"],
-        destripe=_destripe_mode(params["destripe"], exp.scan_velocity),
-        jump_threshold=params["jump_threshold"],
-        scan_options={"pad_rows": params["band_padding"]} if exp.scan_velocity else None)
-
-
 def calibrate_all(visit, params, ref, refs, reads):
-    return [calibrate_one(visit, params, ref, exp, r) for exp, r in zip(refs, reads)]
+    return [calibrate_reads(visit, params, ref, exp, r) for exp, r in zip(refs, reads)]
 
 
 def best_of(fn, repeat):
@@ -100,7 +81,7 @@ def measure(scenario, n_exposures, repeat, workdir, profile_top=0):
     ref = load_references(visit.profile, (ny, nx), refs[0].origin, visit.target["source_x"])
     refs_s = time.perf_counter() - t0
     reads = read_all(refs, visit.profile)
-    calibrate_one(visit, params, ref, refs[0], reads[0])  # warm-up (imports, first-call caches)
+    calibrate_reads(visit, params, ref, refs[0], reads[0])  # warm-up (imports, first-call caches)
     # read and calibration alternate, so that a burst of load elsewhere hits both alike
     read_s = cal_s = np.inf
     for _ in range(repeat):
