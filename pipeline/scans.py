@@ -12,7 +12,10 @@ single-pixel cosmic rays), collapsed along x into a row profile, and the run
 of rows above ``band_sigma`` robust sigma of that profile around its peak,
 padded by ``pad_rows``, is the band.  Forward and reverse scans are handled
 alike.  Cost: one median filter and a few sorts of the difference cube,
-O(n_reads ny nx); a Python loop runs over differences only.
+O(n_reads ny nx); a Python loop runs over differences only, each step on one
+difference (the cosmic-ray test and the sums on the band's rows only), so
+that the work arrays stay in the processor's cache.  The background
+estimate of each difference is most of the time.
 """
 
 from dataclasses import dataclass
@@ -24,7 +27,7 @@ from . import mask as dq
 from .background import clipped_mean, estimate_background
 from .destripe import destripe as _destripe
 from .errors import ParameterError
-from .ramps import masked_median
+from .ramps import _merge_network, masked_median
 
 __all__ = ["ScanSum", "sum_scan", "find_bands", "SCAN_BACKGROUNDS", "SCAN_DESTRIPE"]
 
@@ -74,6 +77,73 @@ class ScanSum:
     n_cosmic: np.ndarray
 
 
+#: Widths up to this use the comparator network in :func:`_median_filter_rows`.
+_FILTER_NETWORK_MAX = 9
+
+
+def _selection_plan(m, rank):
+    """Comparators of the merge network that reach output ``rank``, as (i, j, min?, max?).
+
+    Walking the network backwards from wire ``rank`` keeps the comparators
+    whose result is still needed, and of each only the half (min to wire
+    ``i``, max to wire ``j``) that is; what is left selects the element of
+    that rank from any ``m`` inputs.
+    """
+    need, plan = {rank}, []
+    for i, j in reversed(_merge_network(m)):
+        want_min, want_max = i in need, j in need
+        if want_min or want_max:
+            plan.append((i, j, want_min, want_max))
+            need |= {i, j}
+    return tuple(plan[::-1])
+
+
+_SELECTION_PLANS = {w: _selection_plan(w, w // 2) for w in range(1, _FILTER_NETWORK_MAX + 1)}
+
+
+def _median_filter_rows(frame, width):
+    """Running median of ``width`` columns along the last axis, edges repeated.
+
+    The same as ``scipy.ndimage.median_filter(frame, size=(1, width),
+    mode="nearest")`` (rank ``width // 2`` of the window, which for an even
+    width starts ``width // 2`` columns to the left) for NaN-free input:
+    the window's shifted copies are combined by a selection network of
+    elementwise min/max (12 of them for width 5) instead of a per-pixel
+    selection.  Widths above ``_FILTER_NETWORK_MAX`` use scipy.
+    """
+    if width <= 1:
+        return np.array(frame, dtype=float)
+    if width > _FILTER_NETWORK_MAX:
+        return ndimage.median_filter(frame, size=(1,) * (frame.ndim - 1) + (width,), mode="nearest")
+    nx = frame.shape[-1]
+    left = width // 2
+    padded = np.concatenate([np.repeat(frame[..., :1], left, axis=-1), frame,
+                             np.repeat(frame[..., -1:], width - 1 - left, axis=-1)], axis=-1)
+    lanes = [padded[..., j:j + nx] for j in range(width)]  # views of the shifted copies
+    owned = [False] * width  # True once a lane holds a work array of its own
+    spare = []
+
+    def buffer():
+        return spare.pop() if spare else np.empty(frame.shape)
+
+    for i, j, want_min, want_max in _SELECTION_PLANS[width]:
+        a, b = lanes[i], lanes[j]
+        if want_min and want_max:
+            lo = np.minimum(a, b, out=buffer())
+            hi = np.maximum(a, b, out=b if owned[j] else buffer())
+            if owned[i]:
+                spare.append(a)
+            lanes[i], lanes[j] = lo, hi
+            owned[i] = owned[j] = True
+        elif want_min:
+            lanes[i] = np.minimum(a, b, out=a if owned[i] else buffer())
+            owned[i] = True
+        else:
+            lanes[j] = np.maximum(a, b, out=b if owned[j] else buffer())
+            owned[j] = True
+    return lanes[width // 2]
+
+
 def find_bands(diffs, *, valid=None, band_sigma=5.0, pad_rows=3, filter_width=5, fallback_rows=None):
     """Row band that the source crossed in each difference, found from the data.
 
@@ -109,11 +179,22 @@ def find_bands(diffs, *, valid=None, band_sigma=5.0, pad_rows=3, filter_width=5,
         raise ParameterError(f"diffs must have shape (n_diff, ny, nx); got {d.shape}")
     n, ny, nx = d.shape
     ok = np.isfinite(d) if valid is None else (np.asarray(valid, dtype=bool) & np.isfinite(d))
-    rowmed, _ = masked_median(d, ~ok, axis=2)
-    filled = np.where(ok, d, np.nan_to_num(rowmed)[:, :, None])
     w = max(int(filter_width), 1)
-    filt = ndimage.median_filter(filled, size=(1, 1, w), mode="nearest") if w > 1 else filled
-    prof = np.where(ok, filt, 0.0).sum(axis=2) / np.maximum(ok.sum(axis=2), 1)
+    # unusable pixels take their row's median (computed only for rows that have one)
+    holes = ~ok
+    if holes.any():
+        kk, yy = np.nonzero(holes.any(axis=2))
+        rowmed, _ = masked_median(d[kk, yy], holes[kk, yy], axis=1)
+        fill = np.zeros((n, ny))
+        fill[kk, yy] = np.nan_to_num(rowmed)
+        filled = np.where(ok, d, fill[:, :, None])
+    else:
+        filled = d
+    filt = np.empty_like(d)
+    prof = np.empty((n, ny))
+    for k in range(n):  # one difference at a time: the work arrays stay in cache
+        filt[k] = _median_filter_rows(filled[k], w)
+        prof[k] = np.where(ok[k], filt[k], 0.0).sum(axis=1) / np.maximum(ok[k].sum(axis=1), 1)
     base, _ = masked_median(prof, np.zeros(prof.shape, bool), axis=1)
     mad, _ = masked_median(np.abs(prof - base[:, None]), np.zeros(prof.shape, bool), axis=1)
     scale = np.maximum(_MAD_TO_SIGMA * mad, 1e-12 * np.maximum(np.abs(base), 1.0))
@@ -237,14 +318,22 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
     good = finite.copy()
     sat_px = np.zeros((ny, nx), bool)
     if saturated is not None:
-        sat = np.logical_or.accumulate(np.asarray(saturated, dtype=bool), axis=0)
+        sat = np.array(saturated, dtype=bool)  # a copy: the input is not modified
         if sat.shape != r.shape:
             raise ParameterError(f"saturated must have the shape of reads {r.shape}; got {sat.shape}")
-        sat_px = sat.any(axis=0)
+        for k in range(1, n_reads):  # a read after a saturated one is saturated too
+            np.logical_or(sat[k - 1], sat[k], out=sat[k])
+        sat_px = sat[-1]
         good &= ~sat
     valid = good[1:] & good[:-1] & np.isfinite(dark) & flat_ok
-    d = np.diff(np.where(finite, r, 0.0), axis=0)
-    d = np.where(valid, (d - dark * dt[:, None, None]) / fl_safe, 0.0)
+    n_diff = n_reads - 1
+    rz = r if finite.all() else np.where(finite, r, 0.0)
+    d = np.empty((n_diff, ny, nx))
+    for k in range(n_diff):  # (r_k+1 - r_k - D dt_k) / f, 0 where unusable
+        dk = np.subtract(rz[k + 1], rz[k], out=d[k])
+        dk -= dark * dt[k]
+        dk /= fl_safe
+        dk[~valid[k]] = 0.0
     usable = valid & ~badpx
 
     lo, hi, found, filt = find_bands(d, valid=usable, band_sigma=band_sigma, pad_rows=pad_rows,
@@ -263,28 +352,42 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
         d = np.where(valid, ds.frames, 0.0)
         filt = filt - ds.row_offsets[:, :, None] - ds.column_offsets[:, None, :]
 
-    # cosmic rays inside the band, against the median-filtered difference
-    sigma = np.sqrt(2.0 * s2 + np.maximum(filt * fl_safe + dark * dt[:, None, None], 0.0)) / fl_safe
-    with np.errstate(invalid="ignore", divide="ignore"):
-        hit = in_band & usable & ((d - filt) > cr_threshold * sigma)
-    d = np.where(hit, filt, d)
-
-    n_diff = n_reads - 1
+    # One difference at a time; the band of difference k is the run of rows
+    # lo[k] .. hi[k], so the per-pixel work is done on those rows only.
     bkg_map = np.zeros((ny, nx))
     bkg_var = np.zeros((ny, nx))
-    levels = np.zeros(n_diff)
-    bits = np.zeros((ny, nx), dtype=dq.MASK_DTYPE)
     contrib = np.zeros((ny, nx))
+    pois = np.zeros((ny, nx))
+    runs = np.zeros((ny, nx), dtype=int)
+    levels = np.zeros(n_diff)
+    n_cosmic = np.zeros(n_diff, dtype=int)
+    bits = np.zeros((ny, nx), dtype=dq.MASK_DTYPE)
+    hit_any = np.zeros((ny, nx), bool)
+    take_any = np.zeros((ny, nx), bool)
+    prev = np.zeros((ny, nx), bool)
     for k in range(n_diff):
+        band = slice(int(lo[k]), int(hi[k]) + 1)
+        dk, fk, fl_k = d[k, band], filt[k, band], fl_safe[band]
+        # cosmic rays inside the band, against the median-filtered difference
+        charge = np.maximum(fk * fl_k + dark[band] * dt[k], 0.0)
+        sigma = np.sqrt(2.0 * s2[band] + charge) / fl_k
+        with np.errstate(invalid="ignore", divide="ignore"):
+            hit = usable[k, band] & ((dk - fk) > cr_threshold * sigma)
+        np.copyto(dk, fk, where=hit)  # d is this function's own array
+        n_cosmic[k] = np.count_nonzero(hit)
+        hit_any[band] |= hit
+
         inb = in_band[k]
         if background == "none":
             bk = np.zeros((ny, nx))
             bv = np.zeros((ny, nx))
+            levels[k] = 0.0
         elif background == "rowcol":
             est = estimate_background(d[k], mask=~usable[k], source_mask=inb, method="rowcol",
                                       sigma=clip_sigma, smooth_columns=smooth_columns)
             bk, bv = est.background, est.variance
             bits |= est.bits
+            levels[k] = est.level  # the median of bk
         else:
             out = usable[k] & ~inb
             mean, vmean, kept = clipped_mean(d[k][out], np.zeros(int(out.sum()), bool), axis=0,
@@ -294,24 +397,27 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
             rej = np.zeros((ny, nx), bool)
             rej[out] = ~kept
             bits[rej] |= dq.BACKGROUND_OUTLIER
-        levels[k] = float(np.nanmedian(bk))
-        take = inb & valid[k]
-        contrib += np.where(take, d[k] - bk, 0.0)
-        bkg_map += np.where(take, bk, 0.0)
-        bkg_var += np.where(take, bv, 0.0)
+            levels[k] = float(mean)  # the median of a constant map
+        take = valid[k, band]
+        contrib[band] += np.where(take, dk - bk[band], 0.0)
+        bkg_map[band] += np.where(take, bk[band], 0.0)
+        bkg_var[band] += np.where(take, bv[band], 0.0)
+        pois[band] += np.where(take, charge, 0.0)
+        # runs of consecutive differences that enter the sum, per pixel
+        take_k = np.zeros((ny, nx), bool)
+        take_k[band] = take
+        runs += take_k & ~prev
+        take_any |= take_k
+        prev = take_k
 
-    take = in_band & valid
-    prev = np.concatenate([np.zeros((1, ny, nx), bool), take[:-1]], axis=0)
-    runs = np.sum(take & ~prev, axis=0)
-    pois = np.sum(np.where(take, np.maximum(filt * fl_safe + dark * dt[:, None, None], 0.0), 0.0), axis=0)
     var = (2.0 * s2 * runs + pois) / fl_safe ** 2 + bkg_var
-    covered = in_band.any(axis=0)
+    covered = np.broadcast_to(in_band_rows.any(axis=0)[:, None], (ny, nx))
     var = np.where(covered, var, 2.0 * s2 / fl_safe ** 2)
 
     bits[~covered] |= dq.OUTSIDE_BAND
-    bits[hit.any(axis=0)] |= dq.JUMP
+    bits[hit_any] |= dq.JUMP
     bits[sat_px] |= dq.SATURATED
-    bits[covered & ~take.any(axis=0)] |= dq.SHORT_RAMP
+    bits[covered & ~take_any] |= dq.SHORT_RAMP
     bits[~finite.all(axis=0) | ~flat_ok | ~np.isfinite(dark)] |= dq.NOT_FINITE
     return ScanSum(flux=contrib, variance=var, bits=bits, band_lo=lo, band_hi=hi, band_found=found,
-                   background=levels, background_map=bkg_map, n_cosmic=hit.sum(axis=(1, 2)))
+                   background=levels, background_map=bkg_map, n_cosmic=n_cosmic)
