@@ -2,8 +2,10 @@
 
 :func:`calibrate_exposure` chains the kernels of this package in the order
 the detector asks for: bias, gain, saturation (in ADU above bias), non-linearity,
-zero read, optional destriping, slope fit (staring) or band-masked difference
-sum (scan), dark, flat, bad pixels and background.  It does no file I/O; the
+zero read, optional destriping (staring: the 1/f readout stream and column
+offsets measured outside a two-dimensional source mask found from the
+exposure), slope fit (staring) or band-masked difference sum (scan), dark,
+flat, bad pixels and background.  It does no file I/O; the
 caller passes reference arrays already cut to the subarray
 (:func:`lightledger.pipeline.detector.cut_subarray`).
 """
@@ -13,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import mask as dq
-from .background import estimate_background, source_mask_from_rows
+from .background import estimate_background, source_mask_from_rows, trace_source_mask
 from .destripe import destripe as _destripe
 from .detector import linearize
 from .errors import ParameterError
@@ -98,16 +100,18 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
                        ramp_method="fit", background_method="rowcol",
                        destripe="off", jump_threshold=5.0, weighting="optimal",
                        max_jumps=3, source_pad=3, destripe_axes="both",
-                       background_options=None, scan_options=None):
+                       background_options=None, scan_options=None, source_mask=None,
+                       mask_options=None, destripe_options=None):
     """Calibrate one raw exposure of cumulative reads into electrons per pixel.
 
     Mask contract: pixels with a nonzero ``bad_pixels`` value get UNUSABLE
     (their values are still computed); NaN or infinite raw values or reference
     values give NOT_FINITE; pixels with no usable difference give SHORT_RAMP
     and NaN flux and variance.  Pixels with any of
-    :data:`lightledger.pipeline.mask.DO_NOT_USE` and the source rows are left
-    out of the background and destriping estimates.  The inputs are not
-    modified.
+    :data:`lightledger.pipeline.mask.UNUSABLE_FLAGS` and the source rows are left
+    out of the background estimate; bad, saturated and source pixels (a
+    two-dimensional mask: trace rows x source columns) are left out of the
+    destriping estimate.  The inputs are not modified.
 
     Parameters
     ----------
@@ -148,9 +152,11 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         :func:`lightledger.pipeline.background.estimate_background`.  Scans:
         "rowcol" or "constant", applied per difference.
     destripe : {"off", "differences", "frame"}
-        Remove 1/f stripes (:func:`lightledger.pipeline.destripe.destripe`)
-        from each read difference before the fit, or from the final staring
-        frame.  Scans accept "off" and "differences".
+        Remove 1/f read noise (:func:`lightledger.pipeline.destripe.destripe`,
+        by default the readout-stream model with column offsets) from each
+        read difference before the fit, or from the final staring frame.
+        Scans accept "off" and "differences" (row and column medians in
+        :func:`lightledger.pipeline.scans.sum_scan`).
     jump_threshold : float
         Jump threshold in sigma (staring).
     weighting : {"optimal", "unweighted"}
@@ -158,12 +164,26 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
     max_jumps : int
         Jumps removed per pixel at most.
     source_pad : int
-        Rows added on each side of the source rows in the masks.
+        Rows added on each side of the source rows in the background mask.
     destripe_axes : {"rows", "columns", "both"}
         Which stripes :func:`destripe` removes.
     background_options, scan_options : dict, optional
         Extra keyword options passed to ``estimate_background`` and
         ``sum_scan``.
+    source_mask : array_like of bool, shape (ny, nx), optional
+        Staring: the source pixels (True) to leave out of destriping and
+        background, e.g. one mask for a whole visit.  Default: found from the
+        exposure when destriping, by
+        :func:`lightledger.pipeline.background.trace_source_mask` on the last
+        read minus the zero read, with the source rows as the guess; the
+        background then also leaves out the padded source rows.
+    mask_options : dict, optional
+        Extra keyword options passed to ``trace_source_mask`` (``n_sigma``,
+        ``row_pad``, ``column_pad``, ``min_run``, ``pixel_sigma``).
+    destripe_options : dict, optional
+        Extra keyword options passed to ``destripe`` for staring exposures;
+        default ``{"method": "stream"}`` (``"median"`` gives row and column
+        medians; ``smoothing``, ``clip``, ``iterations``, ``min_pixels``).
 
     Returns
     -------
@@ -184,7 +204,10 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
     ``T = t_last - t_0``; ``var flux = var(rate) T**2 / flat**2`` (the slope's
     read and Poisson variance, :func:`fit_ramps`), plus the background
     estimate's variance after the background is subtracted.  The dark and flat
-    references are taken as exact.  Scans: see :func:`sum_scan`.
+    references are taken as exact, and so is the destriping pattern (its own
+    estimation noise, a few per cent of a pixel's variance, is not added; see
+    :func:`lightledger.pipeline.destripe.destripe`).  Scans: see
+    :func:`sum_scan`.
 
     References
     ----------
@@ -262,6 +285,20 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
     else:
         rows = tuple(source_rows)
         smask = source_mask_from_rows(shape, rows, pad=source_pad)
+    # destriping mask: two-dimensional, from the caller or from the exposure itself
+    dmask = None
+    if source_mask is not None:
+        dmask = np.asarray(source_mask, dtype=bool)
+        if dmask.shape != shape:
+            raise ParameterError(f"source_mask must have shape {shape}; got {dmask.shape}")
+        smask = dmask
+    elif destripe != "off" and not scanning:
+        mopts = dict(mask_options or {})
+        raw_bad = badref | ref_bad | ~np.all(np.isfinite(e), axis=0)
+        dmask = trace_source_mask(np.nan_to_num(e[-1] - e[0]), rows=rows, mask=raw_bad, **mopts).mask
+        smask = smask | dmask
+    dopts = {"method": "stream"}
+    dopts.update(destripe_options or {})
 
     bopts = dict(background_options or {})
     if scanning:
@@ -277,9 +314,10 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         level = float(np.median(bkg[covered])) if covered.any() else 0.0
         mid = float(np.mean(t))
     else:
+        sat_any = np.zeros(shape, bool) if saturated is None else np.any(saturated, axis=0)
         if destripe == "differences":
             d = np.diff(e, axis=0)
-            ds = _destripe(d, smask, axes=destripe_axes, mask=badref | ref_bad)
+            ds = _destripe(d, dmask, axes=destripe_axes, mask=badref | ref_bad | sat_any, **dopts)
             e = np.concatenate([np.zeros((1, ny, nx)), np.cumsum(ds.frames, axis=0)], axis=0)
         fit = fit_ramps(e, t, read_noise=rn, saturated=saturated,
                         weighting=weighting if ramp_method == "fit" else "sum",
@@ -292,8 +330,8 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         flux = np.where(ref_bad, np.nan, flux)
         var = np.where(ref_bad, np.nan, var)
         if destripe == "frame":
-            flux = _destripe(flux, smask, axes=destripe_axes,
-                             mask=badref | dq.to_boolean(bits)).frames
+            flux = _destripe(flux, dmask, axes=destripe_axes,
+                             mask=badref | sat_any | dq.to_boolean(bits), **dopts).frames
         if background_method == "none":
             bkg = np.zeros(shape)
             level = 0.0

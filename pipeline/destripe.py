@@ -1,26 +1,47 @@
-"""Removal of correlated (1/f) read noise as row and column stripes.
+"""Removal of correlated (1/f) read noise: row and column stripes, or the readout stream.
 
-Per frame (a read difference or a calibrated image), the median of each row
-over the columns outside the source mask, and then the median of each column
-over the rows outside it, are taken as the stripe pattern (common practice)
-and subtracted relative to the frame's overall masked median, so the
-background level is kept.  Cost: two sorts of each frame, O(n ny nx log nx);
-a few ms for 7 frames of 100 x 180 pixels.
+Two estimators, chosen by ``method`` of :func:`destripe`; both measure the
+pattern from pixels outside a source mask (common practice: subtract a
+per-row or per-column median of pixels away from the source) and subtract it
+relative to the frame's level, so the background level is kept.
 
-Masks are boolean, True = pixel not used for the stripe estimate.
+* ``"median"`` - per frame (a read difference or a calibrated image), the
+  median of each row over the columns outside the source mask, then the
+  median of each column over the rows outside it.  A row that lies entirely
+  inside the mask gets no correction.  Cost: two sorts of each frame,
+  O(n ny nx log nx); a few ms for 7 frames of 100 x 180 pixels.
+* ``"stream"`` - the pixels are clocked out row after row, columns fastest,
+  so 1/f noise is a slowly wandering offset along that readout stream (index
+  ``y nx + x``), not a constant per row.  It is modelled as a smooth function
+  of the stream index, the penalised least-squares smoother of Eilers (2003)
+  with first differences, plus one offset per column (the same for every
+  row), fitted jointly by back-fitting to the pixels outside the mask.  Rows
+  crossed by the source are bridged from the unmasked pixels at their two
+  ends and from the rows before and after them.  Cost: one banded
+  (tridiagonal) solve of length ny nx per back-fitting pass, twice when
+  outliers are rejected, O(n ny nx); about 6 ms for 4 frames of 40 x 256
+  pixels and 12 ms for 7 frames of 100 x 180, memory a few copies of the
+  frames.
+
+Masks are boolean, True = pixel not used for the estimate.
 """
 
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.linalg import solveh_banded
 
 from .errors import ParameterError
 from .ramps import masked_median
 
-__all__ = ["DestripeResult", "destripe", "AXES"]
+__all__ = ["DestripeResult", "destripe", "stream_smoothing", "AXES", "METHODS"]
 
 #: Allowed values of ``axes`` in :func:`destripe`.
 AXES = ("rows", "columns", "both")
+#: Allowed values of ``method`` in :func:`destripe`.
+METHODS = ("median", "stream")
+
+_MAD_TO_SIGMA = 1.4826  # normal distribution: sigma = 1.4826 MAD (common practice)
 
 
 @dataclass(frozen=True)
@@ -33,24 +54,37 @@ class DestripeResult:
         Destriped frames, float64.
     row_offsets : ndarray of shape (..., ny)
         Subtracted offset of each row (0 where every pixel of the row is masked
-        or ``axes`` excludes rows).
+        or ``axes`` excludes rows).  ``method="stream"``: the mean over the row
+        of the subtracted stream model.
     column_offsets : ndarray of shape (..., nx)
         Subtracted offset of each column (after the row correction).
+    smoothing : float
+        ``method="stream"``: the smoothing weight used, pixels**2 along the
+        stream (NaN for ``"median"`` or when no stream was fitted).
+    n_used : int
+        Pixels per frame that entered the estimate.
     """
 
     frames: np.ndarray
     row_offsets: np.ndarray
     column_offsets: np.ndarray
+    smoothing: float = float("nan")
+    n_used: int = 0
 
 
-def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5):
-    """Subtract row and column stripes measured away from the source.
+def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5, method="median",
+             smoothing=None, clip=5.0, iterations=3):
+    """Subtract row and column stripes, or the readout stream, measured away from the source.
 
     Mask contract: pixels where ``source_mask`` (True = source to avoid) or
     ``mask`` (True = bad) is True, and non-finite pixels, are not used to
-    measure the stripes, but every pixel is corrected.  A row (column) with
-    fewer than ``min_pixels`` usable pixels gets no correction.  The inputs
-    are not modified.
+    measure the pattern, but every pixel is corrected.  ``method="median"``:
+    a row (column) with fewer than ``min_pixels`` usable pixels gets no
+    correction.  ``method="stream"``: a pixel unusable in any frame is left
+    out of every frame's estimate, a column with fewer than ``min_pixels``
+    usable pixels gets no column offset, and pixels further than ``clip``
+    robust sigma from the first model are rejected (cosmic rays, hot pixels).
+    The inputs are not modified.
 
     Parameters
     ----------
@@ -59,11 +93,24 @@ def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5):
     source_mask : array_like of bool, shape (ny, nx) or that of ``frames``
         True = source pixel.
     axes : {"rows", "columns", "both"}
-        Which stripes to remove; "both" does rows first, then columns.
+        Which stripes to remove; "both" does rows (the stream) first, then
+        columns.
     mask : array_like of bool, optional
         Bad pixels, broadcast like ``source_mask``.
     min_pixels : int
         Minimum usable pixels per row or column.
+    method : {"median", "stream"}
+        See the module docstring for model and cost.
+    smoothing : float, optional
+        ``"stream"``: weight of the squared first differences of the stream
+        model, pixels**2 (the model follows the data on scales longer than
+        about ``sqrt(smoothing)`` pixels along the stream).  Default: from
+        the data, :func:`stream_smoothing`.
+    clip : float or None
+        ``"stream"``: rejection threshold, robust sigma (None = no rejection).
+    iterations : int
+        ``"stream"`` with ``axes="both"``: back-fitting passes between the
+        stream and the column offsets (>= 1).
 
     Returns
     -------
@@ -72,21 +119,47 @@ def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5):
     Raises
     ------
     ParameterError
-        Unknown ``axes`` or shapes that do not broadcast.
+        Unknown ``axes`` or ``method``, shapes that do not broadcast, or
+        ``smoothing <= 0``.
 
     Notes
     -----
-    The correction of row ``y`` is ``median_x(F[y, x]) - median(F)`` over
-    usable pixels.  Subtracting an estimate from ``n`` pixels adds its own
-    noise, ``(pi / 2) sigma**2 / n`` per pixel for white noise ``sigma``
-    (variance of a median of normal values, common practice); with ``n``
-    of order 100 this is below 2 per cent of the pixel variance and is not
-    propagated.  Column corrections also remove any column structure of the
-    background outside the source (e.g. a dispersed sky); apply a background
-    estimate afterwards.
+    ``"median"``: the correction of row ``y`` is ``median_x(F[y, x]) -
+    median(F)`` over usable pixels.
+
+    ``"stream"``: with ``s = y nx + x`` and weights ``w_s`` (1 usable, 0
+    not), the stream ``z`` and column offsets ``c`` minimise
+    ``sum_s w_s (F_s - z_s - c_x(s))**2 + smoothing sum_s (z_(s+1) - z_s)**2``.
+    For fixed ``c`` the minimiser is the solution of the tridiagonal system
+    ``(W + smoothing D^T D) z = W (F - c)`` (Eilers 2003); for fixed ``z``,
+    ``c_x`` is the mean of ``F - z`` over the usable pixels of column ``x``;
+    alternating the two decreases the objective at every step (back-fitting,
+    common practice).  The smoother is the conditional mean of a random walk
+    of step variance ``q`` per pixel seen in white noise of variance
+    ``sigma**2`` when ``smoothing = sigma**2 / q`` (from memory); across a
+    masked gap it interpolates linearly between the model at its two ends.
+    The subtracted pattern is ``z + c`` minus its mean over the usable
+    pixels; since ``D^T D`` annihilates a constant, the fitted model has the
+    data's mean there, so the mean of the usable pixels of each frame is
+    kept.
+
+    Subtracting an estimate from ``n`` pixels adds its own noise, about
+    ``sigma**2 / n`` per pixel for white noise ``sigma`` (``(pi / 2)
+    sigma**2 / n`` for a median, common practice), correlated along the row
+    or column; with ``n`` of order 100 this is a few per cent of the pixel
+    variance and is not propagated.  Column corrections also remove any
+    column structure of the background outside the source (e.g. a dispersed
+    sky); apply a background estimate afterwards.
+
+    References
+    ----------
+    Eilers, P. H. C. 2003, Analytical Chemistry 75, 3631 (penalised
+    least-squares smoother with weights and gaps).
     """
     if axes not in AXES:
         raise ParameterError(f"axes must be one of {AXES}; got {axes!r}")
+    if method not in METHODS:
+        raise ParameterError(f"method must be one of {METHODS}; got {method!r}")
     f = np.asarray(frames, dtype=float)
     if f.ndim not in (2, 3):
         raise ParameterError(f"frames must have shape (ny, nx) or (n_frames, ny, nx); got {f.shape}")
@@ -97,6 +170,12 @@ def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5):
     except ValueError:
         raise ParameterError(f"source_mask and mask must broadcast to frames' shape {f.shape}") from None
     bad = bad | ~np.isfinite(f)
+    if smoothing is not None and not (np.isfinite(smoothing) and smoothing > 0):
+        raise ParameterError(f"smoothing must be a finite number > 0 pixels**2, or None; got {smoothing!r}")
+    if int(iterations) < 1:
+        raise ParameterError(f"iterations must be an integer >= 1; got {iterations!r}")
+    if method == "stream":
+        return _stream(f, bad, axes, int(min_pixels), smoothing, clip, int(iterations))
     out = f.copy()
     flat = out.reshape(out.shape[:-2] + (-1,))
     level, _ = masked_median(flat, bad.reshape(flat.shape), axis=-1)
@@ -111,4 +190,151 @@ def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5):
         med, n = masked_median(out, bad, axis=-2)
         col_off = np.where(n >= min_pixels, med - level[..., None], 0.0)
         out -= col_off[..., None, :]
-    return DestripeResult(frames=out, row_offsets=row_off, column_offsets=col_off)
+    n_used = int(np.count_nonzero(~bad)) // max(int(np.prod(f.shape[:-2])), 1)
+    return DestripeResult(frames=out, row_offsets=row_off, column_offsets=col_off, n_used=n_used)
+
+
+def _smooth(values, weights, lam):
+    """Solve (W + lam D^T D) z = W v for every column of ``values`` (shape (N, n))."""
+    n = weights.size
+    ab = np.empty((2, n))
+    dg = np.full(n, 2.0)
+    dg[0] = dg[-1] = 1.0
+    ab[1] = weights + lam * dg
+    ab[0, 0] = 0.0
+    ab[0, 1:] = -lam
+    return solveh_banded(ab, weights[:, None] * values, check_finite=False)
+
+
+_ROBUST_SAMPLE = 20000  # values used for a robust scale (every k-th one beyond this)
+
+
+def _robust_var(x):
+    """(1.4826 MAD)**2 of a 1-D sample (common practice), 0 for an empty one.
+
+    Samples larger than ``_ROBUST_SAMPLE`` are thinned to every k-th value,
+    which changes the estimate by about 1 per cent.
+    """
+    if x.size == 0:
+        return 0.0
+    x = x[::max(1, -(-x.size // _ROBUST_SAMPLE))]
+    return float((_MAD_TO_SIGMA * np.median(np.abs(x - np.median(x)))) ** 2)
+
+
+def stream_smoothing(frames, usable, *, min_fraction=0.9):
+    """Smoothing weight of the stream model from the data: white variance over step variance.
+
+    Mask contract: only pixels where ``usable`` is True enter; the inputs are
+    not modified.
+
+    Parameters
+    ----------
+    frames : array_like of shape (n_frames, ny, nx)
+        Frames in the readout order (rows one after another, columns fastest).
+    usable : array_like of bool, shape (ny, nx)
+        True = pixel may be used.
+    min_fraction : float
+        Rows with at least this fraction of usable pixels count as full rows.
+
+    Returns
+    -------
+    smoothing : float
+        ``sigma**2 / q``, pixels**2, clipped to ``[1, (ny nx)**2]``; ``(nx /
+        2)**2`` when fewer than three pairs of consecutive full rows exist.
+
+    Notes
+    -----
+    The white variance is ``sigma**2 = var(F[y, x+1] - F[y, x]) / 2`` over
+    usable neighbours.  For a random walk of step variance ``q`` per pixel
+    the difference of the means of two consecutive rows of ``nx`` pixels has
+    variance ``q (2 nx**2 + 1) / (3 nx)``, plus ``sigma**2 (1 / n_1 + 1 /
+    n_2)`` from the white noise of the two means (derived by summing the
+    walk's steps with their weights); column offsets cancel in the
+    difference.  Both variances are robust, (1.4826 MAD)**2 (common
+    practice).
+    """
+    f = np.asarray(frames, dtype=float)
+    u = np.asarray(usable, dtype=bool)
+    n_fr, ny, nx = f.shape
+    pair = u[:, 1:] & u[:, :-1]
+    dx = (f[:, :, 1:] - f[:, :, :-1])[:, pair]
+    s2 = 0.5 * _robust_var(dx.ravel())
+    cnt = u.sum(axis=1)
+    full = cnt >= min_fraction * nx
+    idx = np.flatnonzero(full)
+    consec = idx[:-1][np.diff(idx) == 1]
+    fallback = (0.5 * nx) ** 2
+    if consec.size < 3 or s2 <= 0:
+        return float(fallback)
+    means = np.where(u, f, 0.0).sum(axis=2) / np.maximum(cnt, 1)     # (n_frames, ny)
+    dm = (means[:, consec + 1] - means[:, consec]).ravel()
+    white = s2 * float(np.mean(1.0 / cnt[consec] + 1.0 / cnt[consec + 1]))
+    v = _robust_var(dm) - white
+    n_tot = ny * nx
+    if v <= 0:
+        return float(n_tot) ** 2
+    q = v * 3.0 * nx / (2.0 * nx ** 2 + 1.0)
+    return float(np.clip(s2 / q, 1.0, float(n_tot) ** 2))
+
+
+def _stream(f, bad, axes, min_pixels, smoothing, clip, iterations):
+    single = f.ndim == 2
+    fr = f[None] if single else f
+    bd = bad[None] if single else bad
+    n_fr, ny, nx = fr.shape
+    usable = ~bd.any(axis=0)
+    zero_rows, zero_cols = np.zeros((n_fr, ny)), np.zeros((n_fr, nx))
+    if not usable.any():
+        out = fr.copy()
+        return DestripeResult(frames=out[0] if single else out,
+                              row_offsets=zero_rows[0] if single else zero_rows,
+                              column_offsets=zero_cols[0] if single else zero_cols)
+    y = np.where(usable, fr, 0.0)
+    do_rows = axes in ("rows", "both")
+    do_cols = axes in ("columns", "both")
+    lam = float(smoothing) if smoothing is not None else (
+        stream_smoothing(y, usable) if do_rows else float("nan"))
+
+    def fit(use):
+        w = use.ravel().astype(float)
+        ncol = use.sum(axis=0)
+        colok = ncol >= min_pixels
+        cw = ncol * colok
+        c = np.zeros((n_fr, nx))
+        yk = y.reshape(n_fr, -1)
+        if not do_rows:
+            z = np.broadcast_to(np.median(fr[:, use], axis=1)[:, None], (n_fr, ny * nx))
+        for _ in range(iterations if (do_rows and do_cols) else 1):
+            if do_rows:
+                z = _smooth((yk - np.tile(c, ny)).T, w, lam).T
+            if do_cols:
+                r = np.where(use, (yk - z).reshape(n_fr, ny, nx), 0.0).sum(axis=1)
+                c = np.where(colok, r / np.maximum(ncol, 1), 0.0)
+                c = np.where(colok, c - (c * cw).sum(axis=1, keepdims=True) / max(cw.sum(), 1), 0.0)
+        if do_rows and do_cols:
+            z = _smooth((yk - np.tile(c, ny)).T, w, lam).T
+        return z.reshape(n_fr, ny, nx), c
+
+    z, c = fit(usable)
+    if clip is not None:
+        resid = (fr - z - c[:, None, :])[:, usable]                       # (n_frames, n_usable)
+        sub = resid[:, ::max(1, -(-resid.size // _ROBUST_SAMPLE))]
+        med = np.median(sub, axis=1, keepdims=True)
+        scale = _MAD_TO_SIGMA * np.median(np.abs(sub - med), axis=1, keepdims=True)
+        out_any = np.zeros((ny, nx), bool)
+        out_any[usable] = np.any(np.abs(resid - med) > float(clip) * scale, axis=0)
+        if out_any.any():
+            usable = usable & ~out_any
+            y = np.where(usable, fr, 0.0)
+            z, c = fit(usable)
+    model = z + c[:, None, :]
+    ref = model[:, usable].mean(axis=1)
+    zrel = z - ref[:, None, None]
+    out = fr - zrel - c[:, None, :]
+    row_off = zrel.mean(axis=2) if do_rows else zero_rows
+    col_off = c if do_cols else zero_cols
+    n_used = int(np.count_nonzero(usable))
+    if single:
+        out, row_off, col_off = out[0], row_off[0], col_off[0]
+    return DestripeResult(frames=out, row_offsets=row_off, column_offsets=col_off,
+                          smoothing=lam if do_rows else float("nan"), n_used=n_used)

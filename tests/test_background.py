@@ -5,8 +5,9 @@ import pytest
 from astropy.stats import sigma_clipped_stats
 
 from lightledger.pipeline import mask as dq
-from lightledger.pipeline.background import (clipped_mean, detect_source_mask, estimate_background,
-                                             source_mask_from_rows)
+from lightledger.pipeline.background import (TraceMask, clipped_mean, detect_source_mask,
+                                             estimate_background, source_mask_from_rows,
+                                             trace_source_mask)
 from lightledger.pipeline.errors import AllMaskedError, ParameterError
 
 NY, NX = 100, 180
@@ -86,3 +87,55 @@ def test_errors_and_not_mutated():
         estimate_background(img, method="poly")
     with pytest.raises(AllMaskedError):
         estimate_background(img, source_mask=np.ones(img.shape, bool))
+
+
+def partial_trace(rng, sigma=20.0, stream_sigma=15.0):
+    """Trace over columns 20..159 (smooth ends), sky, white noise and 1/f along the readout."""
+    y = np.arange(NY)[:, None]
+    x = np.arange(NX)[None, :]
+    spectrum = 5000.0 / (1 + np.exp(-(x - 25.0) / 2.0)) / (1 + np.exp((x - 155.0) / 2.0))
+    source = spectrum * np.exp(-0.5 * ((y - 50.0) / 1.5) ** 2)
+    f = np.fft.rfftfreq(NY * NX)
+    amp = np.zeros_like(f)
+    amp[1:] = f[1:] ** -0.5  # 1/f noise along the stream (common practice: white noise shaped in Fourier space)
+    s = np.fft.irfft(amp * (rng.normal(size=f.size) + 1j * rng.normal(size=f.size)), n=NY * NX)
+    stream = (stream_sigma * s / s.std()).reshape(NY, NX)
+    return 100.0 + source + rng.normal(0.0, sigma, (NY, NX)) + stream, source
+
+
+@pytest.mark.parametrize("guess", [None, (44, 56)])
+def test_trace_source_mask_covers_the_source_and_leaves_faint_pixels(guess):
+    rng = np.random.default_rng(55)
+    img, source = partial_trace(rng)
+    img[10, 5] += 3000.0  # a cosmic ray in a faint corner
+    bad = np.zeros((NY, NX), bool)
+    bad[70, 70] = True
+    img[70, 70] = 1e6  # a flagged hot pixel: ignored by the detection
+    img0 = img.copy()
+    tm = trace_source_mask(img, rows=guess, mask=bad)
+    np.testing.assert_array_equal(img, img0)
+    assert isinstance(tm, TraceMask)
+    # everything brighter than 3 sigma of the noise is inside the mask
+    assert tm.mask[source > 3 * 20.0].all()
+    assert tm.mask[10, 5]
+    # the faint ends of the trace rows and the rows away from it stay usable
+    assert not tm.mask[44:57, :12].any() and not tm.mask[44:57, 170:].any()
+    far = np.abs(np.arange(NY) - 50) > 8
+    far[4:17] = False  # the cosmic ray's neighbourhood
+    assert not tm.mask[far].any()
+    assert not tm.mask[70, 70]
+    # robust scatter (1.4826 MAD, common practice) close to the white noise plus the stream's
+    assert 20.0 < tm.sigma < 30.0
+
+
+def test_trace_source_mask_errors():
+    img = np.zeros((NY, NX))
+    with pytest.raises(ParameterError, match="mask"):
+        trace_source_mask(img, mask=np.zeros((3, 3), bool))
+    with pytest.raises(ParameterError, match="row_pad"):
+        trace_source_mask(img, row_pad=-1)
+    with pytest.raises(AllMaskedError):
+        trace_source_mask(img, mask=np.ones((NY, NX), bool))
+    # no source: an empty mask
+    rng = np.random.default_rng(56)
+    assert not trace_source_mask(rng.normal(0.0, 1.0, (NY, NX))).mask.any()

@@ -200,6 +200,12 @@ def test_speed_of_a_staring_frame():
     per = (time.perf_counter() - t0) / n
     print(f"calibrate_exposure 8 x 100 x 180: {per * 1e3:.1f} ms")
     assert per < 0.2  # goal ~20 ms; generous bound for shared test machines
+    t0 = time.perf_counter()
+    for _ in range(n):
+        calibrate_exposure(reads, t, **kwargs(source_rows=(45, 55), destripe="differences"))
+    per = (time.perf_counter() - t0) / n
+    print(f"calibrate_exposure 8 x 100 x 180, stream destriping of the differences: {per * 1e3:.1f} ms")
+    assert per < 0.3
 
 
 def test_inputs_not_mutated_and_errors():
@@ -241,3 +247,71 @@ def test_cut_subarray():
     assert ref.min() == 0  # a copy, not a view
     with pytest.raises(ParameterError, match="does not fit"):
         cut_subarray(ref, (8, 2), (5, 6))
+
+
+def stream_one_over_f(rng, n_reads, ny, nx, row_sigma, column_sigma):
+    """Correlated read noise, e-: a 1/f series along the readout stream (rows one after
+    another, columns fastest) and a 1/f series along the columns, independent per read
+    (white noise shaped by 1/sqrt(f) in Fourier space, common practice)."""
+    def pink(n_series, length, sigma):
+        f = np.fft.rfftfreq(length)
+        amp = np.zeros_like(f)
+        amp[1:] = f[1:] ** -0.5
+        s = np.fft.irfft(amp * (rng.normal(size=(n_series, f.size)) + 1j * rng.normal(size=(n_series, f.size))),
+                         n=length, axis=1)
+        return sigma * s / s.std(axis=1, keepdims=True)
+    return (pink(n_reads, ny * nx, row_sigma).reshape(n_reads, ny, nx)
+            + pink(n_reads, nx, column_sigma)[:, None, :])
+
+
+def test_destriping_stream_noise_lowers_white_light_error():
+    # A staring trace over nearly all of 256 columns (faint ends usable), read noise 12 e-,
+    # 1/f noise of 5 e- along the readout stream and 3 e- along the columns per read (the
+    # amplitudes of the fictional stare demo).  The error that the 1/f noise leaves in the
+    # sum over the trace block (a white light curve) is measured against the same exposure
+    # without 1/f noise.  Monte Carlo over 40 exposures; over 5 seeds the variance ratio
+    # off / stream model was 3.2-4.6 and medians / stream model 2.7-4.1 (row/column medians
+    # with the same mask do not beat no correction: the few faint pixels of a trace row
+    # give a noisy row median).
+    ny, nx, nreads, dt, rn = 40, 256, 5, 20.0, 12.0
+    y = np.arange(ny)[:, None]
+    x = np.arange(nx)[None, :]
+    spectrum = 1000.0 / (1 + np.exp(-(x - 22.0) / 1.5)) / (1 + np.exp((x - 238.0) / 1.5))
+    rate = 0.3 + spectrum * np.exp(-0.5 * ((y - 20.0) / 1.25) ** 2) / (1.25 * np.sqrt(2 * np.pi))
+    t = np.arange(nreads) * dt
+    block = (slice(15, 26), slice(26, 235))
+    kw = kwargs(read_noise=rn, source_rows=(16, 24))
+    rng = np.random.default_rng(31)
+    err = {"stream": [], "median": [], "off": []}
+    for _ in range(40):
+        inc = rng.poisson(np.broadcast_to(rate * dt, (nreads - 1, ny, nx)))
+        q = np.concatenate([np.zeros((1, ny, nx)), np.cumsum(inc, axis=0)]) + rng.normal(0.0, rn, (nreads, ny, nx))
+        noisy = q + stream_one_over_f(rng, nreads, ny, nx, 5.0, 3.0)
+        ref = calibrate_exposure(BIAS + q / GAIN, t, **kw).flux[block].sum()
+        for name, opts in (("stream", dict(destripe="differences")),
+                           ("median", dict(destripe="differences", destripe_options={"method": "median"})),
+                           ("off", dict(destripe="off"))):
+            out = calibrate_exposure(BIAS + noisy / GAIN, t, **kw, **opts)
+            err[name].append(out.flux[block].sum() - ref)
+    # the variance about the mean: faint source light in the pixels used by the destriping
+    # takes a constant fraction of the flux, which a relative light curve does not see
+    v = {k: np.var(e) for k, e in err.items()}
+    print(f"white-light 1/f error variance reduced {v['off'] / v['stream']:.1f}x by the stream model, "
+          f"{v['off'] / v['median']:.1f}x by row/column medians")
+    assert v["off"] / v["stream"] > 2.0
+    assert v["median"] / v["stream"] > 1.8
+
+
+def test_explicit_source_mask_and_mask_options():
+    rng = np.random.default_rng(32)
+    rate = scene(30, 60, row=15.0)
+    reads, t = render(rng, rate)
+    m = np.zeros((30, 60), bool)
+    m[10:21] = True
+    out = calibrate_exposure(reads, t, **kwargs(destripe="differences", source_mask=m))
+    assert np.isfinite(out.flux).all()
+    out2 = calibrate_exposure(reads, t, **kwargs(destripe="frame", source_rows=(13, 17),
+                                                 mask_options={"row_pad": 2, "pixel_sigma": None}))
+    assert np.isfinite(out2.flux).all()
+    with pytest.raises(ParameterError, match="source_mask"):
+        calibrate_exposure(reads, t, **kwargs(destripe="differences", source_mask=np.zeros((3, 3), bool)))
