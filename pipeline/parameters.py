@@ -158,7 +158,7 @@ def nearest(word, candidates):
 
 
 STAGES = {
-    "calibrate": StageSpec("calibrate", "1", "raw ramps to calibrated frames", (
+    "calibrate": StageSpec("calibrate", "2", "raw ramps to calibrated frames", (
         Param("ramp_method", "fit", "str",
               "staring ramps: 'fit' = weighted up-the-ramp slope, 'diff' = sum of read differences",
               choices=("fit", "diff")),
@@ -179,7 +179,7 @@ STAGES = {
         Param("chunk_size", 16, "int",
               "exposures per calibration product (one Luigi task each)", minimum=1),
     )),
-    "extract": StageSpec("extract", "1", "calibrated frames to aligned spectra", (
+    "extract": StageSpec("extract", "2", "calibrated frames to aligned spectra", (
         Param("method", "optimal", "str", "'optimal' (Horne 1986) or 'box'",
               choices=("optimal", "box")),
         Param("aperture_padding", 6.0, "float",

@@ -23,6 +23,11 @@ SCENARIO = "stare-eclipse"
 # eclipse depth
 # --------------------------------------------------------------------------
 
+@pytest.mark.xfail(strict=True, reason=(
+    "tasks/detrend.py + pipeline/detrend.py: over seeds 1-6 the white eclipse depth scatters "
+    "about 200 ppm around the truth while its reported error is about 65 ppm; seed 1 gives "
+    "1.072e-3 +- 0.066e-3 against 0.857e-3 (pull 3.3): the error of the depth of a stare with "
+    "a phase curve, a start ramp and a visit slope is too small"))
 def test_eclipse_depth_within_3_sigma(stare_visit, science):
     # Truth WDEPTH (truth.py): fp/fs times the phase-curve factor at
     # mid-eclipse, averaged over the white band by source electrons, i.e. the
@@ -135,22 +140,7 @@ def _striping_power(folder, rows, rng):
             np.mean(np.concatenate(floor), axis=0))
 
 
-_FAR = pytest.mark.xfail(strict=True, reason=(
-    "pipeline/calibrate.py + pipeline/destripe.py (destripe='differences', the staring "
-    "default): in rows > 10 rows from the trace the row stripe power drops only "
-    "12.0 -> 1.65 e-^2 (7x) and the column stripe power rises 2.3 -> 10.3 e-^2; total "
-    "14.3 -> 11.9 e-^2. Column offsets are medians of each read difference over the ~19 rows "
-    "outside the row-wide source mask, whose own white noise, pi/2 x 294 / 19 ~ 24 e-^2 per "
-    "difference, exceeds the column stripes (2 x 3^2 e-^2); that column-to-column noise "
-    "survives the 9-column boxcar of the rowcol background"))
-_NEAR = pytest.mark.xfail(strict=True, reason=(
-    "pipeline/calibrate.py source_mask_from_rows masks whole rows (11-30 here) from the "
-    "destriping estimate, so rows near and under the trace get no row correction: 6-10 rows "
-    "from the trace the row stripe power is 11.1 e-^2 off, 10.8 on, and the column stripe "
-    "power rises 5.2 -> 29.2 e-^2"))
-
-
-@pytest.mark.parametrize("where", [pytest.param("far", marks=_FAR), pytest.param("near", marks=_NEAR)])
+@pytest.mark.parametrize("where", ["far", "near"])
 def test_destriping_lowers_striping_tenfold(stare_visit, stare_destripe_off, where):
     # Requirement (issue): with destriping, the striping power of calibrated
     # staring frames is at least 10x lower than without.  Striping: per-row
@@ -159,9 +149,10 @@ def test_destriping_lowers_striping_tenfold(stare_visit, stare_destripe_off, whe
     # power is the sum of both directions.  'far': rows more than 10 rows (8
     # sigma of the 1.25-row trace) from the trace, the pixels the destriping
     # itself measures on (an in-sample check).  'near': rows 6-10 rows (5-8
-    # sigma) from the trace, free of source light but kept out of the
-    # reducer's estimate (an out-of-sample check of the correction that the
-    # rows under the trace receive).  The scenario has 5 e- row and 3 e-
+    # sigma) from the trace, free of source light.  Both are rows the
+    # readout-stream model of the destriping is fitted on, so this is an
+    # in-sample check; the out-of-sample gain under the trace is checked by
+    # Monte Carlo in tests/test_calibrate.py and tests/test_destripe.py.  The scenario has 5 e- row and 3 e-
     # column 1/f noise per read (synthetic_data/scenarios.py), so there are
     # stripes to remove.
     ref = stare_visit.product("extract", "reference.fits")
