@@ -127,7 +127,9 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     messages = []
     if failures.exists():
         for file in sorted(failures.glob("*.txt")):
-            messages.append(file.read_text().rstrip())
+            text = file.read_text().rstrip()
+            if text not in messages:       # chunks that fail alike say so once
+                messages.append(text)
     ok = task.complete()
     if not ok and not messages:
         messages.append(f"lightledger: error: the reduction did not complete ({summary.status})")
