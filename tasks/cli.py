@@ -13,8 +13,9 @@
     differences between two entries or two products.
 
 A user's mistake (a missing file, a bad key, a malformed product) prints one
-line ``lightledger: error: ...`` on standard error and exits with status 2;
-a failed stage exits with status 1.
+line ``lightledger: error: ...`` on standard error and exits with status 2,
+whether it is found before the run or inside a stage; a stage that fails for
+any other reason (a bug) prints its traceback and exits with status 1.
 """
 
 import argparse
@@ -126,7 +127,10 @@ def _cmd_reduce(args):
     for line in result.messages:
         print(line, file=sys.stderr)
     if not result.ok:
-        return 1
+        # a user's mistake found inside a stage (e.g. channels outside the spectrum) exits like
+        # one found before the run; a failure of the code itself exits with 1
+        user = result.messages and all(m.startswith("lightledger: error:") for m in result.messages)
+        return 2 if user else 1
     if result.ran:
         counts = {}
         for family in result.ran:
