@@ -11,11 +11,21 @@ difference is median-filtered along the dispersion axis (which removes
 single-pixel cosmic rays), collapsed along x into a row profile, and the run
 of rows above ``band_sigma`` robust sigma of that profile around its peak,
 padded by ``pad_rows``, is the band.  Forward and reverse scans are handled
-alike.  Cost: one median filter and a few sorts of the difference cube,
-O(n_reads ny nx); a Python loop runs over differences only, each step on one
-difference (the cosmic-ray test and the sums on the band's rows only), so
-that the work arrays stay in the processor's cache.  The background
-estimate of each difference is most of the time.
+alike.
+
+Cosmic rays inside a band are found against a separable model of the band,
+row profile times spectrum, fitted to each difference on its own (see
+:func:`sum_scan` Notes): unlike the neighbouring columns of the difference,
+it predicts the sharp lines of the spectrum and the peaks between them.
+
+Cost: one median filter and a few sorts of the difference cube,
+O(n_reads ny nx); the band models of all differences at once, on the band's
+rows (two running medians of ``cr_width`` columns and one sort of each
+column's band rows), O(n_reads n_band_rows nx cr_width); then a Python loop
+runs over differences only, each step on one difference (the cosmic-ray
+test and the sums on the band's rows only), so that the work arrays stay in
+the processor's cache.  The background estimate of each difference is most
+of the time.
 """
 
 from dataclasses import dataclass
@@ -144,6 +154,188 @@ def _median_filter_rows(frame, width):
     return lanes[width // 2]
 
 
+#: Columns whose band sum is below this many sigma of a background column's
+#: sum hold no spectrum (see :func:`_band_models`).
+_SPECTRUM_FLOOR = 5.0
+#: Pixels more than this many sigma from the first (median) scale of their
+#: column are left out of the column's least-squares scale (see
+#: :func:`_band_models`).
+_SCALE_CLIP = 4.0
+
+
+def _pixel_sigma(model, read_var, flat, dark_charge):
+    """Noise of a flat-fielded difference whose expected value is ``model``.
+
+    ``sqrt(read_var + max(model flat + dark_charge, 0)) / flat``: read noise
+    of two reads plus the Poisson noise of the collected charge, electrons.
+    """
+    charge = np.maximum(model * flat + dark_charge, 0.0)
+    return np.sqrt(read_var + charge) / flat
+
+
+def _window_median(values, members, width):
+    """Running median along the last axis over the member columns of each window.
+
+    ``values`` has shape (n, n_rows, nx) and ``members`` (n, nx).  For each
+    member column ``c`` of difference ``k``: the median of
+    ``values[k, :, j]`` over the member columns ``j`` among
+    ``c - width // 2 .. c + width // 2`` that exist, the mean of the middle
+    two for an even count.  Other columns of the result are NaN.  Windows
+    of members only, inside the frame, use the comparator network of
+    :func:`_median_filter_rows`; the others a sort of their members.
+    ``width`` is odd; the inputs are not modified.
+    """
+    out = _median_filter_rows(values, width)
+    kk, cc = np.nonzero(members & (_window_count(members, width) < width))
+    if kk.size:
+        out[kk, :, cc] = _gathered_median(np.where(members[:, None, :], values, np.nan), kk, cc, width)
+    return np.where(members[:, None, :], out, np.nan)
+
+
+def _window_count(flags, width):
+    """Number of True ``flags`` (shape (n, nx)) among the ``width`` columns around each column."""
+    nx = flags.shape[1]
+    half = width // 2
+    count = np.concatenate([np.zeros((flags.shape[0], 1), int), np.cumsum(flags, axis=1)], axis=1)
+    idx = np.arange(nx)
+    return count[:, np.minimum(idx + half + 1, nx)] - count[:, np.maximum(idx - half, 0)]
+
+
+def _gathered_median(values, kk, cc, width):
+    """Median over the window of ``width`` columns around column ``cc[i]`` of ``values[kk[i]]``.
+
+    NaN values and columns beyond the frame's edges are left out (the mean
+    of the middle two for an even count).  Returns shape (len(kk), n_rows).
+    """
+    n, n_rows, nx = values.shape
+    half = width // 2
+    padded = np.full((n, n_rows, nx + 2 * half), np.nan)
+    padded[:, :, half:half + nx] = values
+    windows = np.sort(np.lib.stride_tricks.sliding_window_view(padded, width, axis=2)[kk, :, cc], axis=2)
+    count = width - np.count_nonzero(np.isnan(windows), axis=2)  # NaN sort last
+    low = np.take_along_axis(windows, np.maximum(count - 1, 0)[:, :, None] >> 1, axis=2)[:, :, 0]
+    high = np.take_along_axis(windows, (count >> 1)[:, :, None], axis=2)[:, :, 0]
+    return np.where(count > 0, 0.5 * (low + high), np.nan)
+
+
+def _band_models(d, usable, fill, rows_ok, level, read_var, flat, dark_charge, *, width):
+    """Separable model of each read difference inside its band, for the cosmic-ray test.
+
+    Pixels where ``usable`` is False are not used (``fill`` stands in for
+    them); rows where ``rows_ok`` is False are not part of the band.  The
+    inputs are not modified.
+
+    During one read interval the scanned source paints a band whose charge is,
+    above the background ``level``, the product of a row profile and the
+    spectrum, ``d(y, x) - level = a(x) p(y, x)``, with ``p`` varying slowly
+    along the dispersion (trace tilt, profile width).  The model is built in
+    robust steps, none of which assumes that the spectrum is smooth:
+
+    1. ``s(x)``, the sum over the band's rows of each column (above
+       ``level``), normalises the columns: ``q = (d - level) / s``; the
+       median of ``q`` over the spectrum columns (step 3) among the
+       ``width`` columns around each is the profile ``p``.  Sharp spectral
+       features are in ``s`` and divide out; a cosmic ray (or a track of
+       up to ``width // 2`` pixels along a row) is an outlier of ``q`` in
+       its own row, and the low ``q`` of the other pixels of its column is
+       an outlier of theirs, so neither enters ``p``.
+    2. Each column's scale: ``a0(x)``, the median over the core rows
+       (``p`` at least a quarter of its column's peak) of
+       ``(d - level) / p``, then the inverse-variance weighted least-squares
+       scale ``a(x)`` of the pixels within ``_SCALE_CLIP`` sigma of
+       ``a0 p``, so that a cosmic ray or a dead pixel in the column does
+       not pull it.  The model is ``level + a p``.
+    3. Spectrum columns are those where both ``s`` and the sum of ``fill``
+       exceed ``_SPECTRUM_FLOOR`` times the noise of a background column's
+       sum, and so do most columns of the window around them (a cosmic ray
+       off the spectrum does not make one).  The others (e.g. beyond the
+       spectrum's ends) take the profile of the nearest spectrum column,
+       are scaled as in step 2, and the running median along the
+       dispersion of what that leaves is added (the local background).  A
+       difference without any spectrum column is modelled by the running
+       median of ``d`` along the dispersion.
+
+    Running medians cut their windows at the frame's edges (the mean of
+    the middle two for an even count).
+
+    Parameters
+    ----------
+    d : ndarray of shape (n, n_rows, nx)
+        The band's rows of each flat-fielded difference, electrons.
+    usable : ndarray of bool, shape (n, n_rows, nx)
+        True = usable pixel (note: not a bad-pixel mask).
+    fill : ndarray of shape (n, n_rows, nx)
+        A cosmic-ray free stand-in for the differences (their running
+        median along the dispersion), electrons: used for unusable pixels
+        and to find the columns that hold spectrum.
+    rows_ok : ndarray of bool, shape (n, n_rows)
+        True for the rows inside each difference's band.
+    level : ndarray of shape (n,)
+        Background of each difference, electrons per pixel.
+    read_var : ndarray of shape (n, n_rows, nx)
+        Read-noise variance of a difference before the flat, ``2 s**2``, e-**2.
+    flat : ndarray of shape (n, n_rows, nx)
+        Flat field (finite, > 0).
+    dark_charge : ndarray of shape (n, n_rows, nx)
+        Dark charge of each interval (finite), electrons.
+    width : int
+        Columns of the running medians along the dispersion (odd).
+
+    Returns
+    -------
+    model : ndarray of shape (n, n_rows, nx)
+        Expected differences, electrons (meaningless outside the bands).
+    sigma : ndarray of shape (n, n_rows, nx)
+        Their pixel noise, :func:`_pixel_sigma` of ``model``, electrons.
+    """
+    n, n_rows, nx = d.shape
+    inside = rows_ok[:, :, None]
+    ok = usable & inside
+    lev = np.asarray(level, dtype=float)[:, None, None]
+    x = np.where(inside, np.where(ok, d, fill) - lev, 0.0)
+    s = x.sum(axis=1)
+    # noise of a background column's sum: read noise, background and dark charge
+    bg_var = np.where(inside, (read_var + np.maximum(lev * flat + dark_charge, 0.0)) / (flat * flat), 0.0)
+    col_var = np.sort(bg_var.sum(axis=1), axis=1)
+    floor = _SPECTRUM_FLOOR * np.sqrt(0.5 * (col_var[:, (nx - 1) // 2] + col_var[:, nx // 2]))
+    floor = np.maximum(floor, 1e-300)[:, None]
+    # spectrum columns: both the sum and that of the cosmic-ray free stand-in
+    # stand out, in a run of such columns (most of the window's columns)
+    s_fill = np.where(inside, fill - lev, 0.0).sum(axis=1)
+    strong = np.minimum(s, s_fill) > floor
+    strong &= 2 * _window_count(strong, width) > _window_count(np.ones_like(strong), width)
+    p = _window_median(x / np.maximum(s, floor)[:, None, :], strong, width)
+    # columns without spectrum take the profile of the nearest spectrum column
+    cols = np.arange(nx)[None, :]
+    left = np.maximum.accumulate(np.where(strong, cols, -nx), axis=1)
+    right = np.minimum.accumulate(np.where(strong, cols, 2 * nx)[:, ::-1], axis=1)[:, ::-1]
+    near = np.clip(np.where(cols - left <= right - cols, left, right), 0, nx - 1)
+    p = np.take_along_axis(p, np.broadcast_to(near[:, None, :], p.shape), axis=2)
+    p = np.where(inside, np.nan_to_num(p), 0.0)
+    # the scale of each column against its profile
+    core = ok & (p >= 0.25 * p.max(axis=1, keepdims=True)) & (p > 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        a0, _ = masked_median(np.where(core, x / np.where(core, p, 1.0), 0.0), ~core, axis=1)
+    a0 = np.where(np.isfinite(a0), a0, 0.0)[:, None, :]
+    sig0 = _pixel_sigma(a0 * p + lev, read_var, flat, dark_charge)
+    keep = ok & (np.abs(x - a0 * p) <= _SCALE_CLIP * sig0)
+    w = np.where(keep, p / (sig0 * sig0), 0.0)
+    den = np.sum(w * p, axis=1, keepdims=True)
+    fit = den > 0
+    a = np.where(fit, np.sum(w * x, axis=1, keepdims=True) / np.where(fit, den, 1.0), a0)
+    source = a * p
+    # columns without spectrum: add the running median of what the profile leaves
+    kk, cc = np.nonzero(~strong)
+    if kk.size:
+        source[kk, :, cc] += np.nan_to_num(_gathered_median(x - source, kk, cc, width))
+    # differences without any spectrum column: the running median of the difference
+    kk, cc = np.nonzero(~strong.any(axis=1)[:, None] & np.ones((1, nx), bool))
+    if kk.size:
+        source[kk, :, cc] = _gathered_median(x, kk, cc, width)
+    model = source + lev
+    return model, _pixel_sigma(model, read_var, flat, dark_charge)
+
+
 def find_bands(diffs, *, valid=None, band_sigma=5.0, pad_rows=3, filter_width=5, fallback_rows=None):
     """Row band that the source crossed in each difference, found from the data.
 
@@ -172,7 +364,7 @@ def find_bands(diffs, *, valid=None, band_sigma=5.0, pad_rows=3, filter_width=5,
         Inclusive padded band edges.
     found : ndarray of bool, shape (n_diff,)
     filtered : ndarray of shape (n_diff, ny, nx)
-        The median-filtered differences (the cosmic-ray model).
+        The median-filtered differences.
     """
     d = np.asarray(diffs, dtype=float)
     if d.ndim != 3:
@@ -219,7 +411,7 @@ def find_bands(diffs, *, valid=None, band_sigma=5.0, pad_rows=3, filter_width=5,
 
 def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, flat=None,
              bad=None, band_sigma=5.0, pad_rows=3, filter_width=5, cr_threshold=6.0,
-             background="rowcol", clip_sigma=3.0, smooth_columns=9, destripe="off",
+             cr_width=9, background="rowcol", clip_sigma=3.0, smooth_columns=9, destripe="off",
              source_columns=None, fallback_rows=None):
     """Flux of a spatially scanned exposure from band-masked read differences.
 
@@ -245,11 +437,16 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
         by it.
     bad : array_like of bool, shape (ny, nx), optional
     band_sigma, pad_rows, filter_width, fallback_rows
-        Band finding, see :func:`find_bands`.
+        Band finding, see :func:`find_bands` (its filtered differences also
+        stand in for unusable pixels in the band model).
     cr_threshold : float
-        A pixel inside the band more than this many sigma above the
-        median-filtered difference is a cosmic ray and is replaced by the
-        filtered value.
+        A usable pixel inside the band more than this many sigma (its own
+        noise, from the model) above the band's separable model is a cosmic
+        ray and is replaced by the model (see Notes).
+    cr_width : int
+        Columns (odd) of the running medians along the dispersion in the
+        band model: tracks of up to ``cr_width // 2`` pixels along a row
+        stay out of the band's profile.
     background : {"rowcol", "constant", "none"}
         Background of each difference from its out-of-band pixels: a
         smoothed per-column clipped mean ("rowcol", see
@@ -276,6 +473,19 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
 
     Notes
     -----
+    Cosmic rays.  Inside its band each difference is modelled as
+    ``m(y, x) = L + a(x) p(y, x)`` (:func:`_band_models`): ``L`` is the
+    median of the row means of the difference's out-of-band rows, ``a(x)``
+    the column's scale (which carries the spectrum, with its sharp lines)
+    and ``p(y, x)`` the band's row profile, a running median along the
+    dispersion of the columns normalised by their sums.  A pixel is a hit
+    where ``d - m > cr_threshold sqrt(2 s**2 + max(m f + D dt, 0)) / f`` (``s``
+    the read noise, ``f`` the flat, ``D dt`` the dark charge), and is
+    replaced by ``m``.  The spectrum enters only through ``a(x)``, fitted to
+    the column itself, so sharp lines and the peaks between them are
+    predicted; a running median of the difference along the dispersion
+    would undercut those peaks and take them for hits.
+
     For pixel ``p`` the flux is ``F = sum_k b_k (d_k - D dt_k) / f - B_k``
     with ``b_k`` = 1 inside difference ``k``'s band, ``D`` the dark rate,
     ``f`` the flat and ``B_k`` the background estimate.  Variance:
@@ -284,8 +494,8 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
       consecutive in-band differences to ``r_end - r_start``, so each run
       contributes ``2 s**2``: ``var_read = 2 s**2 n_runs / f**2``;
     * Poisson: the charge of the included intervals,
-      ``sum_k b_k max(m_k f + D dt_k, 0) / f**2`` with ``m_k`` the
-      median-filtered (cosmic-ray free) difference;
+      ``sum_k b_k max(m_k f + D dt_k, 0) / f**2`` with ``m_k`` the band
+      model (cosmic-ray free) of difference ``k``;
     * background: ``sum_k b_k var(B_k)``.
 
     Pixels outside every band have flux 0 and are given the variance of one
@@ -299,6 +509,14 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
         raise ParameterError(f"background must be one of {SCAN_BACKGROUNDS}; got {background!r}")
     if destripe not in SCAN_DESTRIPE:
         raise ParameterError(f"destripe must be one of {SCAN_DESTRIPE}; got {destripe!r}")
+    try:
+        width_ok = (not isinstance(cr_width, bool) and float(cr_width).is_integer()
+                    and cr_width >= 1 and int(cr_width) % 2 == 1)
+    except (TypeError, ValueError):
+        width_ok = False
+    if not width_ok:
+        raise ParameterError(f"cr_width must be an odd integer >= 1 column; got {cr_width!r}")
+    cr_width = int(cr_width)
     r = np.asarray(reads, dtype=float)
     if r.ndim != 3 or r.shape[0] < 2:
         raise ParameterError(f"reads must have shape (n_reads >= 2, ny, nx); got {r.shape}")
@@ -351,6 +569,19 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
         ds = _destripe(d, smask, axes=destripe, mask=~usable)
         d = np.where(valid, ds.frames, 0.0)
         filt = filt - ds.row_offsets[:, :, None] - ds.column_offsets[:, None, :]
+    # the band model of every difference at once, on the band's rows; its
+    # background level is the median of the out-of-band rows' means of the
+    # filtered difference (0 without any)
+    level, _ = masked_median(filt.mean(axis=2), in_band_rows, axis=1)
+    level = np.nan_to_num(level)
+    dark_ok = np.where(np.isfinite(dark), dark, 0.0)
+    height = int(np.max(hi - lo)) + 1
+    brow = np.minimum(lo[:, None] + np.arange(height)[None, :], ny - 1)  # (n_diff, height)
+    kidx = np.arange(n_diff)[:, None]
+    dark_b = dark_ok[brow] * dt[:, None, None]
+    model_b, sigma_b = _band_models(d[kidx, brow], usable[kidx, brow], filt[kidx, brow],
+                                    brow <= hi[:, None], level, 2.0 * s2[brow], fl_safe[brow], dark_b,
+                                    width=cr_width)
 
     # One difference at a time; the band of difference k is the run of rows
     # lo[k] .. hi[k], so the per-pixel work is done on those rows only.
@@ -367,13 +598,13 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
     prev = np.zeros((ny, nx), bool)
     for k in range(n_diff):
         band = slice(int(lo[k]), int(hi[k]) + 1)
-        dk, fk, fl_k = d[k, band], filt[k, band], fl_safe[band]
-        # cosmic rays inside the band, against the median-filtered difference
-        charge = np.maximum(fk * fl_k + dark[band] * dt[k], 0.0)
-        sigma = np.sqrt(2.0 * s2[band] + charge) / fl_k
-        with np.errstate(invalid="ignore", divide="ignore"):
-            hit = usable[k, band] & ((dk - fk) > cr_threshold * sigma)
-        np.copyto(dk, fk, where=hit)  # d is this function's own array
+        dk, fl_k = d[k, band], fl_safe[band]
+        # cosmic rays inside the band, against the band's separable model
+        nb = int(hi[k] - lo[k]) + 1
+        model, sigma = model_b[k, :nb], sigma_b[k, :nb]
+        charge = np.maximum(model * fl_k + dark_b[k, :nb], 0.0)
+        hit = usable[k, band] & ((dk - model) > cr_threshold * sigma)
+        np.copyto(dk, model, where=hit)  # d is this function's own array
         n_cosmic[k] = np.count_nonzero(hit)
         hit_any[band] |= hit
 

@@ -110,12 +110,6 @@ def test_wavelength_zero_point(scan_visit, science):
         f"wavelength grid off the truth by up to {np.max(np.abs(offset_px)):.4f} px")
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "pipeline/scans.py sum_scan: the cosmic-ray test compares each in-band pixel with a "
-    "5-column median filter along the dispersion, which undercuts real spectral peaks "
-    "(columns 137-138, between the 1.5885 and 1.6114 um lines): ~20 pixels per column "
-    "flagged JUMP and clipped, flux low by 1.6% and 0.8%; channels 8 and 9 biased by "
-    "-1470 and -740 ppm (mean pulls -4.8 and -2.3)"))
 def test_channel_flux_matches_truth(scan_visit, science):
     # Horne 1986: the optimal extraction's variance is the estimator's variance,
     # so (extracted - truth) / sigma has unit scatter and zero mean when the
@@ -253,13 +247,7 @@ def test_independent_fit_recovers_injected_depth(scan_visit, science, independen
         f"reduced chi2 {chi2:.2f}")
 
 
-_CR_CLIP = pytest.mark.xfail(strict=True, reason=(
-    "excess scatter from the cosmic-ray clipping of real spectral peaks in pipeline/scans.py "
-    "sum_scan (see test_channel_flux_matches_truth): reduced chi2 3.9 (channel 8), 2.02 (channel 9)"))
-
-
-@pytest.mark.parametrize("which", ["white"] + [pytest.param(j, marks=_CR_CLIP) if j in (8, 9) else j
-                                               for j in range(10)])
+@pytest.mark.parametrize("which", ["white"] + list(range(10)))
 def test_independent_fit_is_noise_limited(independent_depths, which):
     # The reducer's errors follow the ideal optimal-extraction noise of the
     # truth (truth.py white_sigma, channel_sigma; Horne 1986), so residuals of
