@@ -19,6 +19,13 @@ of the out-of-eclipse flux hidden in full eclipse, :math:`f_p/(1 + f_p)` with
 :math:`f_p` the planet-to-star flux ratio (invert with
 :math:`f_p = \\delta/(1 - \\delta)`).
 
+For an eclipse observed with its phase curve the planet's own flux
+:math:`F_p(t) = c_0 + c_1 \\cos 2\\pi\\phi + c_2 \\sin 2\\pi\\phi` can instead
+be hidden by the eclipse, :math:`f_i = S_{*i} (1 + F_p(t_i)(1 - s_i))`, with
+:math:`S_*` the star's flux times the systematics; the depth is then
+:math:`F_p/(1 + F_p)` at mid-eclipse (``tie_phase_curve`` of
+:func:`detrend_light_curve`, ``planet_basis`` of :func:`fit_event`).
+
 The fit is weighted least squares on the flux itself, not on its logarithm:
 for fixed :math:`\\delta` the model is linear in :math:`a`, and the joint
 problem is bilinear, solved by Gauss-Newton iterations from the linearised
@@ -26,7 +33,10 @@ solution until the step is below 1e-13 of the parameters.  A noise-free
 series built from the model is therefore recovered to rounding.  The only
 nonlinear systematic is the ramp time scale :math:`\\tau` of
 :math:`\\exp(-t_{orb}/\\tau)`, chosen on a grid by :math:`\\chi^2` and
-optionally refined by a bounded one-dimensional minimisation.
+optionally refined by a bounded one-dimensional minimisation; its
+uncertainty is carried into the covariance to first order.  Covariances are
+computed from the singular value decomposition of the weighted,
+column-normalised Jacobian, never by inverting the normal matrix.
 
 Times are days; the template and basis columns are dimensionless.
 """
@@ -266,7 +276,9 @@ class DetrendResult:
     Attributes
     ----------
     depth : float
-        Event depth :math:`\\delta` (dimensionless; see the module notes).
+        Event depth :math:`\\delta` (dimensionless; see the module notes); with
+        the planet's flux fitted (``planet_basis``), :math:`F_p/(1 + F_p)` at
+        mid-eclipse.
     depth_error : float
         Standard error of ``depth``, multiplied by ``error_scale``.
     depth_error_unscaled : float
@@ -276,21 +288,28 @@ class DetrendResult:
     reduced_chi2 : float
         ``chi2 / (n_points - n_params)``.
     systematics : ndarray of float, shape (n_exposures,)
-        :math:`S`, the systematics model in flux units (includes :math:`F_0`).
+        :math:`S`, the systematics model in flux units (includes :math:`F_0`):
+        the model's out-of-event flux (with the planet's flux,
+        :math:`S_* (1 + F_p)`).
     model : ndarray of float, shape (n_exposures,)
-        :math:`S (1 - \\delta s)`.
+        :math:`S (1 - \\delta s)` (with the planet's flux,
+        :math:`S_* (1 + F_p (1 - s))`).
     detrended_flux : ndarray of float, shape (n_exposures,)
         ``flux / systematics`` (1 out of the event).
     detrended_error : ndarray of float, shape (n_exposures,)
         ``sqrt(variance) / systematics``.
     residuals : ndarray of float, shape (n_exposures,)
-        ``detrended_flux - (1 - depth * template)``, relative units.
+        ``detrended_flux - model / systematics`` (``1 - depth * template``
+        without the planet's flux), relative units.
     coefficients : ndarray of float, shape (n_columns,)
-        :math:`a_k` of the basis columns (the first is :math:`F_0`); 0 for a
-        column that is zero on every fitted exposure.
+        :math:`a_k` of the basis columns (the first is :math:`F_0`, or the
+        star's flux :math:`F_*` with the planet's flux), followed by the
+        planet's :math:`c_j` when fitted; 0 for a column that is zero on every
+        fitted exposure.
     coefficient_names : tuple of str
     covariance : ndarray of float, shape (n_columns + 1, n_columns + 1)
-        Unscaled covariance of (coefficients, depth); rows and columns of
+        Unscaled covariance of (coefficients, depth), marginalised over any
+        nonlinear parameter whose derivatives were given; rows and columns of
         dropped columns are 0.
     chi2 : float
         Weighted sum of squared residuals over the fitted exposures.
@@ -333,11 +352,29 @@ class DetrendResult:
 
 
 def _wls(A, y, w):
-    """Weighted linear least squares; returns (coefficients, covariance)."""
+    """Weighted linear least squares; returns (coefficients, covariance).
+
+    The columns of the weighted design matrix are scaled to unit norm and
+    the problem is solved by its singular value decomposition, never by the
+    normal equations: for a basis mixing a flux-sized constant with nearly
+    degenerate low-order columns (a short visit's phase sinusoids against its
+    polynomial and the eclipse) the normal matrix has a condition number
+    beyond 1e19, and a pseudo-inverse of it silently drops exactly the
+    poorly constrained directions, whose variance is the one that matters.
+    Singular values below ``max(shape) * eps`` of the largest (the rank
+    convention of numpy's ``lstsq``) are treated as exactly degenerate
+    directions and left out (minimum-norm solution in the scaled
+    coordinates).
+    """
     sw = np.sqrt(w)
     Aw = A * sw[:, None]
-    coef, *_ = np.linalg.lstsq(Aw, y * sw, rcond=None)
-    cov = np.linalg.pinv(Aw.T @ Aw)
+    norm = np.sqrt(np.sum(Aw * Aw, axis=0))
+    norm = np.where(norm > 0, norm, 1.0)
+    U, sv, Vt = np.linalg.svd(Aw / norm, full_matrices=False)
+    keep = sv > max(Aw.shape) * np.finfo(float).eps * (sv[0] if sv.size else 0.0)
+    inv = np.where(keep, 1.0 / np.where(keep, sv, 1.0), 0.0)
+    coef = (Vt.T @ (inv * (U.T @ (y * sw)))) / norm
+    cov = ((Vt.T * inv ** 2) @ Vt) / np.outer(norm, norm)
     return coef, cov
 
 
@@ -356,8 +393,54 @@ def _prepare(flux, variance, template, mask, n=None):
     return f, v, s, bad
 
 
+def _gauss_newton(fu, wu, Bu, Qu, Du, max_iter):
+    """Weighted fit of ``f = (B a)(1 + Q c)``; returns (a, c, covariance of (a, c)).
+
+    Starts from the linearised solution ``f ~ B a + Q c'`` with
+    ``c' ~ S c`` and iterates Gauss-Newton steps with step halving.  The
+    covariance is marginalised over the nonlinear parameters whose basis
+    derivatives are ``Du`` (shape (n_nonlinear, n_fit, n_basis)).
+    """
+    k, m = Bu.shape[1], Qu.shape[1]
+    p_lin, _ = _wls(np.concatenate([Bu, Qu], axis=1), fu, wu)
+    a = p_lin[:k]
+    S_u = Bu @ a
+    wq = wu[:, None] * Qu * Qu
+    num, den = np.sum(wq * S_u[:, None], axis=0), np.sum(wq, axis=0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        scale = np.where(den > 0, num / den, 0.0)
+        c = np.where(scale != 0, p_lin[k:] / scale, 0.0)
+    for _ in range(int(max_iter)):
+        S_u = Bu @ a
+        E_u = 1.0 + Qu @ c
+        r = fu - S_u * E_u
+        J = np.concatenate([Bu * E_u[:, None], S_u[:, None] * Qu], axis=1)
+        step, _ = _wls(J, r, wu)
+        # Step halving guards against an overshoot far from the minimum.
+        lam = 1.0
+        chi_now = np.sum(wu * r * r)
+        for _h in range(30):
+            a_try, c_try = a + lam * step[:k], c + lam * step[k:]
+            r_try = fu - (Bu @ a_try) * (1.0 + Qu @ c_try)
+            if np.sum(wu * r_try * r_try) <= chi_now * (1 + 1e-15) + 1e-300:
+                break
+            lam *= 0.5
+        a, c = a_try, c_try
+        size = np.max(np.abs(lam * step) / np.maximum(np.abs(np.append(a, c)), 1e-300))
+        if size < 1e-13 or np.max(np.abs(lam * step[k:])) < 1e-15:
+            break
+    S_u = Bu @ a
+    E_u = 1.0 + Qu @ c
+    G = (Du @ a).T * E_u[:, None]          # d f / d theta_j
+    J = np.concatenate([Bu * E_u[:, None], S_u[:, None] * Qu, G], axis=1)
+    _, cov = _wls(J, np.zeros(fu.size), wu)
+    return a, c, cov[:k + m, :k + m]
+
+
 def fit_event(flux, variance, template, basis=None, *, mask=None, mode="joint",
-              basis_names=None, out_of_event_threshold=0.0, max_iter=50):
+              basis_names=None, out_of_event_threshold=0.0, max_iter=50,
+              basis_derivatives=None, planet_basis=None, planet_at_event=None,
+              planet_names=None):
     """Fit systematics (a linear basis) and an event depth to one light curve.
 
     ``mask`` is True where an exposure is bad; those and exposures with
@@ -388,10 +471,31 @@ def fit_event(flux, variance, template, basis=None, *, mask=None, mode="joint",
         Template value at or below which an exposure is out of the event.
     max_iter : int, optional
         Gauss-Newton iterations at most (default 50).
+    basis_derivatives : array_like of float, shape (n_nonlinear, n_exposures, n_basis), optional
+        Derivatives :math:`\\partial B/\\partial\\theta_j` of the basis columns
+        with respect to nonlinear parameters :math:`\\theta` held fixed in this
+        fit (e.g. the logarithm of a ramp time scale).  Their uncertainty is
+        then propagated into ``covariance`` and ``depth_error`` (see Notes);
+        the fit itself is unchanged and ``n_params`` does not count them.
+    planet_basis : array_like of float, shape (n_exposures, n_planet), optional
+        Eclipses only ("joint" mode): columns :math:`P` of the planet's own
+        flux relative to the star, :math:`F_p = P c` (e.g. a constant and the
+        sinusoids of :func:`phase_curve_basis`), which the eclipse hides.
+        The model becomes :math:`f = S_* (1 + F_p (1 - s))` with :math:`S_*
+        = B a` the star's flux times the systematics (see Notes).
+    planet_at_event : array_like of float, shape (n_planet,), optional
+        The planet columns at mid-eclipse; required with ``planet_basis``.
+        The depth is then :math:`F_p/(1 + F_p)` there.
+    planet_names : sequence of str, optional
+        Names of the planet columns (default "planet0", "planet1", ...).
 
     Returns
     -------
     DetrendResult
+        With ``planet_basis`` the coefficients are those of the basis columns
+        followed by :math:`c`, ``systematics`` is the out-of-eclipse flux
+        :math:`S_* (1 + F_p)` and ``residuals`` are ``detrended_flux -
+        model / systematics``.
 
     Notes
     -----
@@ -411,6 +515,38 @@ def fit_event(flux, variance, template, basis=None, *, mask=None, mode="joint",
     \\sum w'_i s_i f_i B_{ik}/S_i^2 \\, / \\sum w'_i s_i^2` (first order).  When the reduced
     :math:`\\chi^2` exceeds 1 the depth error is multiplied by its square root
     (``depth_error``); ``depth_error_unscaled`` keeps the bare value.
+
+    Eclipse with the planet's flux (``planet_basis``): the star plus planet
+    give :math:`f = S_* (1 + F_p v)` with :math:`v = 1 - s` the planet's
+    visible fraction, so that in full eclipse the planet's flux *at that
+    phase* disappears (common practice for eclipses with phase curves).  The
+    model is bilinear in :math:`a` and :math:`c` and solved by the same
+    Gauss-Newton iterations, with the Jacobian columns
+    :math:`B_{ik}(1 + F_{p,i} v_i)` and :math:`S_{*i} P_{ij} v_i`.  The
+    depth :math:`\\delta = F_m/(1 + F_m)`, :math:`F_m = P_m c` at mid-eclipse,
+    is the fraction of the out-of-eclipse flux hidden there, as without
+    ``planet_basis``; its variance is :math:`h^T C_c h` with
+    :math:`h = P_m/(1 + F_m)^2` (first order) and :math:`C_c` the block of
+    :math:`c` in the covariance.  Multiplying :math:`S_*` by independent
+    phase sinusoids instead, :math:`S (1 - \\delta s)`, makes the fitted
+    :math:`\\delta` an average of :math:`F_p/(1+F_p)` over the eclipse
+    rather than its value at mid-eclipse.
+
+    Nonlinear parameters held fixed (``basis_derivatives``) add the Jacobian
+    columns :math:`\\partial f/\\partial\\theta_j = (D_j a)(1 - \\delta s)`
+    (:math:`(D_j a)(1 + F_p v)` with the planet's flux),
+    :math:`D_j = \\partial B/\\partial\\theta_j`; the covariance of the
+    linear parameters returned is the corresponding block of the inverse of
+    the enlarged information matrix, i.e. marginalised over :math:`\\theta`
+    to first order (in "out_of_event" mode the columns :math:`D_j a` join the
+    out-of-event fit's design matrix and :math:`g`).  Without them a
+    time scale chosen from a grid by :math:`\\chi^2` would be treated as
+    exactly known.
+
+    All covariances come from the singular value decomposition of the
+    weighted, column-normalised Jacobian (never from inverting the normal
+    matrix, whose condition number for a phase curve fitted to a short
+    visit exceeds 1e19, beyond double precision).
 
     Cost: O(max_iter * n_exposures * n_basis^2) time, O(n_exposures * n_basis)
     memory.
@@ -438,6 +574,32 @@ def fit_event(flux, variance, template, basis=None, *, mask=None, mode="joint",
             raise ParameterError(f"basis_names must name the {B_extra.shape[1]} basis columns")
     if mode not in ("joint", "out_of_event"):
         raise ParameterError(f"mode must be 'joint' or 'out_of_event'; got {mode!r}")
+    tied = planet_basis is not None
+    if tied:
+        P_all = np.asarray(planet_basis, dtype=float)
+        if P_all.ndim == 1:
+            P_all = P_all[:, None]
+        if P_all.ndim != 2 or P_all.shape[0] != n or P_all.shape[1] < 1:
+            raise ParameterError(f"planet_basis must have shape ({n}, n_planet >= 1); "
+                                 f"got {P_all.shape}")
+        if planet_at_event is None:
+            raise ParameterError("planet_at_event (the planet columns at mid-eclipse) is needed "
+                                 "with planet_basis")
+        p_mid_all = _vector(planet_at_event, "planet_at_event", P_all.shape[1])
+        if not np.all(np.isfinite(p_mid_all)):
+            raise ParameterError("planet_at_event must be finite")
+        if mode != "joint":
+            raise ParameterError("planet_basis needs mode='joint' (out of the eclipse the star's "
+                                 "and the planet's constant cannot be told apart)")
+        if planet_names is None:
+            pnames = tuple(f"planet{j}" for j in range(P_all.shape[1]))
+        else:
+            pnames = tuple(str(x) for x in planet_names)
+            if len(pnames) != P_all.shape[1]:
+                raise ParameterError(f"planet_names must name the {P_all.shape[1]} planet columns")
+        bad = bad | ~np.all(np.isfinite(P_all), axis=1)
+    else:
+        P_all, pnames = np.zeros((n, 0)), ()
     bad = bad | ~np.all(np.isfinite(B_extra), axis=1)
     use = ~bad
     if not np.any(use):
@@ -452,40 +614,31 @@ def fit_event(flux, variance, template, basis=None, *, mask=None, mode="joint",
     n_fit = int(use.sum())
     if not np.any(su != 0):
         raise ParameterError("template is 0 on every fitted exposure: there is no event to fit")
-    if n_fit <= k + 1:
-        raise ParameterError(f"need more fitted exposures ({n_fit}) than parameters ({k + 1}); "
+    if basis_derivatives is None:
+        Du = np.zeros((0, n_fit, k))
+    else:
+        D = np.asarray(basis_derivatives, dtype=float)
+        if D.ndim == 2:
+            D = D[None]
+        if D.ndim != 3 or D.shape[1:] != B_extra.shape:
+            raise ParameterError(f"basis_derivatives must have shape (n_nonlinear, {n}, "
+                                 f"{B_extra.shape[1]}); got {D.shape}")
+        D = np.concatenate([np.zeros((D.shape[0], n, 1)), D], axis=2)[:, :, active]
+        Du = np.where(np.isfinite(D), D, 0.0)[:, use, :]
+    if tied:
+        p_active = np.any(P_all[use] != 0, axis=0)
+        P, p_mid = P_all[:, p_active], p_mid_all[p_active]
+        Q = P * (1.0 - s)[:, None]
+    else:
+        p_active = np.zeros(0, dtype=bool)
+        Q = -s[:, None]
+    m = Q.shape[1]
+    if n_fit <= k + m:
+        raise ParameterError(f"need more fitted exposures ({n_fit}) than parameters ({k + m}); "
                              "use a smaller basis or mask fewer exposures")
 
     if mode == "joint":
-        # Linearised start: f ~ B a - c s, with c ~ delta * F0.
-        p_lin, _ = _wls(np.concatenate([Bu, -su[:, None]], axis=1), fu, wu)
-        a = p_lin[:k]
-        S_u = Bu @ a
-        scale = np.sum(wu * su * S_u * su) / np.sum(wu * su * su)
-        delta = p_lin[k] / scale if scale != 0 else 0.0
-        for _ in range(int(max_iter)):
-            S_u = Bu @ a
-            r = fu - S_u * (1.0 - delta * su)
-            J = np.concatenate([Bu * (1.0 - delta * su)[:, None], (-S_u * su)[:, None]], axis=1)
-            step, _ = _wls(J, r, wu)
-            # Step halving guards against an overshoot far from the minimum.
-            lam = 1.0
-            chi_now = np.sum(wu * r * r)
-            for _h in range(30):
-                a_try, d_try = a + lam * step[:k], delta + lam * step[k]
-                r_try = fu - (Bu @ a_try) * (1.0 - d_try * su)
-                if np.sum(wu * r_try * r_try) <= chi_now * (1 + 1e-15) + 1e-300:
-                    break
-                lam *= 0.5
-            a, delta = a_try, d_try
-            size = np.max(np.abs(lam * step) / np.maximum(np.abs(np.append(a, delta)), 1e-300))
-            if size < 1e-13 or abs(lam * step[k]) < 1e-15:
-                break
-        S_u = Bu @ a
-        J = np.concatenate([Bu * (1.0 - delta * su)[:, None], (-S_u * su)[:, None]], axis=1)
-        Jw = J * np.sqrt(wu)[:, None]
-        cov = np.linalg.pinv(Jw.T @ Jw)
-        var_depth = cov[k, k]
+        a, c, cov_ac = _gauss_newton(fu, wu, Bu, Q[use], Du, max_iter)
     else:
         out = su <= out_of_event_threshold
         if np.count_nonzero(out) <= k:
@@ -496,43 +649,70 @@ def fit_event(flux, variance, template, basis=None, *, mask=None, mode="joint",
             which = [str(nm) for nm, keep in zip(np.array(names)[active], unconstrained) if keep]
             raise ParameterError(f"basis columns {which} are zero on every out-of-event exposure "
                                  "and cannot be fitted there; use mode='joint'")
-        a, cov_a = _wls(Bu[out], fu[out], wu[out])
+        a, _ = _wls(Bu[out], fu[out], wu[out])
         S_u = Bu @ a
         d = fu / S_u
         wd = wu * S_u * S_u
         denom = np.sum(wd * su * su)
         delta = np.sum(wd * su * (1.0 - d)) / denom
-        # d(delta)/d(a_k) with the weights held fixed; the two stages use disjoint
-        # exposures (s = 0 against s > 0), so their errors are independent.
-        grad = (wd * su * fu / (S_u * S_u)) @ Bu / denom
-        var_depth = 1.0 / denom + grad @ cov_a @ grad
-        cov = np.zeros((k + 1, k + 1))
-        cov[:k, :k] = cov_a
-        cov[:k, k] = cov[k, :k] = cov_a @ grad
-        cov[k, k] = var_depth
+        # Covariance of (a, theta) from the out-of-event fit; d(delta)/d(a_k) and
+        # d(delta)/d(theta_j) with the weights held fixed.  The two stages use
+        # disjoint exposures (s = 0 against s > 0), so their errors are independent.
+        A_out = np.concatenate([Bu, (Du @ a).T], axis=1)
+        _, cov_at = _wls(A_out[out], np.zeros(np.count_nonzero(out)), wu[out])
+        grad_all = (wd * su * fu / (S_u * S_u)) @ A_out / denom
+        var_d = 1.0 / denom + grad_all @ cov_at @ grad_all
+        cov_ac = np.zeros((k + 1, k + 1))
+        cov_ac[:k, :k] = cov_at[:k, :k]
+        cov_ac[:k, k] = cov_ac[k, :k] = cov_at[:k] @ grad_all
+        cov_ac[k, k] = var_d
+        c = np.array([delta])
 
-    S = B @ a
-    model = S * (1.0 - delta * s)
+    S = B @ a                      # S (no planet term) or S_* (with the planet's flux)
+    event = 1.0 + Q @ c            # model / S
+    model = S * event
+    if tied:
+        systematics = S * (1.0 + P @ c)
+        f_mid = float(p_mid @ c)
+        delta = f_mid / (1.0 + f_mid)
+        h = np.zeros(k + m)
+        h[k:] = p_mid / (1.0 + f_mid) ** 2
+        cov = np.zeros((k + m + 1,) * 2)
+        cov[:k + m, :k + m] = cov_ac
+        cov[:k + m, -1] = cov[-1, :k + m] = cov_ac @ h
+        cov[-1, -1] = var_depth = float(h @ cov_ac @ h)
+    else:
+        systematics = S
+        delta = float(c[0])
+        cov, var_depth = cov_ac, cov_ac[k, k]
     resid_u = fu - model[use]
     chi2 = float(np.sum(wu * resid_u * resid_u))
-    n_params = k + 1
+    n_params = k + m
     dof = n_fit - n_params
     red = chi2 / dof
     err = float(np.sqrt(var_depth))
     scale_err = float(np.sqrt(red)) if red > 1 else 1.0
-    coef = np.zeros(B_all.shape[1])
-    coef[active] = a
-    full_cov = np.zeros((B_all.shape[1] + 1,) * 2)
-    idx = np.append(np.flatnonzero(active), B_all.shape[1])
+    nb = B_all.shape[1]
+    n_coef = nb + P_all.shape[1]
+    coef = np.zeros(n_coef)
+    idx = np.flatnonzero(active)
+    if tied:
+        idx = np.append(idx, nb + np.flatnonzero(p_active))
+        coef[idx] = np.append(a, c)
+    else:
+        coef[idx] = a
+    full_cov = np.zeros((n_coef + 1,) * 2)
+    idx = np.append(idx, n_coef)
     full_cov[np.ix_(idx, idx)] = cov
     with np.errstate(divide="ignore", invalid="ignore"):
-        detr = f / S
-        detr_err = np.sqrt(v) / np.abs(S)
+        detr = f / systematics
+        detr_err = np.sqrt(v) / np.abs(systematics)
+        rel_model = model / systematics if tied else event
     return DetrendResult(
         depth=float(delta), depth_error=err * scale_err, depth_error_unscaled=err,
-        error_scale=scale_err, reduced_chi2=float(red), systematics=S, model=model,
-        detrended_flux=detr, detrended_error=detr_err, residuals=detr - (1.0 - delta * s),
-        coefficients=coef, coefficient_names=names, covariance=full_cov, chi2=chi2,
+        error_scale=scale_err, reduced_chi2=float(red), systematics=systematics, model=model,
+        detrended_flux=detr, detrended_error=detr_err, residuals=detr - rel_model,
+        coefficients=coef, coefficient_names=names + pnames, covariance=full_cov, chi2=chi2,
         bic=float(chi2 + n_params * np.log(n_fit)), n_params=int(n_params),
         n_points=n_fit, fit_mask=bad, tau=float("nan"), mode=mode)
 
@@ -553,7 +733,8 @@ def _with_tau(result, tau, extra_params):
 def detrend_light_curve(time, flux, variance, template, *, orbit=None, orbit_time=None,
                         scan_direction=None, mask=None, visit_order=1, orbit_order=0,
                         ramp=False, tau_grid=None, fit_tau=False, phase_curve=None,
-                        drop_first_orbit=False, mode="joint", out_of_event_threshold=0.0):
+                        tie_phase_curve=False, drop_first_orbit=False, mode="joint",
+                        out_of_event_threshold=0.0):
     """Detrend one light curve with a systematics model built from covariates.
 
     ``mask`` is True where an exposure is bad; see :func:`fit_event` for the
@@ -588,7 +769,16 @@ def detrend_light_curve(time, flux, variance, template, *, orbit=None, orbit_tim
         Refine tau by a bounded minimisation of chi-square between the grid
         neighbours of the best grid value.
     phase_curve : (float, float), optional
-        ``(t0, period)`` in days: add first-harmonic phase sinusoids.
+        ``(t0, period)`` in days (``t0`` the mid-transit time): add
+        first-harmonic phase sinusoids, as systematics columns ("cos1",
+        "sin1") unless ``tie_phase_curve``.
+    tie_phase_curve : bool, optional
+        Eclipses, with ``phase_curve`` and ``mode="joint"``: describe the
+        planet's flux as ``F_p = c0 + c1 cos + c2 sin`` of the orbital phase
+        and hide it with the eclipse, ``S_* (1 + F_p (1 - s))`` (``planet_basis``
+        of :func:`fit_event`, columns "planet", "planet_cos1",
+        "planet_sin1"); the depth is ``F_p/(1 + F_p)`` at mid-eclipse,
+        ``t0 + period/2`` (circular orbit).  Default False.
     drop_first_orbit : bool, optional
         Leave orbit 0 out of the fit (its ramp is usually the strongest;
         common practice).
@@ -601,13 +791,21 @@ def detrend_light_curve(time, flux, variance, template, *, orbit=None, orbit_tim
     -------
     DetrendResult
         ``coefficient_names`` name the columns ("visit^1", "orbit^1",
-        "ramp[o]", "scan", "cos1", "sin1"); ``n_params`` counts tau as one
+        "ramp[o]", "scan", "cos1", "sin1", or "planet", "planet_cos1",
+        "planet_sin1" last when tied); ``n_params`` counts tau as one
         parameter when a ramp is used.
 
     Notes
     -----
+    When tau is chosen from the data (a grid of more than one value, or
+    ``fit_tau``), the fit at the chosen tau is repeated with the derivative
+    of the ramp columns with respect to :math:`\\ln\\tau`,
+    :math:`(t/\\tau) e^{-t/\\tau}`, so that the covariance and the depth
+    error are marginalised over tau (``basis_derivatives`` of
+    :func:`fit_event`; first order).
+
     Cost: one :func:`fit_event` per grid value of tau (plus about 20 when
-    ``fit_tau``).
+    ``fit_tau``, and one to propagate tau).
     """
     t = _vector(time, "time")
     n = t.size
@@ -635,7 +833,19 @@ def detrend_light_curve(time, flux, variance, template, *, orbit=None, orbit_tim
             pc_t0, pc_period = (float(x) for x in phase_curve)
         except (TypeError, ValueError):
             raise ParameterError("phase_curve must be (t0, period) in days") from None
-        add(phase_curve_basis(t, pc_t0, pc_period), lambda j: ("cos1", "sin1")[j])
+        pc = phase_curve_basis(t, pc_t0, pc_period)
+        if not tie_phase_curve:
+            add(pc, lambda j: ("cos1", "sin1")[j])
+    planet = {}
+    if tie_phase_curve:
+        if phase_curve is None:
+            raise ParameterError("tie_phase_curve=True needs phase_curve=(t0, period)")
+        if mode != "joint":
+            raise ParameterError(f"tie_phase_curve=True needs mode='joint'; got {mode!r}")
+        mid = phase_curve_basis(np.array([pc_t0 + 0.5 * pc_period]), pc_t0, pc_period)[0]
+        planet = dict(planet_basis=np.concatenate([np.ones((n, 1)), pc], axis=1),
+                      planet_at_event=np.append(1.0, mid),
+                      planet_names=("planet", "planet_cos1", "planet_sin1"))
     fit_mask = base_mask.copy()
     if ramp or drop_first_orbit:
         if orbit is None:
@@ -647,16 +857,22 @@ def detrend_light_curve(time, flux, variance, template, *, orbit=None, orbit_tim
             fit_mask |= orb == np.min(orb)
     fixed = np.stack(cols, axis=1) if cols else np.zeros((n, 0))
 
-    def run(tau):
+    def run(tau, propagate=False):
         if tau is None:
             return fit_event(flux, variance, template, fixed, mask=fit_mask, mode=mode,
-                             basis_names=names, out_of_event_threshold=out_of_event_threshold)
+                             basis_names=names, out_of_event_threshold=out_of_event_threshold,
+                             **planet)
         rb = ramp_basis(ot, orb, tau)
         labels = np.unique(orb)
+        deriv = None
+        if propagate:
+            # d/d(ln tau) of exp(-t/tau) is (t/tau) exp(-t/tau); other columns do not move.
+            deriv = np.concatenate([np.zeros_like(fixed), rb * (ot / tau)[:, None]], axis=1)[None]
         return fit_event(flux, variance, template, np.concatenate([fixed, rb], axis=1),
                          mask=fit_mask, mode=mode,
                          basis_names=names + [f"ramp[{o}]" for o in labels],
-                         out_of_event_threshold=out_of_event_threshold)
+                         out_of_event_threshold=out_of_event_threshold,
+                         basis_derivatives=deriv, **planet)
 
     if not ramp:
         return run(None)
@@ -676,6 +892,9 @@ def detrend_light_curve(time, flux, variance, template, *, orbit=None, orbit_tim
         cand = run(np.exp(opt.x))
         if cand.chi2 < res_best.chi2:
             tau_best, res_best = float(np.exp(opt.x)), cand
+    if grid.size > 1 or fit_tau:
+        # tau was chosen from the data: carry its uncertainty into the covariance.
+        res_best = run(tau_best, propagate=True)
     return _with_tau(res_best, tau_best, 1)
 
 

@@ -214,7 +214,7 @@ STAGES = {
               "masked pixels: 'profile' = fill from the scaled median spectrum, 'flag' = flag the channel-exposure",
               choices=("profile", "flag")),
     )),
-    "detrend": StageSpec("detrend", "1", "light curves divided by a systematics model", (
+    "detrend": StageSpec("detrend", "2", "light curves divided by a systematics model", (
         Param("visit_order", 1, "int", "order of the visit-long polynomial in time", minimum=0, maximum=4),
         Param("orbit_order", 2, "int",
               "order of the orbit-phase polynomial shared by all orbits (-1 = none)", minimum=-1, maximum=4),
@@ -228,6 +228,10 @@ STAGES = {
         Param("phase_curve", "auto", "str",
               "sinusoidal phase-curve terms at the orbital period: 'on', 'off', or 'auto' (on for "
               "an eclipse visit longer than a tenth of the period)", choices=("auto", "on", "off")),
+        Param("phase_curve_model", "planet", "str",
+              "eclipse phase curve in a joint fit: 'planet' = the planet's flux (constant + "
+              "sinusoids) hidden by the eclipse, depth at mid-eclipse; 'systematic' = independent "
+              "sinusoids multiplying the systematics", choices=("planet", "systematic")),
         Param("common_mode", False, "bool",
               "divide each channel by the white light curve's systematics model before fitting it"),
     )),

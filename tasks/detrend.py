@@ -4,7 +4,11 @@ The systematics model (visit-long polynomial, orbit-phase polynomial,
 per-orbit exponential ramp, scan-direction offset, optional phase curve) is
 fitted with the event's depth, whose shape comes from the visit's a priori
 ephemeris (Mandel & Agol 2002 transit with quadratic limb darkening, or a
-uniform-disk eclipse).
+uniform-disk eclipse).  For an eclipse fitted jointly, the phase curve is the
+planet's own flux, hidden by the eclipse (``tie_phase_curve`` of
+:func:`lightledger.pipeline.detrend.detrend_light_curve`), so that the depth
+is the planet's flux at mid-eclipse; the ramp time scale's uncertainty is
+carried into the depth error.
 
 Products in ``NOTEBOOK/detrend-IDENT/``:
 
@@ -107,6 +111,12 @@ class Detrend(VisitTask):
                        mode="joint" if params["fit"] == "joint" else "out_of_event",
                        phase_curve=(visit.event["t0"], visit.event["period"])
                        if _wants_phase_curve(params["phase_curve"], visit.event, t) else None)
+        # An eclipse hides the planet's flux at its phase: fit that flux as the phase
+        # curve itself (joint fits only; pipeline/detrend.py, tie_phase_curve).
+        options["tie_phase_curve"] = (options["phase_curve"] is not None
+                                      and visit.event["kind"] == "eclipse"
+                                      and options["mode"] == "joint"
+                                      and params["phase_curve_model"] == "planet")
         self.progress(0, 2, "white light curve")
         wf = np.asarray(lc["white_flux"], float)
         we = np.asarray(lc["white_error"], float)

@@ -263,3 +263,130 @@ def test_phase_curve_basis_and_errors():
         fit_event(flux, flux, np.zeros(mid.size))
     with pytest.raises(ParameterError, match="orbit"):
         detrend_light_curve(mid, flux, flux, s, ramp=True)
+
+
+# --------------------------------------------------------------------------
+# A short stare at an eclipse with a phase curve, a start ramp and a slope
+# --------------------------------------------------------------------------
+
+STARE_T0, STARE_PERIOD = 2461000.2, 1.1
+
+
+def _stare():
+    """150 exposures of 100 s centred on the eclipse (0.16 of the orbit, as the
+    stare-eclipse demo); the eclipse shape is batman's secondary eclipse with fp = 1
+    (Kreidberg 2015; the visible fraction of the planet's disk), uniform planet."""
+    n = 150
+    t = STARE_T0 + STARE_PERIOD / 2 + (np.arange(n) - (n - 1) / 2) * 100.0 / 86400.0
+    p = batman.TransitParams()
+    p.t0, p.per, p.rp, p.a, p.inc = STARE_T0, STARE_PERIOD, 0.1, 3.5, 84.0
+    p.ecc, p.w, p.u, p.limb_dark = 0.0, 90.0, [], "uniform"
+    p.fp, p.t_secondary = 1.0, STARE_T0 + STARE_PERIOD / 2
+    visible = batman.TransitModel(p, t, transittype="secondary").light_curve(p) - 1.0
+    orbit_time = t - t[0] + 50.0 / 86400.0
+    # Star times systematics in the additive form of the fitted basis: slope and ramp.
+    x = polynomial_basis(t, 1)[:, 0]
+    star = 1e7 * (1 + 4e-5 * x - 1.5e-3 * np.exp(-orbit_time / (15 * MIN)))
+    # The planet's flux over the star, F_p = c0 + c1 cos + c2 sin of the orbital phase
+    # (a first-harmonic phase curve, common practice); 9e-4 at mid-eclipse.
+    pc = phase_curve_basis(t, STARE_T0, STARE_PERIOD)
+    planet = 5e-4 - 4e-4 * pc[:, 0] + 5e-5 * pc[:, 1]
+    clean = star * (1 + planet * visible)
+    truth = 9e-4 / (1 + 9e-4)   # fraction of the out-of-eclipse flux hidden at mid-eclipse
+    return t, orbit_time, visible, star, clean, truth
+
+
+def test_tied_phase_curve_recovers_eclipse_depth_noise_free():
+    # Reference: batman's secondary eclipse (visible fraction) with a planet flux that
+    # follows the phase; the depth at mid-eclipse is F_p/(1 + F_p) there.  The tied model
+    # has the form of the injected signal, so a noise-free series comes back exactly
+    # (1e-8 is 1e-5 of the depth); tau 15 min lies on the grid.
+    t, ot, visible, _, clean, truth = _stare()
+    s = 1.0 - visible
+    opts = dict(orbit=np.zeros(t.size, int), orbit_time=ot, visit_order=1, ramp=True,
+                tau_grid=np.array([5.0, 15.0, 45.0]) * MIN, phase_curve=(STARE_T0, STARE_PERIOD))
+    res = detrend_light_curve(t, clean, clean.copy(), s, tie_phase_curve=True, **opts)
+    assert res.depth == pytest.approx(truth, abs=1e-8)
+    assert res.tau == pytest.approx(15 * MIN)
+    np.testing.assert_allclose(res.model, clean, rtol=1e-10)
+    assert np.max(np.abs(res.residuals)) < 1e-10
+    assert res.coefficient_names[-3:] == ("planet", "planet_cos1", "planet_sin1")
+    np.testing.assert_allclose(res.coefficients[-3:], [5e-4, -4e-4, 5e-5], atol=1e-9)
+    assert res.covariance.shape == (res.coefficients.size + 1,) * 2
+    assert res.n_params == 6 + 1  # constant, visit^1, ramp[0], three planet terms + tau
+    # Out of the eclipse the detrended flux is 1: the planet's phase curve is part of
+    # the systematics the light curve is divided by.
+    out = s == 0
+    np.testing.assert_allclose(res.detrended_flux[out], 1.0, atol=1e-10)
+    # Sensitivity: phase sinusoids multiplying S (1 - delta s) instead give an average
+    # of F_p/(1 + F_p) over the eclipse, short of the mid-eclipse value by more than
+    # 1e-6 here (about 1.7e-5 when this test was written).
+    untied = detrend_light_curve(t, clean, clean.copy(), s, **opts)
+    assert abs(untied.depth - truth) > 1e-6
+    with pytest.raises(ParameterError, match="phase_curve"):
+        detrend_light_curve(t, clean, clean, s, tie_phase_curve=True)
+    with pytest.raises(ParameterError, match="mode"):
+        detrend_light_curve(t, clean, clean, s, tie_phase_curve=True, mode="out_of_event",
+                            phase_curve=(STARE_T0, STARE_PERIOD))
+    with pytest.raises(ParameterError, match="planet_at_event"):
+        fit_event(clean, clean, s, planet_basis=np.ones(t.size))
+
+
+@pytest.mark.parametrize("tie", [True, False])
+def test_short_stare_depth_pulls_have_unit_scatter(tie):
+    # Monte Carlo injection-recovery (STYLE.md item 7) on the stare of _stare() with
+    # 370 ppm white noise per exposure and the ramp time scale chosen from a grid.  The
+    # phase sinusoids are nearly degenerate with the slope and the eclipse over 0.16 of
+    # the orbit: the normal matrix has a condition number ~1e19, and a pseudo-inverse of
+    # it reported depth errors 2.7 times too small (pull sd 2.72 with the untied model
+    # when this test was written).  Over 300 seeds the sample sd of unit-normal pulls
+    # has a standard error of 0.04; tolerance 0.15.  The tied model is unbiased
+    # (mean pull within 0.2); the untied one is short by about 0.2 sigma (see the test
+    # above), so only its scatter is checked.
+    t, ot, visible, _, clean, truth = _stare()
+    s = 1.0 - visible
+    sigma = 3.7e-4 * 1e7
+    grid = np.geomspace(4.0, 60.0, 6) * MIN
+    pulls, depths, errs = [], [], []
+    for seed in range(300):
+        flux = clean + sigma * np.random.default_rng(seed).normal(size=t.size)
+        res = detrend_light_curve(t, flux, np.full(t.size, sigma ** 2), s,
+                                  orbit=np.zeros(t.size, int), orbit_time=ot, visit_order=1,
+                                  ramp=True, tau_grid=grid, phase_curve=(STARE_T0, STARE_PERIOD),
+                                  tie_phase_curve=tie)
+        pulls.append((res.depth - truth) / res.depth_error)
+        depths.append(res.depth)
+        errs.append(res.depth_error)
+    pulls = np.array(pulls)
+    assert abs(pulls.std(ddof=1) - 1) < 0.15
+    if tie:
+        assert abs(pulls.mean()) < 0.2
+    # The stated error matches the Monte Carlo scatter of the depths (within 15%).
+    assert np.std(depths, ddof=1) == pytest.approx(np.median(errs), rel=0.15)
+
+
+@pytest.mark.parametrize("mode", ["joint", "out_of_event"])
+def test_ramp_time_scale_uncertainty_is_propagated(mode):
+    # Monte Carlo (STYLE.md item 7): the stare of _stare() without a phase curve, the
+    # ramp time scale chosen from a grid by chi-square.  Holding the chosen tau as if
+    # known gave depth errors about half the Monte Carlo scatter (pull sd 2.07 joint,
+    # 1.41 out of the event, with the earlier covariance when this test was written);
+    # marginalising over ln tau to first order gives 1.12 and 0.92 over these 300
+    # seeds (the chi-square surface in tau is not quadratic).  Tolerance 0.2 on the
+    # pull sd (standard error 0.04).
+    t, ot, visible, star, _, _ = _stare()
+    s = 1.0 - visible
+    clean = star * (1 + 9e-4 * visible)
+    truth = 9e-4 / (1 + 9e-4)
+    sigma = 3.7e-4 * 1e7
+    grid = np.geomspace(4.0, 60.0, 6) * MIN
+    pulls = []
+    for seed in range(300):
+        flux = clean + sigma * np.random.default_rng(seed).normal(size=t.size)
+        res = detrend_light_curve(t, flux, np.full(t.size, sigma ** 2), s,
+                                  orbit=np.zeros(t.size, int), orbit_time=ot, visit_order=1,
+                                  ramp=True, tau_grid=grid, mode=mode)
+        pulls.append((res.depth - truth) / res.depth_error)
+    pulls = np.array(pulls)
+    assert abs(pulls.std(ddof=1) - 1) < 0.2
+    assert abs(pulls.mean()) < 0.2

@@ -206,7 +206,12 @@ class _IndependentFit:
                             x_scale="jac", method="trf", xtol=1e-12, ftol=1e-12)
         dof = use.sum() - x0.size
         chi2 = float(np.sum(res.fun ** 2)) / dof
-        cov = np.linalg.pinv(res.jac.T @ res.jac) * max(chi2, 1.0)
+        # covariance from the SVD of the column-scaled Jacobian: a pseudo-inverse of the
+        # normal matrix would drop its poorly constrained directions
+        scale = np.linalg.norm(res.jac, axis=0)
+        scale[scale == 0] = 1.0
+        _, sv, vt = np.linalg.svd(res.jac / scale, full_matrices=False)
+        cov = (vt.T / sv ** 2) @ vt / np.outer(scale, scale) * max(chi2, 1.0)
         rp, rp_err = res.x[1], np.sqrt(cov[1, 1])
         return rp ** 2, 2 * rp * rp_err, chi2
 

@@ -23,11 +23,6 @@ SCENARIO = "stare-eclipse"
 # eclipse depth
 # --------------------------------------------------------------------------
 
-@pytest.mark.xfail(strict=True, reason=(
-    "tasks/detrend.py + pipeline/detrend.py: over seeds 1-6 the white eclipse depth scatters "
-    "about 200 ppm around the truth while its reported error is about 65 ppm; seed 1 gives "
-    "1.072e-3 +- 0.066e-3 against 0.857e-3 (pull 3.3): the error of the depth of a stare with "
-    "a phase curve, a start ramp and a visit slope is too small"))
 def test_eclipse_depth_within_3_sigma(stare_visit, science):
     # Truth WDEPTH (truth.py): fp/fs times the phase-curve factor at
     # mid-eclipse, averaged over the white band by source electrons, i.e. the
