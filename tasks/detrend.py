@@ -172,7 +172,9 @@ class Detrend(VisitTask):
             rms, expected, beta = quality(fit_j.residuals, fit_j.detrended_error, fm)
             rows.append({"channel": j, "wave_lo": lo, "wave_hi": hi, "wave_mid": 0.5 * (lo + hi),
                          "depth": fit_j.depth, "depth_error": fit_j.depth_error,
-                         "rms_ppm": rms * 1e6, "expected_ppm": expected * 1e6,
+                         "rms_ppm": rms * 1e6,
+                         "rms_dof_ppm": rms * 1e6 * np.sqrt(fm.sum() / max(fm.sum() - fit_j.n_params, 1)),
+                         "expected_ppm": expected * 1e6,
                          "rms_over_expected": rms / expected if expected else np.nan,
                          "beta": beta, "reduced_chi2": fit_j.reduced_chi2, "bic": fit_j.bic,
                          "n_params": fit_j.n_params, "n_used": int(fm.sum()), "tau_min": fit_j.tau * 1440
