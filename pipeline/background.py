@@ -60,6 +60,20 @@ class BackgroundEstimate:
     n_used: int
 
 
+def _image_and_bad(image, mask):
+    """A 2-D float copy of ``image`` and where it is unusable (masked or not finite)."""
+    img = np.asarray(image, dtype=float)
+    if img.ndim != 2:
+        raise ParameterError(f"image must be 2-D (ny, nx); got shape {img.shape}")
+    bad = ~np.isfinite(img)
+    if mask is not None:
+        m = np.asarray(mask, dtype=bool)
+        if m.shape != img.shape:
+            raise ParameterError(f"mask must have shape {img.shape}; got {m.shape}")
+        bad = bad | m
+    return img, bad
+
+
 def source_mask_from_rows(shape, rows, *, pad=0):
     """Boolean mask (True = source) of whole rows ``rows[0] .. rows[1]``.
 
@@ -208,16 +222,8 @@ def trace_source_mask(image, *, rows=None, mask=None, n_sigma=3.0, row_pad=0, co
     the image and a few sums, O(ny nx log(ny nx)); well under 1 ms for
     40 x 256 pixels.
     """
-    img = np.asarray(image, dtype=float)
-    if img.ndim != 2:
-        raise ParameterError(f"image must be 2-D (ny, nx); got shape {img.shape}")
+    img, bad = _image_and_bad(image, mask)
     ny, nx = img.shape
-    bad = ~np.isfinite(img)
-    if mask is not None:
-        m = np.asarray(mask, dtype=bool)
-        if m.shape != img.shape:
-            raise ParameterError(f"mask must have shape {img.shape}; got {m.shape}")
-        bad = bad | m
     if int(row_pad) < 0 or int(column_pad) < 0:
         raise ParameterError(f"row_pad and column_pad must be >= 0; got {row_pad}, {column_pad}")
     good = ~bad
@@ -706,15 +712,7 @@ def estimate_background(image, *, mask=None, source_mask=None, method="rowcol", 
     """
     if method not in METHODS:
         raise ParameterError(f"method must be one of {METHODS}; got {method!r}")
-    img = np.asarray(image, dtype=float)
-    if img.ndim != 2:
-        raise ParameterError(f"image must be 2-D (ny, nx); got shape {img.shape}")
-    bad = ~np.isfinite(img)
-    if mask is not None:
-        m = np.asarray(mask, dtype=bool)
-        if m.shape != img.shape:
-            raise ParameterError(f"mask must have shape {img.shape}; got {m.shape}")
-        bad = bad | m
+    img, bad = _image_and_bad(image, mask)
     offered = ~bad
     if source_mask is not None:
         sm = np.asarray(source_mask, dtype=bool)
