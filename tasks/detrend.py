@@ -207,6 +207,7 @@ class Detrend(VisitTask):
         metrics = {"white depth (ppm)": round(float(w["depth"]) * 1e6, 1),
                    "white depth error (ppm)": round(float(w["depth_error"]) * 1e6, 1),
                    "white rms (ppm)": round(float(w["rms_ppm"]), 1),
+                   "white rms per degree of freedom (ppm)": round(float(w["rms_dof_ppm"]), 1),
                    "white rms / expected": round(float(w["rms_over_expected"]), 3),
                    "white beta": round(float(w["beta"]), 3) if np.isfinite(w["beta"]) else None,
                    "median channel rms / expected":
