@@ -19,9 +19,12 @@ row profile times spectrum, fitted to each difference on its own (see
 it predicts the sharp lines of the spectrum and the peaks between them.
 
 Cost: one median filter and a few sorts of the difference cube,
-O(n_reads ny nx); the band models of all differences at once, on the band's
-rows (two running medians of ``cr_width`` columns and one sort of each
-column's band rows), O(n_reads n_band_rows nx cr_width); then a Python loop
+O(n_reads ny nx), the filter's elementwise min/max run in blocks that stay
+in the processor's cache; the band models of all differences at once, on
+the band's rows (two running medians of ``cr_width`` columns, by min/max
+over shifted copies except within ``cr_width // 2`` columns of the frame's
+edges and of the spectrum's ends, and one sort of each column's band
+rows), O(n_reads n_band_rows nx cr_width); then a Python loop
 runs over differences only, each step on one difference (the cosmic-ray
 test and the sums on the band's rows only), so that the work arrays stay in
 the processor's cache.  The background estimate of each difference is most
@@ -108,33 +111,26 @@ def _selection_plan(m, rank):
     return tuple(plan[::-1])
 
 
+#: Windows per block in :func:`_median_filter_rows` (work arrays of 64 KiB).
+_FILTER_CHUNK = 8192
+
 _SELECTION_PLANS = {w: _selection_plan(w, w // 2) for w in range(1, _FILTER_NETWORK_MAX + 1)}
 
 
-def _median_filter_rows(frame, width):
-    """Running median of ``width`` columns along the last axis, edges repeated.
+def _network_median(lanes, owned, shape):
+    """Elementwise median (rank ``len(lanes) // 2``) of equal-shape NaN-free arrays.
 
-    The same as ``scipy.ndimage.median_filter(frame, size=(1, width),
-    mode="nearest")`` (rank ``width // 2`` of the window, which for an even
-    width starts ``width // 2`` columns to the left) for NaN-free input:
-    the window's shifted copies are combined by a selection network of
-    elementwise min/max (12 of them for width 5) instead of a per-pixel
-    selection.  Widths above ``_FILTER_NETWORK_MAX`` use scipy.
+    ``lanes`` holds at most ``_FILTER_NETWORK_MAX`` arrays; those marked in
+    ``owned`` may be overwritten, the others (e.g. views of the caller's
+    input) are only read.  The selection network of ``len(lanes)`` inputs
+    (:func:`_selection_plan`) is applied with elementwise min/max into
+    work arrays of ``shape``.
     """
-    if width <= 1:
-        return np.array(frame, dtype=float)
-    if width > _FILTER_NETWORK_MAX:
-        return ndimage.median_filter(frame, size=(1,) * (frame.ndim - 1) + (width,), mode="nearest")
-    nx = frame.shape[-1]
-    left = width // 2
-    padded = np.concatenate([np.repeat(frame[..., :1], left, axis=-1), frame,
-                             np.repeat(frame[..., -1:], width - 1 - left, axis=-1)], axis=-1)
-    lanes = [padded[..., j:j + nx] for j in range(width)]  # views of the shifted copies
-    owned = [False] * width  # True once a lane holds a work array of its own
-    spare = []
+    width = len(lanes)
+    lanes, owned, spare = list(lanes), list(owned), []
 
     def buffer():
-        return spare.pop() if spare else np.empty(frame.shape)
+        return spare.pop() if spare else np.empty(shape)
 
     for i, j, want_min, want_max in _SELECTION_PLANS[width]:
         a, b = lanes[i], lanes[j]
@@ -151,7 +147,115 @@ def _median_filter_rows(frame, width):
         else:
             lanes[j] = np.maximum(a, b, out=b if owned[j] else buffer())
             owned[j] = True
-    return lanes[width // 2]
+    out = lanes[width // 2]
+    return out if owned[width // 2] else np.array(out)
+
+
+def _med3(x, y, z):
+    """Elementwise median of three arrays (4 min/max); new array."""
+    lo = np.minimum(x, y)
+    hi = np.maximum(x, y)
+    np.minimum(hi, z, out=hi)
+    return np.maximum(lo, hi, out=hi)
+
+
+def _sort3(a, b, c):
+    """Elementwise sort of three arrays (3 comparators); new arrays lo, mid, hi."""
+    lo = np.minimum(a, b)
+    hi = np.maximum(a, b)
+    mid = np.minimum(hi, c)
+    np.maximum(hi, c, out=hi)
+    low = np.minimum(lo, mid)
+    np.maximum(lo, mid, out=mid)
+    return low, mid, hi
+
+
+def _median9_triples(t0, t1, t2):
+    """Elementwise median of nine values given as three sorted triples (lo, mid, hi).
+
+    With the rows of the 3 x 3 array of the nine values sorted, and then its
+    columns, the median is the median of the anti-diagonal: the greatest of
+    the lows, the median of the mids and the least of the highs (Paeth 1990,
+    "Median finding on a 3 x 3 grid", Graphics Gems, from memory; the tests
+    check it on every input of zeros and ones); 12 min/max given the
+    triples.
+    """
+    low = np.maximum(np.maximum(t0[0], t1[0]), t2[0])
+    high = np.minimum(np.minimum(t0[2], t1[2]), t2[2])
+    return _med3(low, _med3(t0[1], t1[1], t2[1]), high)
+
+
+def _median5_flat(flat, n_out):
+    """Median of ``flat[i:i + 5]`` for ``i < n_out`` (1-D, NaN-free); new array.
+
+    Of five values, two sorted pairs ``a0 <= a1``, ``b0 <= b1`` and ``e``,
+    ``min(a0, b0)`` is the least of four and ``max(a1, b1)`` the greatest,
+    so dropping both (one not above the median, one not below) leaves the
+    median as the median of ``max(a0, b0)``, ``min(a1, b1)`` and ``e``.
+    The sorted pairs of neighbouring values are shared by the windows, so
+    each output takes 8 elementwise min/max instead of the network's 12.
+    """
+    pair_lo = np.minimum(flat[:n_out + 2], flat[1:n_out + 3])
+    pair_hi = np.maximum(flat[:n_out + 2], flat[1:n_out + 3])
+    u = np.maximum(pair_lo[:n_out], pair_lo[2:n_out + 2])
+    v = np.minimum(pair_hi[:n_out], pair_hi[2:n_out + 2])
+    return _med3(u, v, flat[4:n_out + 4])
+
+
+def _median9_flat(flat, n_out):
+    """Median of ``flat[i:i + 9]`` for ``i < n_out`` (1-D, NaN-free); new array.
+
+    The sorted triple of each run of three values is shared by the three
+    windows that hold it (:func:`_median9_triples`): 18 elementwise min/max
+    per output instead of the network's 40.
+    """
+    tri = _sort3(flat[:n_out + 6], flat[1:n_out + 7], flat[2:n_out + 8])
+    return _median9_triples(*([t[o:o + n_out] for t in tri] for o in (0, 3, 6)))
+
+
+def _median_filter_rows(frame, width):
+    """Running median of ``width`` columns along the last axis, edges repeated.
+
+    The same as ``scipy.ndimage.median_filter(frame, size=(1, width),
+    mode="nearest")`` (rank ``width // 2`` of the window, which for an even
+    width starts ``width // 2`` columns to the left) for NaN-free input:
+    the window's shifted copies are combined by elementwise min/max (a
+    selection network, with comparisons shared between neighbouring windows
+    for widths 5 and 9) instead of a per-pixel selection.  The padded rows
+    are laid end to end, so that every min/max runs over one contiguous
+    run of memory; the windows that straddle two rows are computed and
+    dropped.  Widths above ``_FILTER_NETWORK_MAX`` use scipy.  Returns a
+    new array.
+    """
+    if width <= 1:
+        return np.array(frame, dtype=float)
+    if width > _FILTER_NETWORK_MAX:
+        return ndimage.median_filter(frame, size=(1,) * (frame.ndim - 1) + (width,), mode="nearest")
+    nx = frame.shape[-1]
+    if np.size(frame) == 0:
+        return np.empty(np.shape(frame))
+    left = width // 2
+    padded = np.concatenate([np.repeat(frame[..., :1], left, axis=-1), frame,
+                             np.repeat(frame[..., -1:], width - 1 - left, axis=-1)], axis=-1)
+    flat = padded.reshape(-1)
+    n_out = flat.size - (width - 1)  # window i covers flat[i:i + width]
+    med = np.empty(n_out)
+    for start in range(0, n_out, _FILTER_CHUNK):  # blocks of windows: work arrays stay in cache
+        stop = min(start + _FILTER_CHUNK, n_out)
+        part = flat[start:stop + width - 1]
+        if width == 5:
+            med[start:stop] = _median5_flat(part, stop - start)
+        elif width == 9:
+            med[start:stop] = _median9_flat(part, stop - start)
+        else:
+            lanes = [part[j:j + stop - start] for j in range(width)]  # views of the shifted copies
+            med[start:stop] = _network_median(lanes, [False] * width, (stop - start,))
+    # row r, column c is window r * (nx + width - 1) + c
+    n_rows = flat.size // (nx + width - 1)
+    rows = np.lib.stride_tricks.as_strided(med, shape=(n_rows, nx),
+                                           strides=((nx + width - 1) * med.itemsize, med.itemsize),
+                                           writeable=False)
+    return np.array(rows).reshape(frame.shape)
 
 
 #: Columns whose band sum is below this many sigma of a background column's
@@ -211,11 +315,55 @@ def _gathered_median(values, kk, cc, width):
     half = width // 2
     padded = np.full((n, n_rows, nx + 2 * half), np.nan)
     padded[:, :, half:half + nx] = values
-    windows = np.sort(np.lib.stride_tricks.sliding_window_view(padded, width, axis=2)[kk, :, cc], axis=2)
-    count = width - np.count_nonzero(np.isnan(windows), axis=2)  # NaN sort last
-    low = np.take_along_axis(windows, np.maximum(count - 1, 0)[:, :, None] >> 1, axis=2)[:, :, 0]
-    high = np.take_along_axis(windows, (count >> 1)[:, :, None], axis=2)[:, :, 0]
-    return np.where(count > 0, 0.5 * (low + high), np.nan)
+    windows = np.lib.stride_tricks.sliding_window_view(padded, width, axis=2)[kk, :, cc]
+    out = np.empty(windows.shape[:2])
+    full = ~np.isnan(windows).any(axis=2)  # all width values present: the network
+    if width <= _FILTER_NETWORK_MAX and full.any():
+        lanes = np.ascontiguousarray(windows[full].T)  # (width, n_full), this function's own
+        if width == 9:
+            out[full] = _median9_triples(*(_sort3(*lanes[o:o + 3]) for o in (0, 3, 6)))
+        else:
+            out[full] = _network_median(list(lanes), [True] * width, lanes.shape[1:])
+        rest = ~full
+    else:
+        rest = np.ones(out.shape, bool)
+    if rest.any():
+        part = np.sort(windows[rest], axis=1)
+        count = width - np.count_nonzero(np.isnan(part), axis=1)  # NaN sort last
+        low = np.take_along_axis(part, (np.maximum(count - 1, 0) >> 1)[:, None], axis=1)[:, 0]
+        high = np.take_along_axis(part, (count >> 1)[:, None], axis=1)[:, 0]
+        out[rest] = np.where(count > 0, 0.5 * (low + high), np.nan)
+    return out
+
+
+def _cut_window_median(values, width):
+    """Running median along the last axis of ``width`` columns, windows cut at the frame's edges.
+
+    The same as :func:`_gathered_median` at every column of every row: for
+    finite ``values`` the columns whose window lies inside the frame take
+    :func:`_median_filter_rows` (the window's middle value), the
+    ``width // 2`` columns at each edge a sort of the part of their window
+    inside the frame.  Returns a new array of the shape of ``values``
+    (n, n_rows, nx).
+    """
+    n, _, nx = values.shape
+    half = width // 2
+    if width > _FILTER_NETWORK_MAX or not np.isfinite(values).all():
+        kk, cc = np.nonzero(np.ones((n, nx), bool))
+        out = np.empty(values.shape)
+        out[kk, :, cc] = _gathered_median(values, kk, cc, width)
+        return out
+    out = _median_filter_rows(values, width)
+    if nx <= 2 * width:  # every column near an edge
+        edges = [(0, np.r_[0:min(half, nx), max(nx - half, half):nx])]
+    else:  # the edge columns' windows lie within 2 half columns of the edge
+        edges = [(0, np.arange(half)), (nx - 2 * half, np.arange(half, 2 * half))]
+    for start, cols in edges:
+        if cols.size:
+            part = values[:, :, start:start + 2 * half] if nx > 2 * width else values
+            kk, cc = np.repeat(np.arange(n), cols.size), np.tile(cols, n)
+            out[kk, :, cc + start] = _gathered_median(part, kk, cc, width)
+    return out
 
 
 def _band_models(d, usable, fill, rows_ok, level, read_var, flat, dark_charge, *, width):
@@ -325,13 +473,13 @@ def _band_models(d, usable, fill, rows_ok, level, read_var, flat, dark_charge, *
     a = np.where(fit, np.sum(w * x, axis=1, keepdims=True) / np.where(fit, den, 1.0), a0)
     source = a * p
     # columns without spectrum: add the running median of what the profile leaves
-    kk, cc = np.nonzero(~strong)
-    if kk.size:
-        source[kk, :, cc] += np.nan_to_num(_gathered_median(x - source, kk, cc, width))
+    if not strong.all():
+        rest = np.nan_to_num(_cut_window_median(x - source, width))
+        np.add(source, rest, out=source, where=~strong[:, None, :])
     # differences without any spectrum column: the running median of the difference
-    kk, cc = np.nonzero(~strong.any(axis=1)[:, None] & np.ones((1, nx), bool))
-    if kk.size:
-        source[kk, :, cc] = _gathered_median(x, kk, cc, width)
+    blank = np.flatnonzero(~strong.any(axis=1))
+    if blank.size:
+        source[blank] = _cut_window_median(x[blank], width)
     model = source + lev
     return model, _pixel_sigma(model, read_var, flat, dark_charge)
 
@@ -382,11 +530,8 @@ def find_bands(diffs, *, valid=None, band_sigma=5.0, pad_rows=3, filter_width=5,
         filled = np.where(ok, d, fill[:, :, None])
     else:
         filled = d
-    filt = np.empty_like(d)
-    prof = np.empty((n, ny))
-    for k in range(n):  # one difference at a time: the work arrays stay in cache
-        filt[k] = _median_filter_rows(filled[k], w)
-        prof[k] = np.where(ok[k], filt[k], 0.0).sum(axis=1) / np.maximum(ok[k].sum(axis=1), 1)
+    filt = _median_filter_rows(filled, w)  # in blocks that stay in the processor's cache
+    prof = (filt if ok.all() else np.where(ok, filt, 0.0)).sum(axis=2) / np.maximum(ok.sum(axis=2), 1)
     base, _ = masked_median(prof, np.zeros(prof.shape, bool), axis=1)
     mad, _ = masked_median(np.abs(prof - base[:, None]), np.zeros(prof.shape, bool), axis=1)
     scale = np.maximum(_MAD_TO_SIGMA * mad, 1e-12 * np.maximum(np.abs(base), 1.0))
@@ -547,11 +692,13 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
     n_diff = n_reads - 1
     rz = r if finite.all() else np.where(finite, r, 0.0)
     d = np.empty((n_diff, ny, nx))
+    all_valid = bool(valid.all())
     for k in range(n_diff):  # (r_k+1 - r_k - D dt_k) / f, 0 where unusable
         dk = np.subtract(rz[k + 1], rz[k], out=d[k])
         dk -= dark * dt[k]
         dk /= fl_safe
-        dk[~valid[k]] = 0.0
+        if not all_valid:
+            np.copyto(dk, 0.0, where=~valid[k])
     usable = valid & ~badpx
 
     lo, hi, found, filt = find_bands(d, valid=usable, band_sigma=band_sigma, pad_rows=pad_rows,
@@ -596,6 +743,7 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
     hit_any = np.zeros((ny, nx), bool)
     take_any = np.zeros((ny, nx), bool)
     prev = np.zeros((ny, nx), bool)
+    prev_band = slice(0, 0)
     for k in range(n_diff):
         band = slice(int(lo[k]), int(hi[k]) + 1)
         dk, fl_k = d[k, band], fl_safe[band]
@@ -634,12 +782,13 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
         bkg_map[band] += np.where(take, bk[band], 0.0)
         bkg_var[band] += np.where(take, bv[band], 0.0)
         pois[band] += np.where(take, charge, 0.0)
-        # runs of consecutive differences that enter the sum, per pixel
-        take_k = np.zeros((ny, nx), bool)
-        take_k[band] = take
-        runs += take_k & ~prev
-        take_any |= take_k
-        prev = take_k
+        # runs of consecutive differences that enter the sum, per pixel (prev: the
+        # previous difference's take, False outside its band)
+        runs[band] += take & ~prev[band]
+        take_any[band] |= take
+        prev[prev_band] = False
+        prev[band] = take
+        prev_band = band
 
     var = (2.0 * s2 * runs + pois) / fl_safe ** 2 + bkg_var
     covered = np.broadcast_to(in_band_rows.any(axis=0)[:, None], (ny, nx))

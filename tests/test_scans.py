@@ -1,5 +1,7 @@
 """Tests of lightledger.pipeline.scans (band-masked sums of read differences)."""
 
+import warnings
+
 import numpy as np
 import pytest
 
@@ -296,6 +298,67 @@ def test_median_filter_rows_matches_scipy(width, nx):
     frame = np.round(rng.normal(size=(6, nx)), 1)  # ties
     ref = ndimage.median_filter(frame, size=(1, width), mode="nearest")
     np.testing.assert_array_equal(_median_filter_rows(frame, width), ref)
+
+
+@pytest.mark.parametrize("width", [3, 5, 7, 9])
+def test_median_filter_rows_in_blocks_matches_scipy(width):
+    # reference library: scipy.ndimage.median_filter, on frames of more windows than one
+    # block of _FILTER_CHUNK, so the block edges and the rows laid end to end are crossed
+    from scipy import ndimage
+
+    from lightledger.pipeline.scans import _FILTER_CHUNK, _median_filter_rows
+
+    rng = np.random.default_rng(46)
+    frame = np.round(rng.normal(size=(3, 121, 53)), 1)  # ties
+    assert frame.size > 2 * _FILTER_CHUNK
+    ref = ndimage.median_filter(frame, size=(1, 1, width), mode="nearest")
+    np.testing.assert_array_equal(_median_filter_rows(frame, width), ref)
+
+
+def test_shared_comparison_medians_on_every_zero_one_input():
+    # zero-one principle (Knuth, TAOCP vol. 3, sec. 5.3.4, from memory): a network of
+    # elementwise min/max that picks the median of every input of zeros and ones picks
+    # it of every input; numpy.median is the reference, on all 2**5 and 2**9 inputs
+    from lightledger.pipeline.scans import _median5_flat, _median9_triples, _sort3
+
+    for width in (5, 9):
+        bits = (np.arange(2 ** width)[:, None] >> np.arange(width)[None, :]) & 1
+        values = bits.astype(float)
+        ref = np.median(values, axis=1)
+        if width == 5:
+            # each window of a row laid out as [w0 .. w4]: window 0 of a 5-long run
+            got = np.array([_median5_flat(row, 1)[0] for row in values])
+        else:
+            lanes = values.T
+            got = _median9_triples(*(_sort3(*lanes[o:o + 3]) for o in (0, 3, 6)))
+        np.testing.assert_array_equal(got, ref)
+    # and on random runs with ties, every window of the run
+    rng = np.random.default_rng(47)
+    run = np.round(rng.normal(size=300), 1)
+    windows = np.lib.stride_tricks.sliding_window_view(run, 5)
+    np.testing.assert_array_equal(_median5_flat(run, len(windows)), np.median(windows, axis=1))
+
+
+@pytest.mark.parametrize("width", [1, 3, 5, 9, 11])
+@pytest.mark.parametrize("nx", [3, 8, 40])
+@pytest.mark.parametrize("with_nan", [False, True])
+def test_cut_window_median_matches_slow_reference(width, nx, with_nan):
+    # slow reference: numpy.nanmedian of the part of each window inside the frame
+    # (NaN values left out, as _gathered_median documents)
+    from lightledger.pipeline.scans import _cut_window_median
+
+    rng = np.random.default_rng(48)
+    values = np.round(rng.normal(size=(2, 4, nx)), 1)  # ties
+    if with_nan:
+        values[0, 1, nx // 2] = np.nan
+    half = width // 2
+    ref = np.empty(values.shape)
+    with warnings.catch_warnings():  # a window of NaN only (width 1) has a NaN median
+        warnings.simplefilter("ignore", RuntimeWarning)
+        for k in range(values.shape[0]):
+            for c in range(nx):
+                ref[k, :, c] = np.nanmedian(values[k, :, max(c - half, 0):c + half + 1], axis=1)
+    np.testing.assert_allclose(_cut_window_median(values, width), ref, rtol=1e-15, atol=0)
 
 
 def _reference_find_bands(d, ok, band_sigma, pad_rows, width, fallback):
