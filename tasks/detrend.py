@@ -33,6 +33,7 @@ import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
+from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.detrend import binned_rms, detrend_light_curve, fit_channels
 from lightledger.pipeline.transit import eclipse_flux, transit_flux
 
@@ -95,7 +96,6 @@ class Detrend(VisitTask):
         t = np.asarray(lc["time_bjd_tdb"], float)
         template = event_template(t, visit.event)
         if not np.any(template > 0):
-            from lightledger.pipeline.errors import LightledgerError
             raise LightledgerError(f"{visit.path}: the {visit.event['kind']} of the ephemeris "
                                    f"(event.t0, event.period) falls outside the visit's exposures")
         stare = bool(np.all(np.asarray(lc["scan_direction"]) == 0))
