@@ -33,8 +33,8 @@ import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
-from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.detrend import binned_rms, detrend_light_curve, fit_channels
+from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.transit import eclipse_flux, transit_flux
 
 from .base import ENTRY_NAME, VisitTask
