@@ -625,9 +625,17 @@ def _two_d(img, bad, sigma, maxiters, box_size, filter_size):
     from photutils.background import Background2D, MedianBackground, StdBackgroundRMS
 
     clip = SigmaClip(sigma=sigma, maxiters=maxiters)
-    b2d = Background2D(np.where(bad, 0.0, img), box_size, mask=bad, filter_size=filter_size,
-                       sigma_clip=clip, bkg_estimator=MedianBackground(),
-                       bkg_rms_estimator=StdBackgroundRMS(), exclude_percentile=50.0)
+    ny, nx = img.shape
+    # A box never taller or wider than the image; on a short subarray whose middle rows hold
+    # the source a box keeps less than half its pixels, so such boxes are still used.
+    box = (min(int(box_size[0]), ny), min(int(box_size[1]), nx))
+    try:
+        b2d = Background2D(np.where(bad, 0.0, img), box, mask=bad, filter_size=filter_size,
+                           sigma_clip=clip, bkg_estimator=MedianBackground(),
+                           bkg_rms_estimator=StdBackgroundRMS(), exclude_percentile=90.0)
+    except ValueError as exc:
+        raise AllMaskedError(f"background_method '2d': too few unmasked pixels in boxes of "
+                             f"{box[0]}x{box[1]} pixels ({exc}); use 'rowcol'") from None
     bkg = np.asarray(b2d.background, dtype=float)
     rms = np.asarray(b2d.background_rms, dtype=float)
     npix = np.asarray(b2d.n_pixels_map, dtype=float)
