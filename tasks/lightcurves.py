@@ -50,6 +50,21 @@ def read_lightcurves(path):
         return Table(hdul["LIGHTCURVES"].data), Table(hdul["CHANNELS"].data)
 
 
+def _bridge(values):
+    """Fill non-finite entries by linear interpolation between finite neighbours.
+
+    A pixel bad in every exposure (e.g. a bad column under a box extraction)
+    takes its neighbours' value, so that it can be filled rather than flag its
+    channel in every exposure; 0 where nothing is finite.
+    """
+    values = np.asarray(values, float)
+    ok = np.isfinite(values)
+    if ok.all() or not ok.any():
+        return np.where(ok, values, 0.0)
+    index = np.arange(values.size)
+    return np.where(ok, values, np.interp(index, index[ok], values[ok]))
+
+
 def _channel_edges(params, pixel_edges, mean_spectrum):
     lo, hi = float(np.min(pixel_edges)), float(np.max(pixel_edges))
     if params["edges"]:
@@ -132,7 +147,7 @@ class Bin(VisitTask):
         good = ~mask & np.isfinite(flux)
         total = np.nansum(np.where(good, flux, 0.0), axis=1)
         median_spec = np.nanmedian(np.where(good, flux, np.nan), axis=0)
-        median_spec = np.where(np.isfinite(median_spec), median_spec, 0.0)
+        median_spec = _bridge(median_spec)
         edges = _channel_edges(params, pix_edges, median_spec)
         fill = fill_var = None
         if params["fill"] == "profile":
@@ -140,7 +155,7 @@ class Bin(VisitTask):
             # median variance scaled alike
             scale = total / max(np.sum(median_spec), 1e-30)
             median_var = np.nanmedian(np.where(good, var, np.nan), axis=0)
-            median_var = np.where(np.isfinite(median_var), median_var, np.nan)
+            median_var = _bridge(median_var)
             fill = median_spec[None, :] * scale[:, None]
             fill_var = median_var[None, :] * scale[:, None]
         binned = bin_spectra(pix_edges, flux, var, mask, edges, fill=fill, fill_variance=fill_var)
