@@ -143,6 +143,40 @@ def _runs_at_least(flags, min_run):
     return f & (length[run] >= min_run)
 
 
+def _grow_columns(cols, contrast, err, ok, grow_sigma, width):
+    """Detected columns joined with the contiguous columns whose running-mean contrast is significant.
+
+    ``contrast`` and ``err`` are the per-column contrast and its white-noise
+    error; the running mean over ``width`` columns has error
+    ``sqrt(sum err**2) / n``, raised to the robust scatter of the running
+    means away from the detected columns when that is larger.  A run of
+    significant columns is kept only if it touches a detected column
+    (hysteresis thresholding, common practice).
+    """
+    k = np.ones(width)
+    valid = ok & np.isfinite(contrast) & np.isfinite(err)
+    n = np.convolve(valid.astype(float), k, mode="same")
+    s = np.convolve(np.where(valid, contrast, 0.0), k, mode="same")
+    e2 = np.convolve(np.where(valid, err, 0.0) ** 2, k, mode="same")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sm, se = s / n, np.sqrt(e2) / n
+    # correlated read noise does not average down along a row: also take the robust scatter
+    # of the running means away from the detected columns (1.4826 MAD, common practice)
+    away = valid & ~_pad(cols, width) & (n > 0)
+    if away.sum() >= 3:
+        med = np.median(sm[away])
+        se = np.maximum(se, _MAD_TO_SIGMA * np.median(np.abs(sm[away] - med)))
+    else:
+        med = 0.0
+    with np.errstate(invalid="ignore"):
+        cand = (n > 0) & (sm - med > grow_sigma * se)
+    f = cols | cand
+    start = f & ~np.concatenate([[False], f[:-1]])
+    run = np.cumsum(start)
+    has = np.bincount(run[cols], minlength=run[-1] + 1) > 0
+    return f & has[run]
+
+
 def _pad(flags, pad):
     """1-D dilation of a boolean array by ``pad`` elements on each side."""
     f = np.asarray(flags, dtype=bool)
@@ -156,7 +190,7 @@ def _pad(flags, pad):
 
 
 def trace_source_mask(image, *, rows=None, mask=None, n_sigma=3.0, row_pad=0, column_pad=1,
-                      min_run=3, pixel_sigma=5.0):
+                      min_run=3, pixel_sigma=5.0, grow_sigma=None, grow_width=9):
     """Two-dimensional source mask of a spectral trace, found from the image itself.
 
     Mask contract: pixels where ``mask`` (True = bad) is True, and non-finite
@@ -175,6 +209,12 @@ def trace_source_mask(image, *, rows=None, mask=None, n_sigma=3.0, row_pad=0, co
     3. trace rows: as in 1, with the means over the source columns, runs
        shorter than ``min_run`` dropped, padded by ``row_pad`` (the guess rows
        if none is found);
+    2b. with ``grow_sigma``: the source columns are extended into the
+       contiguous columns where the running mean of that contrast over
+       ``grow_width`` columns exceeds ``grow_sigma`` times its error (the
+       larger of the white-noise error and the robust scatter of such means
+       away from the trace), so the faint ends of the spectrum, below the
+       single-column threshold, are covered too;
     4. the mask is trace rows x source columns (whole trace rows if no column
        is found), joined with compact bright pixels - a 3 x 3 mean above
        ``pixel_sigma`` times the robust scatter of such means (never below
@@ -198,6 +238,10 @@ def trace_source_mask(image, *, rows=None, mask=None, n_sigma=3.0, row_pad=0, co
         rays).
     pixel_sigma : float or None
         Threshold of the compact bright pixels, sigma (None = none).
+    grow_sigma : float or None
+        Threshold of the column growth of step 2b, sigma (None = no growth).
+    grow_width : int
+        Columns of the running mean of step 2b (>= 1; 1 = no growth).
 
     Returns
     -------
@@ -226,6 +270,9 @@ def trace_source_mask(image, *, rows=None, mask=None, n_sigma=3.0, row_pad=0, co
     ny, nx = img.shape
     if int(row_pad) < 0 or int(column_pad) < 0:
         raise ParameterError(f"row_pad and column_pad must be >= 0; got {row_pad}, {column_pad}")
+    if int(grow_width) < 1 or (grow_sigma is not None and not np.isfinite(grow_sigma)):
+        raise ParameterError(f"grow_width must be an integer >= 1 and grow_sigma a finite number or None; "
+                             f"got {grow_width}, {grow_sigma}")
     good = ~bad
     if not good.any():
         raise AllMaskedError("trace_source_mask: every pixel is masked; nothing to detect a trace in")
@@ -275,6 +322,8 @@ def trace_source_mask(image, *, rows=None, mask=None, n_sigma=3.0, row_pad=0, co
         with np.errstate(invalid="ignore", divide="ignore"):
             err = sigma * np.sqrt(1.0 / n_in + np.where(n_out > 0, 1.0 / np.maximum(n_out, 1), 0.0))
             cols = _runs_at_least((n_in > 0) & (m_in - m_out > n_sigma * err), min_run)
+    if cols.any() and grow_sigma is not None and int(grow_width) > 1:
+        cols = _grow_columns(cols, m_in - m_out, err, n_in > 0, float(grow_sigma), int(grow_width))
     if cols.any():
         trows = high_rows(*mean_along(1, cols))
         if not trows.any():

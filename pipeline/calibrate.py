@@ -179,7 +179,11 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         background then also leaves out the padded source rows.
     mask_options : dict, optional
         Extra keyword options passed to ``trace_source_mask`` (``n_sigma``,
-        ``row_pad``, ``column_pad``, ``min_run``, ``pixel_sigma``).
+        ``row_pad``, ``column_pad``, ``min_run``, ``pixel_sigma``,
+        ``grow_sigma``, ``grow_width``); defaults here ``row_pad=1`` and
+        ``grow_sigma=2.0``, so that neither the profile's wing next to the
+        detected rows nor the spectrum's faint ends are used to measure the
+        stripes.
     destripe_options : dict, optional
         Extra keyword options passed to ``destripe`` for staring exposures;
         default ``{"method": "stream"}`` (``"median"`` gives row and column
@@ -293,7 +297,11 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
             raise ParameterError(f"source_mask must have shape {shape}; got {dmask.shape}")
         smask = dmask
     elif destripe != "off" and not scanning:
-        mopts = dict(mask_options or {})
+        # one row beyond the detected trace rows holds the profile's wing, and the spectrum's
+        # faint ends continue beyond the single-column detection: light left there enters the
+        # stripe estimate and is bridged into the trace rows (a deficit of the source flux)
+        mopts = {"row_pad": 1, "grow_sigma": 2.0}
+        mopts.update(mask_options or {})
         raw_bad = badref | ref_bad | ~np.all(np.isfinite(e), axis=0)
         dmask = trace_source_mask(np.nan_to_num(e[-1] - e[0]), rows=rows, mask=raw_bad, **mopts).mask
         smask = smask | dmask

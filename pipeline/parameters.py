@@ -158,7 +158,7 @@ def nearest(word, candidates):
 
 
 STAGES = {
-    "calibrate": StageSpec("calibrate", "3", "raw ramps to calibrated frames", (
+    "calibrate": StageSpec("calibrate", "4", "raw ramps to calibrated frames", (
         Param("ramp_method", "fit", "str",
               "staring ramps: 'fit' = weighted up-the-ramp slope, 'diff' = sum of read differences",
               choices=("fit", "diff")),

@@ -299,6 +299,26 @@ def test_trace_source_mask_covers_the_source_and_leaves_faint_pixels(guess):
     assert 20.0 < tm.sigma < 30.0
 
 
+@pytest.mark.parametrize("seed", [55, 56, 57])
+def test_trace_source_mask_grows_into_the_faint_ends(seed):
+    # The single-column test (3 sigma) stops where a column still holds a few hundred
+    # electrons; with grow_sigma the run extends while a 9-column running mean stays
+    # significant (hysteresis thresholding, common practice), so columns holding more than
+    # 2 sigma of source (summed over rows) are masked, and it stops where the source has
+    # faded to nothing (seeds 55-57: columns 11-12 .. 168-171; without growth 15-16 .. 163-166).
+    rng = np.random.default_rng(seed)
+    img, source = partial_trace(rng)
+    plain = trace_source_mask(img, rows=(44, 56))
+    grown = trace_source_mask(img, rows=(44, 56), grow_sigma=2.0)
+    column_sum = source.sum(axis=0)
+    assert not plain.columns[column_sum > 2 * 20.0].all()       # the test can fail without growth
+    assert grown.columns[column_sum > 2 * 20.0].all()
+    assert not grown.columns[column_sum < 0.01].any()
+    assert (grown.mask >= plain.mask).all()
+    with pytest.raises(ParameterError, match="grow_width"):
+        trace_source_mask(img, grow_width=0)
+
+
 def test_trace_source_mask_errors():
     img = np.zeros((NY, NX))
     with pytest.raises(ParameterError, match="mask"):
