@@ -39,7 +39,7 @@ from lightledger.pipeline.wavelength import (column_wavelengths, pixel_edges, re
                                              refine_solution)
 
 from .base import ENTRY_NAME, VisitTask, elapsed_of
-from .calibrate import Calibrate, read_chunk
+from .calibrate import Calibrate, chunk_ranges, read_chunk
 from .products import table_hdu, write_fits
 from .references import load_throughput
 
@@ -77,17 +77,15 @@ class ExtractReference(VisitTask):
         n = len(exposures)
         pick = np.unique(np.linspace(0, n - 1, min(N_REFERENCE, n)).round().astype(int))
         frames, masks, inputs = [], [], []
-        offset = 0
-        for k, path in enumerate(paths):
+        ranges = chunk_ranges(n, calib.params["chunk_size"])
+        for k, (path, (start, stop)) in enumerate(zip(paths, ranges)):
             self.progress(k, len(paths), "reading frames for the median")
-            n_chunk = len(read_chunk(path, exposures_only=True))
-            local = pick[(pick >= offset) & (pick < offset + n_chunk)] - offset
-            if local.size:
+            local = pick[(pick >= start) & (pick < stop)] - start
+            if local.size:          # only chunks holding a picked exposure are read, once
                 flux, _, bits, _ = read_chunk(path)
                 frames.append(flux[local])
                 masks.append(_good_frames(flux[local], bits[local]))
                 inputs.append(path)
-            offset += n_chunk
         flux = np.concatenate(frames)
         bad = np.concatenate(masks)
         with np.errstate(all="ignore"), warnings.catch_warnings():
