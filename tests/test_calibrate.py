@@ -264,6 +264,22 @@ def stream_one_over_f(rng, n_reads, ny, nx, row_sigma, column_sigma):
             + pink(n_reads, nx, column_sigma)[:, None, :])
 
 
+def _faint_ended_stare():
+    """A 40x256 staring trace (sigma 1.25 rows) whose spectrum fades at both ends.
+
+    Returns ny, nx, n_reads, read spacing (s), read noise (e-), the rate image
+    (e-/s), the read times and the trace block that a white light curve sums.
+    """
+    ny, nx, nreads, dt, rn = 40, 256, 5, 20.0, 12.0
+    y = np.arange(ny)[:, None]
+    x = np.arange(nx)[None, :]
+    spectrum = 1000.0 / (1 + np.exp(-(x - 22.0) / 1.5)) / (1 + np.exp((x - 238.0) / 1.5))
+    rate = 0.3 + spectrum * np.exp(-0.5 * ((y - 20.0) / 1.25) ** 2) / (1.25 * np.sqrt(2 * np.pi))
+    t = np.arange(nreads) * dt
+    block = (slice(15, 26), slice(26, 235))
+    return ny, nx, nreads, dt, rn, rate, t, block
+
+
 def test_destriping_stream_noise_lowers_white_light_error():
     # A staring trace over nearly all of 256 columns (faint ends usable), read noise 12 e-,
     # 1/f noise of 5 e- along the readout stream and 3 e- along the columns per read (the
@@ -275,13 +291,7 @@ def test_destriping_stream_noise_lowers_white_light_error():
     # see the next test), medians / stream model 3.0-7.1 (row/column medians with the same
     # mask do not beat no correction: the few faint pixels of a trace row give a noisy row
     # median).
-    ny, nx, nreads, dt, rn = 40, 256, 5, 20.0, 12.0
-    y = np.arange(ny)[:, None]
-    x = np.arange(nx)[None, :]
-    spectrum = 1000.0 / (1 + np.exp(-(x - 22.0) / 1.5)) / (1 + np.exp((x - 238.0) / 1.5))
-    rate = 0.3 + spectrum * np.exp(-0.5 * ((y - 20.0) / 1.25) ** 2) / (1.25 * np.sqrt(2 * np.pi))
-    t = np.arange(nreads) * dt
-    block = (slice(15, 26), slice(26, 235))
+    ny, nx, nreads, dt, rn, rate, t, block = _faint_ended_stare()
     kw = kwargs(read_noise=rn, source_rows=(16, 24))
     rng = np.random.default_rng(31)
     err = {"stream": [], "median": [], "off": []}
@@ -312,13 +322,7 @@ def test_stream_destriping_keeps_the_source_flux_monte_carlo():
     # row_pad=0 and no column growth gave -7.5 .. -9.0 ke- (-450 .. -540 ppm, 11-18 standard
     # errors): the profile's wing next to the detected rows and the spectrum's faint ends
     # entered the stripe estimate and were bridged into the trace rows.
-    ny, nx, nreads, dt, rn = 40, 256, 5, 20.0, 12.0
-    y = np.arange(ny)[:, None]
-    x = np.arange(nx)[None, :]
-    spectrum = 1000.0 / (1 + np.exp(-(x - 22.0) / 1.5)) / (1 + np.exp((x - 238.0) / 1.5))
-    rate = 0.3 + spectrum * np.exp(-0.5 * ((y - 20.0) / 1.25) ** 2) / (1.25 * np.sqrt(2 * np.pi))
-    t = np.arange(nreads) * dt
-    block = (slice(15, 26), slice(26, 235))
+    ny, nx, nreads, dt, rn, rate, t, block = _faint_ended_stare()
     kw = kwargs(read_noise=rn, source_rows=(16, 24), destripe="differences")
     rng = np.random.default_rng(31)
     err = {"default": [], "tight": []}
