@@ -22,8 +22,8 @@ from astropy.io import fits
 from astropy.table import Table
 from astropy.time import Time, TimeDelta
 
-from lightledger.pipeline.errors import ParameterError
 from . import detector, model as vm
+from .sizes import resolve_size
 from .scenarios import SCENARIOS, get_scenario
 from .truth import write_truth
 
@@ -184,7 +184,7 @@ def _event_duration(sc):
     return float(sc.period / np.pi * np.arcsin(min(arg, 1.0)))
 
 
-def render(scenario, outdir, *, seed=0, n_exposures=None, progress=None):
+def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progress=None):
     """Render a scenario into a visit directory.
 
     Parameters
@@ -197,7 +197,12 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, progress=None):
     seed : int, optional
         Seed of every random draw; the same seed gives the same files.
     n_exposures : int, optional
-        Exposures of the visit; default the scenario's.
+        Exposures of the visit; default the scenario's (for a changed number
+        of orbits, its default exposures per orbit times the orbits).  The
+        allowed range is :func:`.sizes.exposure_range`.
+    n_orbits : int, optional
+        Orbits of an orbiting (scan) scenario, 1 to
+        :data:`.sizes.MAX_ORBITS`; default the scenario's.
     progress : callable, optional
         Called as ``progress(done, total)`` after each exposure.
 
@@ -210,11 +215,15 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, progress=None):
     ------
     lightledger.pipeline.errors.ParameterError
         For an unknown scenario (the message names the valid ones) or an
-        impossible number of exposures.
+        impossible number of exposures or orbits (the message says the range).
+
+    Notes
+    -----
+    Memory is bounded by one raw file's reads (exposures are rendered and
+    written one file at a time) plus per-exposure tables, whatever the size.
     """
-    sc = get_scenario(scenario)
-    if n_exposures is not None and (int(n_exposures) != n_exposures or n_exposures < 2):
-        raise ParameterError(f"n_exposures must be an integer >= 2; got {n_exposures!r}")
+    sc, n_exposures = resolve_size(get_scenario(scenario), n_exposures=n_exposures,
+                                   n_orbits=n_orbits)
     model = vm.build_visit(sc, seed=seed, n_exposures=n_exposures)
     out = pathlib.Path(outdir)
     (out / "raw").mkdir(parents=True, exist_ok=True)

@@ -75,11 +75,18 @@ def _parser():
                      help="use a central Luigi scheduler (luigid) on this host instead of the local one")
     red.add_argument("--scheduler-port", type=int, default=8082)
 
-    sim = sub.add_parser("simulate", help="render a fictional visit with known truth")
+    sim = sub.add_parser("simulate", help="render a fictional visit with known truth",
+                         description="Render a fictional visit with known truth; the same seed "
+                                     "gives the same files.",
+                         epilog="sizes each scenario accepts:\n  " + "\n  ".join(_size_limits()),
+                         formatter_class=argparse.RawDescriptionHelpFormatter)
     sim.add_argument("scenario", nargs="?", help="scenario name (see --list)")
     sim.add_argument("outdir", nargs="?", help="directory to write the visit into")
     sim.add_argument("--seed", type=int, default=0)
-    sim.add_argument("--exposures", type=int, default=None, help="number of exposures")
+    sim.add_argument("--exposures", type=int, default=None,
+                     help="number of exposures (ranges below; default the scenario's)")
+    sim.add_argument("--orbits", type=int, default=None,
+                     help="orbits of a scan scenario (ranges below; default the scenario's)")
     sim.add_argument("--list", action="store_true", help="list the scenarios and exit")
 
     demo = sub.add_parser("demo", help="render a small scan visit, reduce it, compare with the truth")
@@ -97,6 +104,13 @@ def _parser():
     cmp_.add_argument("a")
     cmp_.add_argument("b")
     return parser
+
+
+def _size_limits():
+    from lightledger.synthetic_data.scenarios import SCENARIOS, get_scenario
+    from lightledger.synthetic_data.sizes import describe_limits
+
+    return describe_limits(get_scenario(name) for name in SCENARIOS)
 
 
 def main(argv=None):
@@ -155,7 +169,7 @@ def _cmd_simulate(args):
         raise LightledgerError("simulate: give an output directory: lightledger simulate SCENARIO OUTDIR")
     progress = Progress()
     visit = render(args.scenario, args.outdir, seed=args.seed, n_exposures=args.exposures,
-                   progress=lambda done, total: progress("simulate", "exposures", done, total))
+                   n_orbits=args.orbits, progress=lambda done, total: progress("simulate", "exposures", done, total))
     print(visit)
     return 0
 
