@@ -27,14 +27,17 @@ Products in ``NOTEBOOK/detrend-IDENT/``:
 """
 
 import time
+from functools import partial
 
 import luigi
 import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
-from lightledger.pipeline.detrend import binned_rms, detrend_light_curve, fit_channels
+from lightledger.pipeline.detrend import fit_channels, fit_light_curve, tied_phase_curve
+from lightledger.pipeline.diagnostics import residual_quality
 from lightledger.pipeline.errors import LightledgerError
+from lightledger.pipeline.systematics import SystematicsInputs, standard_model
 from lightledger.pipeline.transit import eclipse_flux, transit_flux
 
 from .base import ENTRY_NAME, VisitTask
@@ -65,6 +68,40 @@ def _wants_phase_curve(setting, event, bjd):
     if setting == "auto":
         return event["kind"] == "eclipse" and np.ptp(bjd) > 0.1 * event["period"]
     return setting == "on"
+
+
+def systematics_setup(lc, event, params):
+    """The visit's systematics inputs and model, the fit options and the exposures left out.
+
+    Maps the detrend stage's parameters onto a
+    :class:`~lightledger.pipeline.systematics.SystematicsModel`: a stare has no
+    orbit-phase polynomial, scan offset or dropped first orbit; an eclipse
+    fitted jointly with its phase curve hides the planet's flux (the
+    ``planet`` phase-curve model).
+    """
+    t = np.asarray(lc["time_bjd_tdb"], float)
+    orbit = np.asarray(lc["orbit"], int)
+    stare = bool(np.all(np.asarray(lc["scan_direction"]) == 0))
+    scan = not stare and params["scan_offset"]
+    inputs = SystematicsInputs(t, orbit=orbit, orbit_time=np.asarray(lc["orbit_time"], float),
+                               scan_direction=np.asarray(lc["scan_direction"], int) if scan else None)
+    joint = params["fit"] == "joint"
+    phase = (event["t0"], event["period"]) if _wants_phase_curve(params["phase_curve"], event, t) \
+        else None
+    # An eclipse hides the planet's flux at its phase: fit that flux as the phase
+    # curve itself (joint fits only; pipeline/eventfit.py, planet_basis).
+    tie = (phase is not None and event["kind"] == "eclipse" and joint
+           and params["phase_curve_model"] == "planet")
+    model = standard_model(visit_order=params["visit_order"],
+                           orbit_order=max(params["orbit_order"], 0) if not stare else 0,
+                           scan_offset=scan, phase_sinusoids=None if tie else phase,
+                           ramp=params["orbit_ramp"])
+    options = dict(mode="joint" if joint else "out_of_event")
+    if tie:
+        options.update(tied_phase_curve(t, *phase))
+    drop = params["drop_first_orbit"] and not stare and len(np.unique(orbit)) > 2
+    left_out = orbit == np.min(orbit) if drop else np.zeros(t.size, bool)
+    return inputs, model, options, left_out
 
 
 def read_depths(path):
@@ -98,37 +135,20 @@ class Detrend(VisitTask):
         if not np.any(template > 0):
             raise LightledgerError(f"{visit.path}: the {visit.event['kind']} of the ephemeris "
                                    f"(event.t0, event.period) falls outside the visit's exposures")
-        stare = bool(np.all(np.asarray(lc["scan_direction"]) == 0))
-        bad = np.asarray(lc["flux_outlier"], bool)
-        options = dict(orbit=np.asarray(lc["orbit"], int), orbit_time=np.asarray(lc["orbit_time"], float),
-                       scan_direction=None if stare or not params["scan_offset"]
-                       else np.asarray(lc["scan_direction"], int),
-                       visit_order=params["visit_order"], orbit_order=max(params["orbit_order"], 0)
-                       if not stare else 0,
-                       ramp=params["orbit_ramp"],
-                       drop_first_orbit=params["drop_first_orbit"] and not stare
-                       and len(np.unique(lc["orbit"])) > 2,
-                       mode="joint" if params["fit"] == "joint" else "out_of_event",
-                       phase_curve=(visit.event["t0"], visit.event["period"])
-                       if _wants_phase_curve(params["phase_curve"], visit.event, t) else None)
-        # An eclipse hides the planet's flux at its phase: fit that flux as the phase
-        # curve itself (joint fits only; pipeline/detrend.py, tie_phase_curve).
-        options["tie_phase_curve"] = (options["phase_curve"] is not None
-                                      and visit.event["kind"] == "eclipse"
-                                      and options["mode"] == "joint"
-                                      and params["phase_curve_model"] == "planet")
+        inputs, model, options, left_out = systematics_setup(lc, visit.event, params)
+        fit = partial(fit_light_curve, inputs, model=model, **options)
         self.progress(0, 2, "white light curve")
+        bad = np.asarray(lc["flux_outlier"], bool)
         wf = np.asarray(lc["white_flux"], float)
         we = np.asarray(lc["white_error"], float)
-        white = detrend_light_curve(t, wf, we ** 2, template,
-                                    mask=bad | np.asarray(lc["white_mask"], bool), **options)
+        white = fit(wf, we ** 2, template, mask=bad | left_out | np.asarray(lc["white_mask"], bool))
         self.progress(1, 2, "channel light curves")
         flux = np.asarray(lc["flux"], float)
         err = np.asarray(lc["error"], float)
-        mask = np.asarray(lc["mask"], bool) | bad[:, None]
+        mask = np.asarray(lc["mask"], bool) | (bad | left_out)[:, None]
         chans = fit_channels(t, flux, err ** 2, template, mask=mask,
                              divide_white=white.systematics if params["common_mode"] else None,
-                             **options)
+                             fit=fit)
         used = ~np.asarray(white.fit_mask, bool)   # fit_mask is True where left out
 
         det = Table()
@@ -149,17 +169,6 @@ class Detrend(VisitTask):
         for name in ("white_systematics", "white_model", "systematics", "model"):
             det[name].unit = "electron"
 
-        def quality(residual, error, fit_mask):
-            r = np.asarray(residual, float)[fit_mask]
-            e = np.asarray(error, float)[fit_mask]
-            rms = float(np.sqrt(np.mean(r ** 2))) if r.size else np.nan
-            expected = float(np.sqrt(np.mean(e ** 2))) if e.size else np.nan
-            beta = np.nan
-            if r.size >= 12:
-                sizes = np.arange(1, r.size // 4 + 1)
-                beta = float(binned_rms(r / np.median(e), sizes).beta)
-            return rms, expected, beta
-
         rows = []
         fluxes = [(-1, float(lc.meta.get("WLO", channels["wave_lo"][0])),
                    float(lc.meta.get("WHI", channels["wave_hi"][-1])), white,
@@ -168,16 +177,16 @@ class Detrend(VisitTask):
             fluxes.append((j, float(channels["wave_lo"][j]), float(channels["wave_hi"][j]),
                            chans.fits[j], flux[:, j], err[:, j]))
         for j, lo, hi, fit_j, f, e in fluxes:
-            fm = ~np.asarray(fit_j.fit_mask, bool)
-            rms, expected, beta = quality(fit_j.residuals, fit_j.detrended_error, fm)
+            q = residual_quality(fit_j.residuals, fit_j.detrended_error,
+                                 ~np.asarray(fit_j.fit_mask, bool), fit_j.n_params)
             rows.append({"channel": j, "wave_lo": lo, "wave_hi": hi, "wave_mid": 0.5 * (lo + hi),
                          "depth": fit_j.depth, "depth_error": fit_j.depth_error,
-                         "rms_ppm": rms * 1e6,
-                         "rms_dof_ppm": rms * 1e6 * np.sqrt(fm.sum() / max(fm.sum() - fit_j.n_params, 1)),
-                         "expected_ppm": expected * 1e6,
-                         "rms_over_expected": rms / expected if expected else np.nan,
-                         "beta": beta, "reduced_chi2": fit_j.reduced_chi2, "bic": fit_j.bic,
-                         "n_params": fit_j.n_params, "n_used": int(fm.sum()), "tau_min": fit_j.tau * 1440
+                         "rms_ppm": q.rms * 1e6,
+                         "rms_dof_ppm": q.rms * 1e6 * np.sqrt(q.n_used / max(q.n_used - fit_j.n_params, 1)),
+                         "expected_ppm": q.expected * 1e6,
+                         "rms_over_expected": q.rms / q.expected if q.expected else np.nan,
+                         "beta": q.beta, "reduced_chi2": fit_j.reduced_chi2, "bic": fit_j.bic,
+                         "n_params": fit_j.n_params, "n_used": q.n_used, "tau_min": fit_j.tau * 1440
                          if fit_j.tau is not None and np.isfinite(fit_j.tau) else np.nan})
         depths = Table(rows=rows, names=list(rows[0]))
         for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),

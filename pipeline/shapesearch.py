@@ -1,0 +1,139 @@
+"""Choose the nonlinear shape parameters of a systematics model by chi-square.
+
+A systematics model (:mod:`lightledger.pipeline.systematics`) is linear in its
+amplitudes once its few shape parameters (a ramp's time scale, ...) are
+fixed.  :func:`search_shapes` profiles any such fit over them: each parameter
+is taken from its grid by the lowest chi-square, the others held at their
+current values (cycling over the parameters until none moves, at most
+``max_cycles`` times), then refined, where asked, by a bounded
+one-dimensional minimisation between the best value's grid neighbours.
+With one shape parameter this is a plain grid search plus an optional
+refinement.  The caller then repeats the fit at the chosen values with the
+columns' derivatives, so that the covariance is marginalised over the shape
+parameters to first order (:func:`lightledger.pipeline.eventfit.fit_event`,
+``basis_derivatives``).
+
+Pure functions; the fit is a callable, so the single-visit fit and the joint
+programme fit share this search.
+"""
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import minimize_scalar
+
+from .errors import ParameterError
+
+__all__ = ["ShapeSearch", "search_shapes"]
+
+
+@dataclass(frozen=True)
+class ShapeSearch:
+    """Outcome of :func:`search_shapes`.
+
+    Attributes
+    ----------
+    values : dict of str to float
+        Chosen value of every shape parameter, by qualified name.
+    result : object
+        The fit at those values (whatever ``evaluate`` returned).
+    chosen_from_data : bool
+        True when some parameter had more than one grid value or was refined,
+        i.e. its uncertainty should be carried into the covariance.
+    n_fits : int
+        Number of fits evaluated.
+    """
+
+    values: dict
+    result: object
+    chosen_from_data: bool
+    n_fits: int
+
+
+def search_shapes(evaluate, params, *, max_cycles=3):
+    """Profile a fit over shape parameters.
+
+    Parameters
+    ----------
+    evaluate : callable
+        ``evaluate(values) -> result`` with ``values`` a dict of qualified
+        name to value; ``result.chi2`` is minimised.
+    params : sequence of (str, ShapeParam)
+        Qualified names and parameters (e.g.
+        :meth:`lightledger.pipeline.systematics.SystematicsModel.shape_params`).
+    max_cycles : int, optional
+        Passes over the parameters at most (several parameters only).
+
+    Returns
+    -------
+    ShapeSearch
+        With no parameters, the single fit at ``{}``.
+
+    Notes
+    -----
+    Cost: one fit per grid value of each parameter per cycle, plus about 20
+    per refined parameter.  A coordinate-wise search finds the joint minimum
+    when the parameters are weakly coupled (different components); strongly
+    coupled parameters of one component are better searched on a joint grid
+    by the component itself.
+    """
+    params = tuple(params)
+    grids = {}
+    for name, sp in params:
+        g = np.asarray(sp.grid, dtype=float).ravel()
+        if g.size < 1 or not np.all(np.isfinite(g)) or (sp.log and np.any(g <= 0)):
+            raise ParameterError(f"the grid of {name} must hold finite values"
+                                 + (" > 0" if sp.log else ""))
+        grids[name] = np.unique(g)
+    count = [0]
+    cache = {}
+
+    def run(values):
+        key = tuple(values[n] for n, _ in params)
+        if key not in cache:
+            cache[key] = evaluate(dict(values))
+            count[0] += 1
+        return cache[key]
+
+    if not params:
+        return ShapeSearch({}, run({}), False, count[0])
+    # Start from the grid's middle value of each parameter; with one parameter
+    # the starting point is irrelevant.
+    values = {name: float(grids[name][(grids[name].size - 1) // 2]) for name, _ in params}
+    best_idx = {}
+    for _cycle in range(int(max_cycles) if len(params) > 1 else 1):
+        moved = False
+        for name, _sp in params:
+            fits = []
+            for g in grids[name]:
+                trial = dict(values)
+                trial[name] = float(g)
+                fits.append(run(trial).chi2)
+            i = int(np.argmin(fits))
+            if float(grids[name][i]) != values[name]:
+                moved = True
+            values[name] = float(grids[name][i])
+            best_idx[name] = i
+        if not moved:
+            break
+    for name, sp in params:
+        grid = grids[name]
+        if not (sp.refine and grid.size > 1):
+            continue
+        i = best_idx[name]
+        lo, hi = grid[max(i - 1, 0)], grid[min(i + 1, grid.size - 1)]
+        fwd, back = (np.log, np.exp) if sp.log else ((lambda x: x), (lambda x: x))
+
+        def chi(x, name=name, back=back):
+            trial = dict(values)
+            trial[name] = float(back(x))
+            return run(trial).chi2
+
+        opt = minimize_scalar(chi, bounds=(fwd(lo), fwd(hi)), method="bounded",
+                              options={"xatol": 1e-6})
+        trial = dict(values)
+        trial[name] = float(back(opt.x))
+        if run(trial).chi2 < run(values).chi2:
+            values = trial
+    from_data = any(grids[n].size > 1 or sp.refine for n, sp in params)
+    return ShapeSearch(values, run(values), from_data, count[0])
