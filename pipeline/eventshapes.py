@@ -5,9 +5,7 @@ fraction of the star's flux a transit blocks, scaled to 1 at its deepest
 point, or the fraction of the planet hidden by the star during an eclipse.
 :func:`lightledger.pipeline.eventfit.fit_event` multiplies it by a fitted
 depth.  The phase sinusoids describe the planet's own flux as a function of
-orbital phase (Cowan & Agol 2008).  The full-orbit model, with every transit
-and eclipse of a visit and a fitted radius ratio, is
-:mod:`lightledger.pipeline.phasecurve`.
+orbital phase (Cowan & Agol 2008).
 
 Times are days; shapes are dimensionless.  Inputs are not modified.
 """

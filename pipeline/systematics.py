@@ -12,8 +12,7 @@ The model of the flux is then :math:`S_i = F_0 (1 + \\sum_k b_k X_{ik})` with
 :math:`X` the design matrix, i.e. the systematics are additive terms in units
 of the flux level, linear in their amplitudes for fixed shape parameters.
 The fits that consume a model (:func:`lightledger.pipeline.detrend.fit_light_curve`
-for one visit, :func:`lightledger.pipeline.programme.fit_programme` for
-several visits sharing one planet) profile the chi-square over the shape
+for one visit, and the joint fit of several visits sharing one planet) profile the chi-square over the shape
 parameters (:func:`lightledger.pipeline.shapesearch.search_shapes`) and
 carry their uncertainty into the covariance from the columns' derivatives.
 
