@@ -20,13 +20,14 @@ from dataclasses import dataclass
 import numpy as np
 from astropy.time import Time, TimeDelta
 
-from lightledger.pipeline import transit
+from lightledger.pipeline import transit, traps
+from lightledger.pipeline.errors import ParameterError
 from . import detector, scene, spectra, timing
 from .scenarios import Scenario
 
 __all__ = ["VisitModel", "build_visit", "wavelength_of_column", "source_rate",
            "astrophysical_signal", "band_weights", "source_charge", "expected_charge",
-           "flat_at"]
+           "flat_at", "RAMPS", "trap_fractions"]
 
 
 @dataclass(frozen=True)
@@ -68,6 +69,14 @@ class VisitModel:
         ramp_visit, ramp_orbit, orbit_phase_poly, scan_offset, systematics
         (the product).
     cosmics : detector.CosmicRays
+    ramps : str
+        "exponential" (the scenario's per-orbit exponentials in
+        ``systematics["ramp_orbit"]``) or "traps" (charge trapping, below).
+    trap_fraction : ndarray (n_exposures, n_columns) or None
+        With ``ramps == "traps"``: recorded over incident charge of each
+        column (:func:`lightledger.pipeline.traps.trap_history`, Zhou et al.
+        2017), chromatic because the traps fill at each column's own rate;
+        ``ramp_orbit`` is then 1.
     """
 
     scenario: Scenario
@@ -91,6 +100,8 @@ class VisitModel:
     dy: np.ndarray
     systematics: dict
     cosmics: detector.CosmicRays
+    ramps: str = "exponential"
+    trap_fraction: object = None
 
     @property
     def n_exposures(self):
@@ -214,8 +225,22 @@ def flat_at(sc, flat, wave):
     return sum(flat[k].astype(float) * w[None, :] ** k for k in range(flat.shape[0]))
 
 
-def build_visit(sc, *, seed=0, n_exposures=None):
-    """The noise-free plan of a visit (see :class:`VisitModel`)."""
+#: Ways of rendering the ramps at the start of each orbit.
+RAMPS = ("exponential", "traps")
+
+
+def build_visit(sc, *, seed=0, n_exposures=None, ramps="exponential"):
+    """The noise-free plan of a visit (see :class:`VisitModel`).
+
+    ``ramps`` is "exponential" (the scenario's per-orbit exponentials) or
+    "traps" (charge trapping with the scenario's trap populations, see
+    :func:`trap_fractions`).
+    """
+    if ramps not in RAMPS:
+        raise ParameterError(f"ramps must be one of {', '.join(RAMPS)}; got {ramps!r}")
+    if ramps == "traps" and not sc.trap_populations:
+        raise ParameterError(f"scenario {sc.name} has no trap populations; ramps='traps' needs one "
+                             f"that does (the scan scenarios)")
     n_exp = int(n_exposures or sc.default_n_exposures)
     streams = np.random.SeedSequence(seed).spawn(4)
     rng_refs, rng_cr, rng_drift = (np.random.default_rng(s) for s in streams[:3])
@@ -270,6 +295,8 @@ def build_visit(sc, *, seed=0, n_exposures=None):
     since = tmid - sched.orbit_start
     amp = np.asarray(sc.orbit_ramp)[np.minimum(sched.orbit, len(sc.orbit_ramp) - 1)]
     ramp_orbit = 1.0 - amp * np.exp(-since / sc.orbit_ramp_tau)
+    if ramps == "traps":
+        ramp_orbit = np.ones(n_exp)
     if sc.orbit_period > 0 and sc.orbit_poly:
         xph = since / sc.orbit_period - 0.25
         orbit_poly = 1.0 + sum(c * xph ** (k + 1) for k, c in enumerate(sc.orbit_poly))
@@ -293,12 +320,54 @@ def build_visit(sc, *, seed=0, n_exposures=None):
                                         shape=sc.sub_shape, hits_per_exposure=sc.cr_per_exposure,
                                         median_electrons=sc.cr_median)
     columns = x0 + np.arange(nx, dtype=float)
+    trap_fraction = None
+    if ramps == "traps":
+        incident = (source_rate(sc, columns)[None, :]
+                    * astrophysical_signal(sc, t0, bjd, wavelength_of_column(sc, columns))
+                    * systematics["systematics"][:, None])
+        trap_fraction = trap_fractions(sc, incident, start, xpos, sched.orbit)
     return VisitModel(scenario=sc, seed=int(seed), refs=refs, columns=columns,
                       wave=wavelength_of_column(sc, columns), read_times=read_times,
                       exposure_time=xpos, velocity=velocity, direction=direction,
                       date_beg=t_beg.isot, start=start, orbit=sched.orbit,
                       orbit_start=sched.orbit_start, mjd_utc=mjd, bjd_tdb=bjd, obsgeo=obsgeo,
-                      t0=t0, dx=dx, dy=dy, systematics=systematics, cosmics=cosmics)
+                      t0=t0, dx=dx, dy=dy, systematics=systematics, cosmics=cosmics,
+                      ramps=ramps, trap_fraction=trap_fraction)
+
+
+def trap_fractions(sc, column_rate, start, exposure_time, orbit):
+    """Charge-trapping ramp of every column: recorded over incident charge.
+
+    Parameters
+    ----------
+    sc : Scenario
+        With ``trap_populations``, ``trap_initial`` and ``trap_refill``.
+    column_rate : ndarray (n_exposures, n_columns)
+        Incident source electrons per second on each column.
+    start : ndarray (n_exposures,)
+        Zero-read times, s.
+    exposure_time : float
+        XPOSURE, s.
+    orbit : ndarray of int (n_exposures,)
+
+    Returns
+    -------
+    ndarray (n_exposures, n_columns)
+
+    Notes
+    -----
+    Each pixel of a column receives the column's rate spread over the rows
+    it lights during an exposure: the scanned band (``scan_length`` rows) or,
+    staring, the Gaussian trace's equivalent width sqrt(2 pi) sigma; the traps
+    see that mean rate per pixel, as in the scan treatment of Zhou et al.
+    2017 (sky and dark are too faint to fill them and are left out).
+    """
+    rows = max(sc.scan_length, np.sqrt(2 * np.pi) * sc.psf_sigma)
+    pops = [traps.TrapPopulation(*p) for p in sc.trap_populations]
+    hist = traps.trap_history(np.asarray(column_rate, float) / rows, start, exposure_time, pops,
+                              initial=sc.trap_initial or None, refill=sc.trap_refill or None,
+                              orbit=orbit)
+    return hist.recorded_fraction
 
 
 def trace_centre(model, index, columns=None):
@@ -337,6 +406,8 @@ def source_charge(model, index, *, velocity=None, with_flat=True):
     rate = (source_rate(sc, xs)
             * astrophysical_signal(sc, model.t0, model.bjd_tdb[index:index + 1], wave_true)[0]
             * model.systematics["systematics"][index])
+    if model.trap_fraction is not None:
+        rate = rate * model.trap_fraction[index]
     v = model.velocity[index] if velocity is None else velocity
     charge = scene.scan_charge(rate, trace_centre(model, index), v, sc.psf_sigma,
                                sc.sub_shape[0], model.read_times)

@@ -184,7 +184,8 @@ def _event_duration(sc):
     return float(sc.period / np.pi * np.arcsin(min(arg, 1.0)))
 
 
-def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progress=None):
+def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progress=None,
+           ramps="exponential"):
     """Render a scenario into a visit directory.
 
     Parameters
@@ -205,6 +206,11 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
         :data:`.sizes.MAX_ORBITS`; default the scenario's.
     progress : callable, optional
         Called as ``progress(done, total)`` after each exposure.
+    ramps : {"exponential", "traps"}, optional
+        Render the ramps at the start of each orbit as the scenario's
+        exponentials (default) or with its charge-trapping populations
+        (Zhou et al. 2017; scan scenarios), a ramp that no exponential
+        describes exactly and that differs from channel to channel.
 
     Returns
     -------
@@ -224,7 +230,7 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
     """
     sc, n_exposures = resolve_size(get_scenario(scenario), n_exposures=n_exposures,
                                    n_orbits=n_orbits)
-    model = vm.build_visit(sc, seed=seed, n_exposures=n_exposures)
+    model = vm.build_visit(sc, seed=seed, n_exposures=n_exposures, ramps=ramps)
     out = pathlib.Path(outdir)
     (out / "raw").mkdir(parents=True, exist_ok=True)
     (out / "calibration").mkdir(parents=True, exist_ok=True)

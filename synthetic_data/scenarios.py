@@ -107,6 +107,10 @@ class Scenario:
     drift_y: tuple
     # binning
     channel_edges: tuple = field(default=())
+    # charge trapping, for ramps rendered with traps (synthetic_data/model.py)
+    trap_populations: tuple = ()      # ((traps e-/pixel, efficiency, release time s), ...)
+    trap_initial: tuple = ()          # e-/pixel trapped per population when the visit starts
+    trap_refill: tuple = ()           # e-/pixel added per population at each later orbit's start
 
 
 SCAN = Scenario(
@@ -144,6 +148,8 @@ SCAN = Scenario(
     orbit_poly=(6.0e-4, -1.2e-3), reverse_offset=-2.5e-3,
     drift_x=(0.06, 0.03, 0.01), drift_y=(0.04, 0.02, 0.01),
     channel_edges=tuple(round(1.15 + 0.05 * k, 4) for k in range(11)),
+    trap_populations=((130.0, 0.007, 420.0), (1200.0, 0.010, 14000.0)),
+    trap_initial=(0.0, 300.0), trap_refill=(50.0, 150.0),
 )
 
 STARE = Scenario(

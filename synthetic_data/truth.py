@@ -26,10 +26,17 @@ white_astro         -          astrophysical signal alone in the white band,
                                eclipse)
 ramp_visit          -          visit-long quadratic ramp (multiplier)
 ramp_orbit          -          per-orbit exponential ramp (for a stare: the
-                               settling ramp at the start of the visit)
+                               settling ramp at the start of the visit); 1
+                               when the ramps are rendered with traps
+ramp_traps          -          charge-trapping ramp, recorded over incident
+                               source electrons in the white band (1 unless
+                               the ramps are rendered with traps; then each
+                               column has its own, see model.trap_fractions)
 orbit_phase_poly    -          polynomial in orbit phase (1 for a stare)
 scan_offset         -          1 + offset for reverse scans, 1 otherwise
-systematics         -          product of the four multipliers
+systematics         -          product of the four multipliers (the
+                               achromatic part; times the column's trapping
+                               ramp where it applies)
 dx, dy              pixel      spectral (column) and spatial (row) drift of
                                the trace relative to the nominal position
 white_sigma         electron   expected noise of an ideal optimal extraction
@@ -47,8 +54,8 @@ Header: WDEPTH (the same for the white band), WLO, WHI (um).
 HDU ``COSMICS``: exposure (index), read (first read holding the charge),
 y, x (subarray row, column), electrons.
 
-Primary header: SCENARIO, SEED, SWVERS (software version), KIND, T0 (BJD_TDB
-of mid-transit), PERIOD (d), RP_RS, A_RS, INCL (deg), U1, U2, XPOSURE (s).
+Primary header: SCENARIO, SEED, SWVERS (software version), RAMPS
+("exponential" or "traps"), KIND, T0 (BJD_TDB of mid-transit), PERIOD (d), RP_RS, A_RS, INCL (deg), U1, U2, XPOSURE (s).
 
 Notes
 -----
@@ -121,11 +128,15 @@ def truth_columns(model):
     rate = vm.source_rate(sc, cols)
     astro = vm.astrophysical_signal(sc, model.t0, model.bjd_tdb, model.wave)   # (n_exp, nx)
     sys = model.systematics["systematics"]
-    per_col = rate[None, :] * astro * sys[:, None] * model.exposure_time
+    traps = (np.ones_like(astro) if model.trap_fraction is None
+             else np.asarray(model.trap_fraction, float))
+    incident = rate[None, :] * astro * sys[:, None] * model.exposure_time
+    per_col = incident * traps
     white = per_col @ w_white
     chan = per_col @ w_chan.T
     white_astro = (astro * rate) @ w_white / (rate @ w_white)
-    var = np.stack([_column_variance(model, i, rate * astro[i] * sys[i])
+    ramp_traps = white / (incident @ w_white)
+    var = np.stack([_column_variance(model, i, rate * astro[i] * sys[i] * traps[i])
                     for i in range(model.n_exposures)])
     white_sigma = np.sqrt(var @ w_white ** 2)
     chan_sigma = np.sqrt(var @ (w_chan ** 2).T)
@@ -144,6 +155,7 @@ def truth_columns(model):
     out = dict(time_bjd_tdb=model.bjd_tdb, time_mjd_utc=model.mjd_utc, orbit=model.orbit,
                scan_direction=model.direction, white_flux=white, white_astro=white_astro)
     out.update(model.systematics)
+    out["ramp_traps"] = ramp_traps
     out.update(dx=model.dx, dy=model.dy, white_sigma=white_sigma, channel_flux=chan,
                channel_sigma=chan_sigma, weights_white=w_white, weights_channels=w_chan,
                depth=depth, wdepth=wdepth)
@@ -160,8 +172,8 @@ def write_truth(model, path):
                  dy="pixel", white_sigma="count", channel_flux="count",
                  channel_sigma="count")
     names = ["time_bjd_tdb", "time_mjd_utc", "orbit", "scan_direction", "white_flux",
-             "white_astro", "ramp_visit", "ramp_orbit", "orbit_phase_poly", "scan_offset",
-             "systematics", "dx", "dy", "white_sigma", "channel_flux", "channel_sigma"]
+             "white_astro", "ramp_visit", "ramp_orbit", "ramp_traps", "orbit_phase_poly",
+             "scan_offset", "systematics", "dx", "dy", "white_sigma", "channel_flux", "channel_sigma"]
     cols = []
     for name in names:
         arr = np.asarray(tr[name])
@@ -194,6 +206,7 @@ def write_truth(model, path):
     h["SCENARIO"] = (sc.name, "forward-model scenario")
     h["SEED"] = (model.seed, "random seed of the rendering")
     h["SWVERS"] = (__version__, "lightledger version")
+    h["RAMPS"] = (model.ramps, "how the orbit ramps were rendered")
     h["KIND"] = (sc.kind, "transit or eclipse")
     h["T0"] = (model.t0, "[d] BJD_TDB of mid-transit")
     h["PERIOD"] = (sc.period, "[d] orbital period")

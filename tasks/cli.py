@@ -87,6 +87,9 @@ def _parser():
                      help="number of exposures (ranges below; default the scenario's)")
     sim.add_argument("--orbits", type=int, default=None,
                      help="orbits of a scan scenario (ranges below; default the scenario's)")
+    sim.add_argument("--ramps", choices=("exponential", "traps"), default="exponential",
+                     help="render the orbit ramps as exponentials (default) or by charge trapping "
+                          "(scan scenarios: two trap populations, a ramp that differs per channel)")
     sim.add_argument("--list", action="store_true", help="list the scenarios and exit")
 
     demo = sub.add_parser("demo", help="render a small scan visit, reduce it, compare with the truth")
@@ -169,7 +172,8 @@ def _cmd_simulate(args):
         raise LightledgerError("simulate: give an output directory: lightledger simulate SCENARIO OUTDIR")
     progress = Progress()
     visit = render(args.scenario, args.outdir, seed=args.seed, n_exposures=args.exposures,
-                   n_orbits=args.orbits, progress=lambda done, total: progress("simulate", "exposures", done, total))
+                   n_orbits=args.orbits, ramps=args.ramps,
+                   progress=lambda done, total: progress("simulate", "exposures", done, total))
     print(visit)
     return 0
 

@@ -131,6 +131,46 @@ def test_truth_white_flux_is_rendered_charge(scan_model):
                                    rtol=1e-9)
 
 
+def test_trap_ramps_render_the_trapping_model():
+    # The charge-trapping option (Zhou et al. 2017, AJ 153, 243): every column's
+    # rendered charge is its exponential-free charge times the recorded fraction
+    # of the published trap equations (lightledger.pipeline.traps, tested against
+    # a hand computation there) at the column's rate per pixel, and the truth
+    # counts exactly what is rendered (conservation, as above).  Fainter columns
+    # fill their traps more slowly and lose a larger fraction: the ramp differs
+    # per channel, so that no achromatic exponential describes it.
+    from lightledger.pipeline.traps import TrapPopulation, trap_history
+    from lightledger.synthetic_data.truth import truth_columns
+    sc = get_scenario("scan-transit")
+    n = 24
+    traps = vm.build_visit(sc, seed=5, n_exposures=n, ramps="traps")
+    plain = vm.build_visit(sc, seed=5, n_exposures=n)
+    assert np.all(traps.systematics["ramp_orbit"] == 1.0)
+    no_ramp = plain.systematics["systematics"] / plain.systematics["ramp_orbit"]
+    np.testing.assert_allclose(traps.systematics["systematics"], no_ramp, rtol=1e-12)
+    incident = (vm.source_rate(sc, traps.columns)[None, :]
+                * vm.astrophysical_signal(sc, traps.t0, traps.bjd_tdb, traps.wave) * no_ramp[:, None])
+    pops = [TrapPopulation(*p) for p in sc.trap_populations]
+    ref = trap_history(incident / sc.scan_length, traps.start, traps.exposure_time, pops,
+                       initial=sc.trap_initial, refill=sc.trap_refill, orbit=traps.orbit)
+    np.testing.assert_allclose(traps.trap_fraction, ref.recorded_fraction, rtol=1e-12)
+    for i in (0, 7):
+        a = vm.source_charge(traps, i, with_flat=False)[-1].sum(axis=0)
+        b = vm.source_charge(plain, i, with_flat=False)[-1].sum(axis=0) / plain.systematics["ramp_orbit"][i]
+        np.testing.assert_allclose(a, b * traps.trap_fraction[i], rtol=1e-9)
+    loss = 1 - traps.trap_fraction[0]
+    lit = vm.source_rate(sc, traps.columns) > 0.2 * vm.source_rate(sc, traps.columns).max()
+    rate = vm.source_rate(sc, traps.columns)[lit]
+    assert loss[lit][np.argmin(rate)] > 1.2 * loss[lit][np.argmax(rate)]
+    still = dataclasses.replace(traps, dx=np.zeros(n), dy=np.zeros(n))
+    tr = truth_columns(still)
+    per_column = vm.source_charge(still, 3, with_flat=False)[-1].sum(axis=0)
+    assert per_column @ tr["weights_white"] == pytest.approx(tr["white_flux"][3], rel=1e-9)
+    assert 0.98 < tr["ramp_traps"][0] < tr["ramp_traps"][5] < 1.0
+    with pytest.raises(ParameterError, match="no trap populations"):
+        vm.build_visit(get_scenario("stare-eclipse"), n_exposures=10, ramps="traps")
+
+
 def test_nonlinearity_round_trip():
     # The layout's convention linear = e (1 + sum C[k-1] e^k): applying the numerical
     # inverse and then the forward polynomial returns the input to 1e-6 relative.
