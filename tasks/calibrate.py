@@ -33,7 +33,7 @@ from lightledger.pipeline.calibrate import calibrate_exposure
 from .base import ENTRY_NAME, VisitTask, elapsed_of
 from .geometry import expected_source_rows
 from .products import table_hdu, write_ecsv, write_fits
-from .rawio import inventory, inventory_table, read_exposure, refs_from_table
+from .rawio import inventory, inventory_table, read_exposures, refs_from_table
 from .references import load_references
 
 __all__ = ["Inventory", "CalibrateChunk", "Calibrate", "chunk_ranges", "read_chunk",
@@ -132,10 +132,10 @@ class CalibrateChunk(VisitTask):
         var = np.empty_like(flux)
         bits = np.empty((len(refs), ny, nx), np.uint16)
         rows = []
+        chunk_reads = read_exposures(refs, visit.profile)     # each raw file opened once
         for i, exp in enumerate(refs):
             self.progress(i, len(refs), f"chunk {self.chunk} exposures")
-            reads = read_exposure(exp, visit.profile)
-            cal = calibrate_reads(visit, params, ref, exp, reads)
+            cal = calibrate_reads(visit, params, ref, exp, chunk_reads[i])
             flux[i], var[i], bits[i] = cal.flux, cal.variance, cal.bits
             row = {"exposure": start + i, "start_mjd_utc": exp.start_mjd,
                    "mid_offset": cal.mid_time_offset, "integration_time": cal.integration_time,

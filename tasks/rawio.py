@@ -25,8 +25,8 @@ from astropy.time import Time
 
 from lightledger.pipeline.errors import InputFileError
 
-__all__ = ["ExposureRef", "inventory", "read_exposure", "sha256_of", "inventory_table",
-           "refs_from_table"]
+__all__ = ["ExposureRef", "inventory", "read_exposure", "read_exposures", "sha256_of",
+           "inventory_table", "refs_from_table"]
 
 
 @dataclass(frozen=True)
@@ -276,3 +276,41 @@ def refs_from_table(table, raw_dir):
                                 obsgeo=None if np.isnan(geo).any() else tuple(geo),
                                 shape=tuple(int(v) for v in row["shape"])))
     return refs
+
+
+def read_exposures(refs, profile, dtype=np.float32):
+    """The reads of several exposures (a chunk), opening each raw file once.
+
+    Parameters
+    ----------
+    refs : sequence of ExposureRef
+        Exposures of one frame shape, in the order wanted.
+    profile : lightledger.tasks.config.Profile
+    dtype : numpy dtype, optional
+        Of the returned reads.  float32 (the default) holds raw ADU exactly up
+        to 2**24.
+
+    Returns
+    -------
+    reads : ndarray of shape (n_exposures, n_reads, ny, nx), ADU
+    """
+    out = np.empty((len(refs),) + tuple(refs[0].shape), dtype=dtype) if refs else np.empty(0, dtype)
+    by_file = {}
+    for i, ref in enumerate(refs):
+        by_file.setdefault(ref.file, []).append(i)
+    name = profile.extension("READS")
+    for file, slots in by_file.items():
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                with fits.open(file, memmap=True) as hdul:
+                    data = hdul[name].data
+                    for i in slots:
+                        ref = refs[i]
+                        block = data[ref.index] if ref.index >= 0 else data
+                        if block.shape != ref.shape:
+                            raise InputFileError(f"{file}: READS changed shape since the inventory")
+                        out[i] = block
+        except (OSError, ValueError, KeyError, TypeError, IndexError) as exc:
+            raise InputFileError(f"{file}: cannot read the {name} data ({exc})") from None
+    return out
