@@ -199,7 +199,7 @@ STAGES = {
         Param("align", True, "bool",
               "resample each spectrum onto the reference grid with its own measured shift"),
     )),
-    "bin": StageSpec("bin", "1", "spectra to channel light curves", (
+    "bin": StageSpec("bin", "2", "spectra to channel light curves", (
         Param("edges", (), "floats", "channel edges in micrometres (takes precedence when given)",
               minimum=0.0),
         Param("width", 0.0, "float", "uniform channel width in micrometres (used when edges is empty)",
