@@ -47,7 +47,7 @@ class BackgroundEstimate:
     level : float
         Median of ``background``.
     bits : ndarray of shape (ny, nx), uint16
-        BACKGROUND_OUTLIER where a pixel offered to the estimator was rejected
+        SKY_CLIPPED where a pixel offered to the estimator was rejected
         by the clipping.
     n_used : int
         Number of pixels that entered the estimate.
@@ -457,10 +457,9 @@ def clipped_mean(data, mask, *, axis=0, sigma=3.0, maxiters=5):
     For 100 x 180 values along axis 0: about 0.5 ms, half the time of the
     direct method.
 
-    References
-    ----------
-    astropy.stats.sigma_clipped_stats (``cenfunc="median"``,
-    ``stdfunc="mad_std"``) computes the same clipped statistics.
+    The same clipped statistics are computed by astropy's
+    ``sigma_clipped_stats`` with ``cenfunc="median"`` and
+    ``stdfunc="mad_std"`` (the tests compare the two).
     """
     x = np.asarray(data, dtype=float)
     bad = np.asarray(mask, dtype=bool) | ~np.isfinite(x)
@@ -705,7 +704,7 @@ def estimate_background(image, *, mask=None, source_mask=None, method="rowcol", 
     Mask contract: pixels where ``mask`` (bad pixels) or ``source_mask``
     (the trace) is True, and non-finite pixels, are not used; pixels offered
     to the estimator and rejected by its sigma clipping get
-    BACKGROUND_OUTLIER.  The inputs are not modified.
+    SKY_CLIPPED.  The inputs are not modified.
 
     Parameters
     ----------
@@ -763,9 +762,14 @@ def estimate_background(image, *, mask=None, source_mask=None, method="rowcol", 
     last columns, where the boxcar is one-sided) adds a model error that is
     not included.
 
+    The "2d" method is the mesh-of-clipped-medians background of Bertin &
+    Arnouts 1996, computed by the design card's photutils (Background2D with
+    astropy's sigma clipping).
+
     References
     ----------
-    photutils.background.Background2D; astropy.stats.SigmaClip.
+    Bertin, E. & Arnouts, S. 1996, A&AS 117, 393 (background from a mesh of
+    clipped medians, median-filtered and interpolated; from memory).
     """
     if method not in METHODS:
         raise ParameterError(f"method must be one of {METHODS}; got {method!r}")
@@ -788,6 +792,6 @@ def estimate_background(image, *, mask=None, source_mask=None, method="rowcol", 
         bkg, var, kept = _two_d(img, bad, sigma, maxiters, box_size, filter_size)
         level = float(np.nanmedian(bkg))
     bits = (offered & ~kept).view(np.uint8).astype(dq.MASK_DTYPE)
-    bits *= dq.MASK_DTYPE(dq.BACKGROUND_OUTLIER)  # 0 or the one bit
+    bits *= dq.MASK_DTYPE(dq.SKY_CLIPPED)  # 0 or the one bit
     return BackgroundEstimate(background=bkg, variance=var, level=level,
                               bits=bits, n_used=int(np.count_nonzero(kept)))

@@ -42,7 +42,7 @@ class CalibratedExposure:
     flux : ndarray of float64
         Electrons collected from read 0 to the last read (staring: rate times
         ``integration_time``), dark and background subtracted, divided by the
-        flat.  NaN where no value could be formed (SHORT_RAMP, NOT_FINITE).
+        flat.  NaN where no value could be formed (NO_SLOPE, INVALID_VALUE).
     variance : ndarray of float64
         Variance of ``flux``, e-**2, including the background estimate's.
     bits : ndarray of uint16
@@ -104,9 +104,9 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
                        mask_options=None, destripe_options=None):
     """Calibrate one raw exposure of cumulative reads into electrons per pixel.
 
-    Mask contract: pixels with a nonzero ``bad_pixels`` value get UNUSABLE
+    Mask contract: pixels with a nonzero ``bad_pixels`` value get LISTED_BAD
     (their values are still computed); NaN or infinite raw values or reference
-    values give NOT_FINITE; pixels with no usable difference give SHORT_RAMP
+    values give INVALID_VALUE; pixels with no usable difference give NO_SLOPE
     and NaN flux and variance.  Pixels with any of
     :data:`lightledger.pipeline.mask.UNUSABLE_FLAGS` and the source rows are left
     out of the background estimate; bad, saturated and source pixels (a
@@ -318,7 +318,7 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         flux, var = res.flux, res.variance
         bits = res.bits.copy()
         bkg = res.background_map
-        covered = (bits & dq.OUTSIDE_BAND) == 0
+        covered = (bits & dq.UNSCANNED) == 0
         level = float(np.median(bkg[covered])) if covered.any() else 0.0
         mid = float(np.mean(t))
     else:
@@ -334,7 +334,7 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         flux = (fit.rate - dark) * T / fl_safe
         var = fit.rate_variance * (T / fl_safe) ** 2
         bits = fit.bits.copy()
-        bits[ref_bad] |= dq.NOT_FINITE
+        bits[ref_bad] |= dq.INVALID_VALUE
         flux = np.where(ref_bad, np.nan, flux)
         var = np.where(ref_bad, np.nan, var)
         if destripe == "frame":
@@ -354,7 +354,7 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         usable = ~dq.to_boolean(bits) & ~badref
         mt = fit.mean_read_time[usable]
         mid = float(np.median(mt)) if mt.size else float(np.mean(t))
-    bits[badref] |= dq.UNUSABLE
+    bits[badref] |= dq.LISTED_BAD
     return CalibratedExposure(flux=flux, variance=var, bits=bits, background=bkg,
                               background_level=level, integration_time=float(t[-1]),
                               mid_time_offset=mid, flag_counts=dq.count_by_flag(bits))

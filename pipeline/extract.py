@@ -122,7 +122,7 @@ class Spectrum:
         extraction, ones for box extraction (every pixel weighted 1).
     rejected : ndarray of bool, shape (n_exposures, n_rows, n_columns)
         True for pixels rejected as outliers (to be flagged
-        ``mask.EXTRACTION_OUTLIER`` by the caller).
+        ``mask.PROFILE_REJECT`` by the caller).
     row_lo : int
         Row of the input frame where the aperture (the first row of
         ``profile``) starts.

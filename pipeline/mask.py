@@ -5,58 +5,81 @@ not be trusted.  A boolean mask (True = do not use) is obtained with
 :func:`to_boolean`, which wraps
 :func:`astropy.nddata.bitmask.bitfield_to_boolean_mask`.
 
-=====  ===================  ====================================================
-bit    name                 meaning
-=====  ===================  ====================================================
-1      UNUSABLE             listed in the bad-pixel reference file
-2      SATURATED            one or more reads above the saturation level were
-                            dropped from the ramp
-4      JUMP                 a cosmic-ray jump was found and the ramp split there
-8      SHORT_RAMP           fewer than two usable reads remain: no slope
-16     BACKGROUND_OUTLIER   rejected by the background estimator's clipping
-32     NOT_FINITE           the raw data or a reference value was NaN or inf
-64     EXTRACTION_OUTLIER   rejected by the profile fit of optimal extraction
-128    FILLED               value replaced from the spatial profile
-256    OUTSIDE_BAND         outside the rows that a scan crossed (scan mode)
-=====  ===================  ====================================================
+The bits run from the mildest to the gravest: the low six are informative (the
+pixel still holds a usable value), the high three make a pixel unusable.
 
-Bits 1, 8 and 32 make a pixel unusable for extraction; the others are
-informative (a SATURATED or JUMP pixel still has a valid slope from its clean
-reads).
+=====  ===============  ======================================================
+value  name             meaning
+=====  ===============  ======================================================
+1      UNSCANNED        outside the rows that a scan crossed (scan mode)
+2      SKY_CLIPPED      rejected by the background estimator's clipping
+4      RAMP_BREAK       a cosmic-ray hit broke the ramp; the read differences
+                        around the break were left out of the slope
+8      PROFILE_REJECT   rejected by the profile fit of optimal extraction
+16     PATCHED          value replaced from the spatial profile
+32     OVERFILLED       one or more reads above the saturation level were
+                        dropped from the ramp
+64     NO_SLOPE         fewer than two usable reads remain: no slope
+128    INVALID_VALUE    the raw data or a reference value was NaN or infinite
+256    LISTED_BAD       listed in the bad-pixel reference file
+=====  ===============  ======================================================
+
+Bits 64, 128 and 256 (:data:`UNUSABLE_FLAGS`) make a pixel unusable for
+extraction; the others are informative (an OVERFILLED or RAMP_BREAK pixel
+still has a valid slope from its clean reads).
+
+In FITS products the legend travels with the bitfield: :func:`legend_cards`
+gives one header keyword ``LLFLAGn`` per bit (n = 0 for value 1, 1 for value
+2, ...) whose value is the name and whose comment is the meaning, and
+``LLFLGBAD``, the sum of the unusable bits.
 """
 
 import numpy as np
 from astropy.nddata.bitmask import bitfield_to_boolean_mask
 
-__all__ = ["FLAGS", "UNUSABLE", "SATURATED", "JUMP", "SHORT_RAMP",
-           "BACKGROUND_OUTLIER", "NOT_FINITE", "EXTRACTION_OUTLIER", "FILLED",
-           "OUTSIDE_BAND", "UNUSABLE_FLAGS", "to_boolean", "count_by_flag"]
+__all__ = ["FLAGS", "MEANINGS", "UNSCANNED", "SKY_CLIPPED", "RAMP_BREAK", "PROFILE_REJECT",
+           "PATCHED", "OVERFILLED", "NO_SLOPE", "INVALID_VALUE", "LISTED_BAD",
+           "UNUSABLE_FLAGS", "MASK_DTYPE", "to_boolean", "count_by_flag", "legend_cards",
+           "flags_from_header"]
 
-UNUSABLE = 1
-SATURATED = 2
-JUMP = 4
-SHORT_RAMP = 8
-BACKGROUND_OUTLIER = 16
-NOT_FINITE = 32
-EXTRACTION_OUTLIER = 64
-FILLED = 128
-OUTSIDE_BAND = 256
+UNSCANNED = 1
+SKY_CLIPPED = 2
+RAMP_BREAK = 4
+PROFILE_REJECT = 8
+PATCHED = 16
+OVERFILLED = 32
+NO_SLOPE = 64
+INVALID_VALUE = 128
+LISTED_BAD = 256
 
 #: Every flag by name, in bit order.
 FLAGS = {
-    "UNUSABLE": UNUSABLE,
-    "SATURATED": SATURATED,
-    "JUMP": JUMP,
-    "SHORT_RAMP": SHORT_RAMP,
-    "BACKGROUND_OUTLIER": BACKGROUND_OUTLIER,
-    "NOT_FINITE": NOT_FINITE,
-    "EXTRACTION_OUTLIER": EXTRACTION_OUTLIER,
-    "FILLED": FILLED,
-    "OUTSIDE_BAND": OUTSIDE_BAND,
+    "UNSCANNED": UNSCANNED,
+    "SKY_CLIPPED": SKY_CLIPPED,
+    "RAMP_BREAK": RAMP_BREAK,
+    "PROFILE_REJECT": PROFILE_REJECT,
+    "PATCHED": PATCHED,
+    "OVERFILLED": OVERFILLED,
+    "NO_SLOPE": NO_SLOPE,
+    "INVALID_VALUE": INVALID_VALUE,
+    "LISTED_BAD": LISTED_BAD,
+}
+
+#: One line per flag, short enough for a FITS header comment.
+MEANINGS = {
+    "UNSCANNED": "outside the rows a scan crossed",
+    "SKY_CLIPPED": "rejected by the background clipping",
+    "RAMP_BREAK": "cosmic-ray break left out of the ramp",
+    "PROFILE_REJECT": "rejected by the optimal-extraction fit",
+    "PATCHED": "value replaced from the spatial profile",
+    "OVERFILLED": "reads above saturation dropped",
+    "NO_SLOPE": "fewer than two usable reads",
+    "INVALID_VALUE": "raw or reference value not finite",
+    "LISTED_BAD": "listed in the bad-pixel reference file",
 }
 
 #: Flags that make a pixel unusable for extraction.
-UNUSABLE_FLAGS = UNUSABLE | SHORT_RAMP | NOT_FINITE
+UNUSABLE_FLAGS = NO_SLOPE | INVALID_VALUE | LISTED_BAD
 
 MASK_DTYPE = np.uint16
 
@@ -97,3 +120,42 @@ def count_by_flag(bits):
     """
     bits = np.asarray(bits)
     return {name: int(np.count_nonzero(bits & value)) for name, value in FLAGS.items()}
+
+
+def legend_cards():
+    """Header cards that describe the bitfield, for the HDU that holds it.
+
+    Returns
+    -------
+    cards : list of (keyword, value, comment)
+        ``LLFLAGn`` = flag name, comment ``"=VALUE: meaning"``, one per bit
+        (n is the bit's position, value 2**n), then ``LLFLGBAD`` = the sum of
+        :data:`UNUSABLE_FLAGS`.
+    """
+    cards = []
+    for name, value in FLAGS.items():
+        position = int(value).bit_length() - 1
+        cards.append((f"LLFLAG{position}", name, f"={value}: {MEANINGS[name]}"))
+    cards.append(("LLFLGBAD", int(UNUSABLE_FLAGS), "sum of the flags that make a pixel unusable"))
+    return cards
+
+
+def flags_from_header(header):
+    """Flag name to value, read back from the ``LLFLAGn`` keywords of a header.
+
+    Parameters
+    ----------
+    header : mapping
+        A FITS header (or dict) written with :func:`legend_cards`.
+
+    Returns
+    -------
+    flags : dict of str to int
+        In bit order; empty when the header holds no legend.
+    """
+    found = {}
+    for position in range(16):
+        key = f"LLFLAG{position}"
+        if key in header:
+            found[str(header[key])] = 1 << position
+    return found

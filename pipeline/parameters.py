@@ -162,8 +162,9 @@ STAGES = {
         Param("ramp_method", "fit", "str",
               "staring ramps: 'fit' = weighted up-the-ramp slope, 'diff' = sum of read differences",
               choices=("fit", "diff")),
-        Param("jump_threshold", 6.0, "float",
-              "cosmic-ray jump threshold in sigma of a pixel's read-difference scatter", minimum=3.0),
+        Param("break_threshold", 6.0, "float",
+              "a read difference above this many sigma of the pixel's own difference scatter is "
+              "a cosmic-ray ramp break and is left out", minimum=3.0),
         Param("background_method", "rowcol", "str",
               "sky model: 'rowcol' = per-column model from rows away from the source, "
               "'2d' = photutils Background2D with a segmentation source mask, "

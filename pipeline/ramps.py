@@ -34,17 +34,17 @@ class RampFit:
     Attributes
     ----------
     rate : ndarray of float64
-        Count rate, e-/s (NaN where SHORT_RAMP).
+        Count rate, e-/s (NaN where NO_SLOPE).
     rate_variance : ndarray of float64
         Variance of ``rate``, (e-/s)**2, from read noise and Poisson noise
-        (NaN where SHORT_RAMP).
+        (NaN where NO_SLOPE).
     bits : ndarray of uint16
-        Project flags: SATURATED, JUMP, SHORT_RAMP, NOT_FINITE.
+        Project flags: OVERFILLED, RAMP_BREAK, NO_SLOPE, INVALID_VALUE.
     n_used_reads : ndarray of int
         Number of reads that enter at least one used difference.
     mean_read_time : ndarray of float64
         Mean time of the used reads, s after ``read_times[0]`` (NaN where
-        SHORT_RAMP).
+        NO_SLOPE).
     jumps : ndarray of bool, shape (n_reads - 1, ny, nx)
         True where the difference from read k to read k + 1 held a jump and
         was dropped.
@@ -267,10 +267,10 @@ def fit_ramps(reads, read_times, *, read_noise, saturated=None, weighting="optim
 
     Mask contract: reads flagged in ``saturated`` (True = above the
     saturation level) are dropped, with every later read of that pixel, and
-    the pixel gets SATURATED; non-finite reads are dropped (the two
-    differences they enter) and the pixel gets NOT_FINITE; differences holding
-    a jump are dropped (JUMP); a pixel with no usable difference left gets
-    SHORT_RAMP and NaN rate and variance.  The inputs are not modified.
+    the pixel gets OVERFILLED; non-finite reads are dropped (the two
+    differences they enter) and the pixel gets INVALID_VALUE; differences holding
+    a jump are dropped (RAMP_BREAK); a pixel with no usable difference left gets
+    NO_SLOPE and NaN rate and variance.  The inputs are not modified.
 
     Parameters
     ----------
@@ -447,9 +447,9 @@ def fit_ramps(reads, read_times, *, read_noise, saturated=None, weighting="optim
         mean_t = np.where(n_used > 0, np.tensordot(t, used_read, axes=(0, 0)) / n_used, np.nan)
 
     bits = np.zeros((ny, nx), dtype=dq.MASK_DTYPE)
-    bits[sat_px] |= dq.SATURATED
-    bits[jumps.any(axis=0)] |= dq.JUMP
-    bits[short] |= dq.SHORT_RAMP
-    bits[~finite.all(axis=0)] |= dq.NOT_FINITE
+    bits[sat_px] |= dq.OVERFILLED
+    bits[jumps.any(axis=0)] |= dq.RAMP_BREAK
+    bits[short] |= dq.NO_SLOPE
+    bits[~finite.all(axis=0)] |= dq.INVALID_VALUE
     return RampFit(rate=rate, rate_variance=var, bits=bits, n_used_reads=n_used,
                    mean_read_time=mean_t, jumps=jumps)

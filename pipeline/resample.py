@@ -12,8 +12,7 @@ overlap matrix is formed.
 
 References
 ----------
-Carnall, A. C. 2017, arXiv:1705.05165, "SpectRes: a fast spectral
-resampling tool in Python".
+Carnall, A. C. 2017, arXiv:1705.05165.
 """
 
 from dataclasses import dataclass

@@ -64,9 +64,9 @@ class ScanSum:
     variance : ndarray of shape (ny, nx), float64
         Variance of ``flux``, e-**2 (see :func:`sum_scan` Notes).
     bits : ndarray of shape (ny, nx), uint16
-        OUTSIDE_BAND, JUMP (a cosmic ray was replaced), SATURATED, NOT_FINITE,
-        SHORT_RAMP (covered by a band but by no usable difference),
-        BACKGROUND_OUTLIER (clipped from some difference's background).
+        UNSCANNED, RAMP_BREAK (a cosmic ray was replaced), OVERFILLED, INVALID_VALUE,
+        NO_SLOPE (covered by a band but by no usable difference),
+        SKY_CLIPPED (clipped from some difference's background).
     band_lo, band_hi : ndarray of shape (n_reads - 1,), int
         First and last row (inclusive, padded) of each difference's band.
     band_found : ndarray of shape (n_reads - 1,), bool
@@ -775,7 +775,7 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
             bv = np.full((ny, nx), float(vmean))
             rej = np.zeros((ny, nx), bool)
             rej[out] = ~kept
-            bits[rej] |= dq.BACKGROUND_OUTLIER
+            bits[rej] |= dq.SKY_CLIPPED
             levels[k] = float(mean)  # the median of a constant map
         take = valid[k, band]
         contrib[band] += np.where(take, dk - bk[band], 0.0)
@@ -794,10 +794,10 @@ def sum_scan(reads, read_times, *, read_noise, saturated=None, dark_rate=None, f
     covered = np.broadcast_to(in_band_rows.any(axis=0)[:, None], (ny, nx))
     var = np.where(covered, var, 2.0 * s2 / fl_safe ** 2)
 
-    bits[~covered] |= dq.OUTSIDE_BAND
-    bits[hit_any] |= dq.JUMP
-    bits[sat_px] |= dq.SATURATED
-    bits[covered & ~take_any] |= dq.SHORT_RAMP
-    bits[~finite.all(axis=0) | ~flat_ok | ~np.isfinite(dark)] |= dq.NOT_FINITE
+    bits[~covered] |= dq.UNSCANNED
+    bits[hit_any] |= dq.RAMP_BREAK
+    bits[sat_px] |= dq.OVERFILLED
+    bits[covered & ~take_any] |= dq.NO_SLOPE
+    bits[~finite.all(axis=0) | ~flat_ok | ~np.isfinite(dark)] |= dq.INVALID_VALUE
     return ScanSum(flux=contrib, variance=var, bits=bits, band_lo=lo, band_hi=hi, band_found=found,
                    background=levels, background_map=bkg_map, n_cosmic=n_cosmic)

@@ -23,7 +23,7 @@ integrated by Gauss-Legendre quadrature after the substitution
 r = a + (b - a)(1 - cos theta)/2, which removes the square-root behaviour of
 kappa and of mu = sqrt(1 - r^2) at both ends and makes the integrand smooth.
 With the default 96 nodes the result agrees with the analytic elliptic-
-integral form (as implemented by batman, Kreidberg 2015) to better than
+integral form (Kreidberg 2015, whose library the tests use) to better than
 1e-7 in relative flux over rp_rs 0.01-0.3 and impact parameters 0-1.1 (see
 tests/test_transit.py).
 
@@ -32,7 +32,7 @@ Cost: O(n_times * n_nodes) time and memory; n_nodes = 96 by default.
 References
 ----------
 Mandel, K. & Agol, E. 2002, ApJ 580, L171.
-Kreidberg, L. 2015, PASP 127, 1161 (batman, the reference library in tests).
+Kreidberg, L. 2015, PASP 127, 1161 (the analytic form the tests compare with).
 """
 
 from typing import NamedTuple

@@ -238,7 +238,10 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
     refs = model.refs
     for name in ("bias", "dark", "flat", "nonlinearity", "bad_pixels"):
         _write_image(out / "calibration" / f"{name}.fits", getattr(refs, name))
-    wave = np.round(np.linspace(0.9, 1.9, 501), 6)
+    # the throughput curve covers the subarray's wavelengths with a margin on each side
+    lo = np.floor((np.min(model.wave) - 0.1) * 10) / 10
+    hi = np.ceil((np.max(model.wave) + 0.1) * 10) / 10
+    wave = np.round(np.linspace(lo, hi, int(round((hi - lo) / 0.002)) + 1), 6)
     table = Table({"wavelength": wave, "throughput": vm.throughput_of(sc, wave)})
     table["wavelength"].unit = "um"
     table.meta["comment"] = [f"throughput of the fictional instrument {sc.profile_name}"]

@@ -1,11 +1,15 @@
 """The fictional scenarios the forward model can render.
 
 Every name and number here is invented for the demos: the stars, planets,
-instruments and visits do not exist.  :data:`SCENARIOS` maps each scenario's
+instruments and visits do not exist.  The two instruments have wavelength
+ranges, dispersions, pixel scales and visibility windows of their own; only
+the physics is real (the ~95.6 min period of a 550 km orbit, Planck spectra,
+hydrogen lines).  :data:`SCENARIOS` maps each scenario's
 name to a one-line description; :func:`get_scenario` returns its full
 parameter set, a frozen :class:`Scenario`.
 """
 
+import math
 from dataclasses import dataclass, field
 
 from lightledger.pipeline.errors import ParameterError
@@ -58,7 +62,8 @@ class Scenario:
     dispersion: tuple
     row_offset: float
     tilt: float
-    psf_sigma: float
+    pixel_scale: float                # arcsec per pixel
+    psf_fwhm: float                   # cross-dispersion FWHM of the image, arcsec
     throughput_lo: float
     throughput_hi: float
     throughput_edge: float
@@ -71,7 +76,7 @@ class Scenario:
     # reads and schedule
     n_reads: int
     read_interval: float
-    scan_length: float                # rows covered per exposure (0 = stare)
+    scan_rate: float                  # arcsec per second on the sky (0 = stare)
     date_beg: str
     default_n_exposures: int
     n_orbits: int                     # 0 = continuous visit
@@ -112,6 +117,16 @@ class Scenario:
     trap_initial: tuple = ()          # e-/pixel trapped per population when the visit starts
     trap_refill: tuple = ()           # e-/pixel added per population at each later orbit's start
 
+    @property
+    def psf_sigma(self):
+        """Cross-dispersion Gaussian sigma in rows: FWHM / (2 sqrt(2 ln 2)) / pixel scale."""
+        return self.psf_fwhm / (2.0 * math.sqrt(2.0 * math.log(2.0))) / self.pixel_scale
+
+    @property
+    def scan_length(self):
+        """Rows a scan covers in one exposure (zero read to last read); 0 for a stare."""
+        return self.scan_rate * (self.n_reads - 1) * self.read_interval / self.pixel_scale
+
 
 SCAN = Scenario(
     name="scan-transit",
@@ -125,29 +140,30 @@ SCAN = Scenario(
     full_shape=(256, 512), sub_origin=(160, 70), sub_shape=(100, 180),
     gain=2.0, read_noise=14.0, saturation=36000.0, full_well=74000.0,
     bias_level=11000.0, dark_rate=0.04, nonlin_c1=3.0e-7, nonlin_c2=1.0e-12,
-    flat_kind="cube", flat_range=(1.05, 1.75),
+    flat_kind="cube", flat_range=(1.18, 2.20),
     n_dead=60, n_hot=40, hot_rate_range=(20.0, 3000.0),
     row_noise=0.0, column_noise=0.0,
     cr_per_exposure=8.0, cr_median=2500.0,
     source_x=205.0, source_y=92.0, column_offset=-20.0,
-    dispersion=(1.08, 4.6e-3, 2.0e-7), row_offset=0.0, tilt=0.01, psf_sigma=1.2,
-    throughput_lo=1.12, throughput_hi=1.66, throughput_edge=0.012,
+    dispersion=(1.19, 6.3e-3, 2.5e-7), row_offset=0.0, tilt=0.01,
+    pixel_scale=0.21, psf_fwhm=0.59,
+    throughput_lo=1.28, throughput_hi=2.06, throughput_edge=0.016,
     throughput_peak=0.45, line_depth=0.12, line_width=0.0035,
     peak_rate=24000.0, sky_rate=1.5, sky_gradient=0.1,
-    n_reads=8, read_interval=12.0, scan_length=55.0,
+    n_reads=8, read_interval=12.0, scan_rate=0.14,
     date_beg="2023-05-17T03:12:40.000",
     default_n_exposures=90, n_orbits=5, orbit_period=95.6 * 60.0,
-    visibility=50.0 * 60.0, cadence=0.0, exposures_per_file=1,
+    visibility=63.0 * 60.0, cadence=0.0, exposures_per_file=1,
     altitude_km=550.0, orbit_inclination_deg=28.5,
     kind="transit", period=2.9, event_offset=0.0104, rp_rs=0.118, a_rs=9.5,
     inclination=87.6, u1=0.22, u2=0.28,
-    band_centre=1.40, band_width=0.045, band_depth=2.0e-4,
+    band_centre=1.92, band_width=0.06, band_depth=2.0e-4,
     t_planet=1100.0, night_fraction=1.0, phase_offset_deg=0.0,
     visit_slope=-1.5e-3, visit_curve=2.0e-3,
     orbit_ramp=(4.0e-3, 1.2e-3, 1.0e-3, 1.0e-3, 0.9e-3), orbit_ramp_tau=420.0,
     orbit_poly=(6.0e-4, -1.2e-3), reverse_offset=-2.5e-3,
     drift_x=(0.06, 0.03, 0.01), drift_y=(0.04, 0.02, 0.01),
-    channel_edges=tuple(round(1.15 + 0.05 * k, 4) for k in range(11)),
+    channel_edges=tuple(round(1.30 + 0.07 * k, 4) for k in range(11)),
     trap_populations=((130.0, 0.007, 420.0), (1200.0, 0.010, 14000.0)),
     trap_initial=(0.0, 300.0), trap_refill=(50.0, 150.0),
 )
@@ -164,29 +180,30 @@ STARE = Scenario(
     full_shape=(64, 512), sub_origin=(128, 12), sub_shape=(40, 256),
     gain=1.8, read_noise=12.0, saturation=40000.0, full_well=75000.0,
     bias_level=9000.0, dark_rate=0.02, nonlin_c1=2.6e-7, nonlin_c2=1.5e-12,
-    flat_kind="2d", flat_range=(1.05, 1.75),
+    flat_kind="2d", flat_range=(1.36, 2.36),
     n_dead=30, n_hot=20, hot_rate_range=(5.0, 200.0),
     row_noise=5.0, column_noise=3.0,
     cr_per_exposure=2.0, cr_median=2500.0,
     source_x=158.0, source_y=32.5, column_offset=0.0,
-    dispersion=(1.08, 3.0e-3, 1.0e-7), row_offset=0.0, tilt=-0.006, psf_sigma=1.25,
-    throughput_lo=1.10, throughput_hi=1.70, throughput_edge=0.015,
+    dispersion=(1.50, 3.7e-3, 1.0e-7), row_offset=0.0, tilt=-0.006,
+    pixel_scale=0.16, psf_fwhm=0.47,
+    throughput_lo=1.46, throughput_hi=2.24, throughput_edge=0.018,
     throughput_peak=0.5, line_depth=0.12, line_width=0.003,
     peak_rate=1400.0, sky_rate=0.3, sky_gradient=0.05,
-    n_reads=5, read_interval=20.0, scan_length=0.0,
+    n_reads=5, read_interval=20.0, scan_rate=0.0,
     date_beg="2024-02-09T11:05:00.000",
     default_n_exposures=300, n_orbits=0, orbit_period=0.0, visibility=0.0,
     cadence=100.0, exposures_per_file=50,
     altitude_km=0.0, orbit_inclination_deg=0.0,
     kind="eclipse", period=1.09, event_offset=0.0, rp_rs=0.104, a_rs=3.4,
     inclination=84.0, u1=0.2, u2=0.25,
-    band_centre=1.40, band_width=0.045, band_depth=0.0,
+    band_centre=1.92, band_width=0.06, band_depth=0.0,
     t_planet=2650.0, night_fraction=0.15, phase_offset_deg=8.0,
     visit_slope=8.0e-4, visit_curve=-1.0e-3,
     orbit_ramp=(1.5e-3,), orbit_ramp_tau=900.0,
     orbit_poly=(), reverse_offset=0.0,
     drift_x=(0.05, 0.0, 0.008), drift_y=(0.03, 0.0, 0.006),
-    channel_edges=tuple(round(1.15 + 0.05 * k, 4) for k in range(11)),
+    channel_edges=tuple(round(1.50 + 0.065 * k, 4) for k in range(11)),
 )
 
 _ALL = {s.name: s for s in (SCAN, STARE)}

@@ -14,10 +14,11 @@ _H = const.h.si.value
 _C = const.c.si.value
 _K = const.k_B.si.value
 
-#: Hydrogen absorption lines of the stellar spectrum in the band (vacuum, um;
-#: Paschen beta and gamma and some Brackett lines; values from memory, to
+#: Hydrogen absorption lines of the stellar spectrum in the bands (vacuum, um;
+#: Paschen alpha, beta and gamma and Brackett lines; values from memory, to
 #: 1e-4 um, which only matters for realism).
-H_LINES_UM = (1.0941, 1.2822, 1.5265, 1.5561, 1.5885, 1.6114, 1.6412, 1.6811)
+H_LINES_UM = (1.0941, 1.2822, 1.5265, 1.5561, 1.5885, 1.6114, 1.6412, 1.6811, 1.7367,
+              1.8181, 1.8756, 1.9451, 2.1661)
 
 
 def planck_lambda(wavelength, temperature):

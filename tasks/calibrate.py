@@ -7,8 +7,9 @@ Products in ``NOTEBOOK/calibrate-IDENT/``:
     times, scan velocity, observer position, subarray origin;
 ``frames-NNN.fits``
     the calibrated exposures of chunk NNN: FLUX (electrons), VARIANCE
-    (electrons squared), MASK (the project's bitfield) as cubes of shape
-    (n_exposures, n_rows, n_columns), and EXPOSURES, a table of per-exposure
+    (electrons squared), FLAGS (the project's data-quality bitfield, legend
+    in the LLFLAGn keywords) as cubes of shape (n_exposures, n_rows,
+    n_columns), and EXPOSURES, a table of per-exposure
     facts (mid-time, exposure time, scan direction and rate, background level,
     flagged pixels by kind);
 ``exposures.ecsv``
@@ -80,7 +81,7 @@ def calibrate_reads(visit, params, ref, exp, reads):
         source_rows=source_rows, ramp_method=params["ramp_method"],
         background_method=params["background_method"],
         destripe=_destripe_mode(params["destripe"], exp.scan_velocity),
-        jump_threshold=params["jump_threshold"],
+        jump_threshold=params["break_threshold"],
         scan_options={"pad_rows": params["band_padding"]} if exp.scan_velocity else None)
 
 
@@ -153,13 +154,13 @@ class CalibrateChunk(VisitTask):
                           ("background_level", "electron"), ("obsgeo", "m")):
             exposures[col].unit = unit
         hdus = [fits.ImageHDU(flux, name="FLUX"), fits.ImageHDU(var, name="VARIANCE"),
-                fits.ImageHDU(bits, name="MASK", uint=True),
+                fits.ImageHDU(bits, name="FLAGS", uint=True),
                 table_hdu(exposures, "EXPOSURES")]
         hdus[0].header["BUNIT"] = ("electron", "charge from the zero read to the last read")
         hdus[1].header["BUNIT"] = ("electron2", "variance of FLUX")
-        hdus[2].header["COMMENT"] = "lightledger data-quality bitfield; see lightledger.pipeline.mask"
-        for name, value in dq.FLAGS.items():
-            hdus[2].header[f"DQ_{value}"[:8]] = name
+        hdus[2].header["COMMENT"] = "lightledger data-quality bitfield: bit n set = flag LLFLAGn"
+        for key, value, comment in dq.legend_cards():
+            hdus[2].header[key] = (value, comment)
         inputs = [self.input().path, *sorted({e.file for e in refs}),
                   *[f for f in visit.profile.files.values() if f is not None]]
         write_fits(self.output().path, hdus, self.provenance(inputs),
@@ -168,13 +169,13 @@ class CalibrateChunk(VisitTask):
 
 
 def read_chunk(path, *, exposures_only=False):
-    """FLUX, VARIANCE, MASK cubes and the EXPOSURES table of a calibrated chunk."""
+    """FLUX, VARIANCE, FLAGS (bitfield) cubes and the EXPOSURES table of a calibrated chunk."""
     with fits.open(path, memmap=False) as hdul:
         table = Table(hdul["EXPOSURES"].data)
         if exposures_only:
             return table
         return (np.asarray(hdul["FLUX"].data, float), np.asarray(hdul["VARIANCE"].data, float),
-                np.asarray(hdul["MASK"].data), table)
+                np.asarray(hdul["FLAGS"].data), table)
 
 
 class Calibrate(VisitTask):

@@ -55,8 +55,8 @@ def test_clipped_pixels_flagged_and_sources_not():
     src = source_mask_from_rows((NY, NX), (45, 55), pad=3)
     for method in ("rowcol", "2d"):
         est = estimate_background(img, source_mask=src, method=method, detect=False)
-        assert est.bits[10, 20] & dq.BACKGROUND_OUTLIER
-        assert not np.any(est.bits[src] & dq.BACKGROUND_OUTLIER)
+        assert est.bits[10, 20] & dq.SKY_CLIPPED
+        assert not np.any(est.bits[src] & dq.SKY_CLIPPED)
         # 3-sigma clipping of Gaussian noise rejects ~0.3% (common practice); allow 1%
         assert np.mean(est.bits[~src] != 0) < 0.01
 

@@ -134,10 +134,10 @@ def test_bad_pixels_flags_and_counts():
     flat = np.ones(rate.shape)
     flat[1, 1] = np.nan
     out = calibrate_exposure(reads, t, **kwargs(bad_pixels=bad, flat=flat, background_method="none"))
-    assert out.bits[3, 4] & dq.UNUSABLE and out.bits[7, 8] & dq.UNUSABLE
-    assert out.bits[1, 1] & dq.NOT_FINITE and np.isnan(out.flux[1, 1])
+    assert out.bits[3, 4] & dq.LISTED_BAD and out.bits[7, 8] & dq.LISTED_BAD
+    assert out.bits[1, 1] & dq.INVALID_VALUE and np.isnan(out.flux[1, 1])
     assert out.flag_counts == dq.count_by_flag(out.bits)
-    assert out.flag_counts["UNUSABLE"] == 2
+    assert out.flag_counts["LISTED_BAD"] == 2
     assert out.bits.dtype == np.uint16
     assert isinstance(out, CalibratedExposure)
 
@@ -148,7 +148,7 @@ def test_saturation_in_adu_above_bias():
     rate[5, 5] = 5000.0  # 5e4 e- at read 1 -> 2.5e4 ADU above bias
     reads, t = render(rng, rate)
     out = calibrate_exposure(reads, t, **kwargs(saturation_adu=60000.0, background_method="none"))
-    assert out.bits[5, 5] & dq.SATURATED
+    assert out.bits[5, 5] & dq.OVERFILLED
     assert out.flux[5, 5] / t[-1] == pytest.approx(5000.0, rel=0.02)
 
 
@@ -184,7 +184,7 @@ def test_scan_path_recovers_flux():
     reads = BIAS + q / GAIN
     out = calibrate_exposure(reads, t, **kwargs(scan_velocity=v))
     total = spec.sum() * t[-1]
-    cover = (out.bits & dq.OUTSIDE_BAND) == 0
+    cover = (out.bits & dq.UNSCANNED) == 0
     # Deming et al. 2013: the band-masked sum recovers the scan's flux within photon noise
     assert abs(out.flux.sum() - total) < 4 * np.sqrt(out.variance[cover].sum()) + 0.002 * total
 

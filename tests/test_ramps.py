@@ -86,7 +86,7 @@ def test_jumps_found_and_slopes_unbiased():
     # false alarms below 0.1% of clean pixel-differences
     false_rate = fit.jumps[~truth].mean()
     assert false_rate < 1e-3
-    assert np.all(fit.bits[hit] & dq.JUMP)
+    assert np.all(fit.bits[hit] & dq.RAMP_BREAK)
     # slopes of hit pixels unbiased within their own error (pull mean ~0, unit scatter)
     pull = (fit.rate[hit] - flux) / np.sqrt(fit.rate_variance[hit])
     assert abs(np.mean(pull)) < 0.1
@@ -101,7 +101,7 @@ def test_saturating_pixel_keeps_unbiased_slope():
     reads, t = simulate(rng, flux, shape=(50, 100))
     level = 2.2e4  # reached between read 4 (20000 e-) and read 5 (25000 e-)
     fit = fit_ramps(reads, t, read_noise=READ_NOISE, saturated=reads > level)
-    assert np.all(fit.bits & dq.SATURATED)
+    assert np.all(fit.bits & dq.OVERFILLED)
     assert np.all(fit.n_used_reads == 5)
     np.testing.assert_allclose(fit.mean_read_time, np.mean(t[:5]))
     # unbiased from the unsaturated reads; Monte Carlo variance agrees with the stated one
@@ -117,8 +117,8 @@ def test_short_ramp_and_not_finite():
     sat[1:, 0, 0] = True  # only read 0 left
     reads[3, 1, 1] = np.nan
     fit = fit_ramps(reads, t, read_noise=READ_NOISE, saturated=sat)
-    assert fit.bits[0, 0] & dq.SHORT_RAMP and np.isnan(fit.rate[0, 0])
-    assert fit.bits[1, 1] & dq.NOT_FINITE and np.isfinite(fit.rate[1, 1])
+    assert fit.bits[0, 0] & dq.NO_SLOPE and np.isnan(fit.rate[0, 0])
+    assert fit.bits[1, 1] & dq.INVALID_VALUE and np.isfinite(fit.rate[1, 1])
     assert fit.n_used_reads[1, 1] == 7
     assert np.all(np.isfinite(fit.rate[2:]))
 
@@ -360,5 +360,5 @@ def test_fast_kernel_matches_reference_with_nans_saturation_and_many_jumps(weigh
             np.testing.assert_allclose(fit.rate[y, x], f, rtol=1e-12, atol=1e-12)
             np.testing.assert_allclose(fit.rate_variance[y, x], v, rtol=1e-12)
             np.testing.assert_allclose(fit.mean_read_time[y, x], mt, rtol=1e-12)
-    assert fit.bits[0, 0] & dq.SHORT_RAMP and fit.bits[0, 0] & dq.NOT_FINITE
-    assert fit.bits[1, 1] & dq.SATURATED
+    assert fit.bits[0, 0] & dq.NO_SLOPE and fit.bits[0, 0] & dq.INVALID_VALUE
+    assert fit.bits[1, 1] & dq.OVERFILLED

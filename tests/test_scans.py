@@ -42,7 +42,7 @@ def test_sum_recovers_injected_flux_forward_and_reverse(v, y0):
     pulls = []
     for _ in range(6):
         res = sum_scan(draw(rng, lam), t, read_noise=READ_NOISE)
-        cover = (res.bits & dq.OUTSIDE_BAND) == 0
+        cover = (res.bits & dq.UNSCANNED) == 0
         pulls.append((res.flux.sum() - truth) / np.sqrt(res.variance[cover].sum()))
         # bands found from the data move with the scan direction and hold the PSF centre
         centre = y0 + v * 0.5 * (t[1:] + t[:-1])
@@ -71,7 +71,7 @@ def test_cosmic_ray_outside_band_leaves_sum_unchanged():
     assert not (clean.band_lo[k] <= 90 <= clean.band_hi[k])
     res = sum_scan(hit, t, read_noise=READ_NOISE)
     # row 90 is never crossed by the scan, so it stays outside every band
-    assert np.all(res.bits[90, 30:32] & dq.OUTSIDE_BAND)
+    assert np.all(res.bits[90, 30:32] & dq.UNSCANNED)
     sigma = np.sqrt(clean.variance)
     # Deming et al. 2013: differences masked to the band reject hits outside it; the only
     # change allowed is through the clipped background (a tiny fraction of a sigma)
@@ -89,7 +89,7 @@ def test_cosmic_ray_inside_band_replaced_and_flagged():
     hit = reads.copy()
     hit[k + 1:, row, 60] += 8000.0
     res = sum_scan(hit, t, read_noise=READ_NOISE)
-    assert res.bits[row, 60] & dq.JUMP
+    assert res.bits[row, 60] & dq.RAMP_BREAK
     assert res.n_cosmic[k] >= 1
     # replaced by the median-filtered value: within 5 sigma of the clean sum at that pixel
     assert abs(res.flux[row, 60] - clean.flux[row, 60]) < 5 * np.sqrt(clean.variance[row, 60])
@@ -147,13 +147,13 @@ def test_no_false_jumps_at_narrow_deep_lines():
     pulls = []
     for _ in range(8):
         res = sum_scan(draw(rng, lam), t, read_noise=READ_NOISE)
-        jump = (res.bits & dq.JUMP) != 0
+        jump = (res.bits & dq.RAMP_BREAK) != 0
         n_false += np.count_nonzero(jump)
         n_pixels += int(((res.band_hi - res.band_lo + 1) * NX).sum())
         assert not jump[:, LINE_COLUMNS].any()
         pulls.append((res.flux.sum(axis=0) - spec * t[-1]) / np.sqrt(res.variance.sum(axis=0)))
-    print(f"false JUMP flags {n_false} of {n_pixels} in-band pixel-differences")
-    # Monte Carlo: nothing was injected, so every JUMP flag is a false alarm (none at the
+    print(f"false RAMP_BREAK flags {n_false} of {n_pixels} in-band pixel-differences")
+    # Monte Carlo: nothing was injected, so every RAMP_BREAK flag is a false alarm (none at the
     # lines, above); the budget is 0.01 % of the in-band pixel-differences, and with the
     # model's residual scatter (about 1.2 sigma) a 6-sigma test expects far fewer
     assert n_false <= 1e-4 * n_pixels
@@ -204,7 +204,7 @@ def test_cosmic_rays_and_tracks_found_with_few_false_alarms():
                 injected[q] = True
             hits.append((name, k, pix))
         res = sum_scan(reads, t, read_noise=READ_NOISE, background="none")
-        jump = (res.bits & dq.JUMP) != 0
+        jump = (res.bits & dq.RAMP_BREAK) != 0
         for name, k, pix in hits:  # hits inside the band that the run found
             inside = [q for q in pix if res.band_lo[k] <= q[0] <= res.band_hi[k]]
             found[name][0] += sum(bool(jump[q]) for q in inside)
@@ -242,8 +242,8 @@ def test_cosmic_rays_in_edge_columns_found(spectrum):
         row = (lo[k] + hi[k]) // 2
         reads[k + 1:, row, col] += 15.0 * np.sqrt(2 * READ_NOISE ** 2 + lam[k, row, col])
         res = sum_scan(reads, t, read_noise=READ_NOISE, background="none")
-        assert res.bits[row, col] & dq.JUMP, (k, col)
-        assert np.count_nonzero(res.bits & dq.JUMP) == 1
+        assert res.bits[row, col] & dq.RAMP_BREAK, (k, col)
+        assert np.count_nonzero(res.bits & dq.RAMP_BREAK) == 1
 
 
 def test_dead_pixel_in_band_raises_no_jumps():
@@ -257,7 +257,7 @@ def test_dead_pixel_in_band_raises_no_jumps():
         lo, hi = find_bands(np.diff(reads, axis=0))[:2]
         reads[:, (lo[3] + hi[3]) // 2, col] = reads[0, (lo[3] + hi[3]) // 2, col]
         res = sum_scan(reads, t, read_noise=READ_NOISE, background="none")
-        assert not (res.bits & dq.JUMP).any(), col
+        assert not (res.bits & dq.RAMP_BREAK).any(), col
 
 
 def test_find_bands_noiseless_band():
@@ -572,7 +572,7 @@ def _reference_sum_scan(r, t, s, sat, dark, flat, bad, background, destripe, pad
             bk[k], bv[k] = mean, vmean
             rej = np.zeros((ny, nx), bool)
             rej[out] = ~kept
-            bits[rej] |= dq.BACKGROUND_OUTLIER
+            bits[rej] |= dq.SKY_CLIPPED
     levels = np.array([np.nanmedian(b) for b in bk])
     flux = np.where(take, d - bk, 0.0).sum(axis=0)
     prev = np.concatenate([np.zeros((1, ny, nx), bool), take[:-1]])
@@ -581,11 +581,11 @@ def _reference_sum_scan(r, t, s, sat, dark, flat, bad, background, destripe, pad
         np.where(take, bv, 0.0).sum(axis=0)
     covered = in_band.any(axis=0)
     var = np.where(covered, var, 2.0 * s2 / fl**2)
-    bits[~covered] |= dq.OUTSIDE_BAND
-    bits[hit.any(axis=0)] |= dq.JUMP
-    bits[satc.any(axis=0)] |= dq.SATURATED
-    bits[covered & ~take.any(axis=0)] |= dq.SHORT_RAMP
-    bits[~finite.all(axis=0) | ~flat_ok | ~np.isfinite(dark)] |= dq.NOT_FINITE
+    bits[~covered] |= dq.UNSCANNED
+    bits[hit.any(axis=0)] |= dq.RAMP_BREAK
+    bits[satc.any(axis=0)] |= dq.OVERFILLED
+    bits[covered & ~take.any(axis=0)] |= dq.NO_SLOPE
+    bits[~finite.all(axis=0) | ~flat_ok | ~np.isfinite(dark)] |= dq.INVALID_VALUE
     return dict(flux=flux, variance=var, bits=bits, band_lo=lo, band_hi=hi, band_found=found,
                 background=levels, background_map=np.where(take, bk, 0.0).sum(axis=0),
                 n_cosmic=hit.sum(axis=(1, 2)))
@@ -620,7 +620,7 @@ def test_sum_scan_matches_whole_cube_reference(background, destripe):
         np.testing.assert_array_equal(a, b)  # inputs not modified
     ref = _reference_sum_scan(reads, t, READ_NOISE, sat, dark, flat, bad, background, destripe,
                               pad_rows=12)
-    assert res.n_cosmic.sum() > 0 and (res.bits & dq.SATURATED).any()
+    assert res.n_cosmic.sum() > 0 and (res.bits & dq.OVERFILLED).any()
     assert np.all((res.band_lo[[2, 5]] <= 45) & (res.band_hi[[2, 5]] >= 45))
     for name, want in ref.items():
         got = getattr(res, name)

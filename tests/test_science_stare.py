@@ -121,7 +121,7 @@ def _striping_power(folder, rows, rng):
     for path in paths:
         with fits.open(path) as hdul:
             flux = np.asarray(hdul["FLUX"].data, float)
-            bad = to_boolean(hdul["MASK"].data) | ~np.isfinite(flux)
+            bad = to_boolean(hdul["FLAGS"].data) | ~np.isfinite(flux)
         d = np.where(bad, np.nan, flux)[:, rows, :]
         n, ny, nx = d.shape
         d = d - np.nanmedian(d.reshape(n, -1), axis=1)[:, None, None]
