@@ -34,7 +34,7 @@ from lightledger.pipeline.parameters import STAGE_ORDER, STAGES
 
 from .config import load_visit
 from .products import Provenance, relative_input, write_json
-from .rawio import sha256_of
+from .digests import CACHE_NAME, DigestCache
 
 __all__ = ["VisitTask", "visit_config", "stage_identity", "stage_dir", "ENTRY_NAME",
            "settings_to_text", "settings_from_text"]
@@ -68,14 +68,25 @@ def visit_config(path, settings_text="[]"):
     return _visit_cached(str(Path(path).resolve()), settings_text, _stamp(path))
 
 
-@lru_cache(maxsize=64)
-def _file_digest(path, stamp):
-    return sha256_of(path)
+#: Digests of files known to this process (the notebook's record is read once per notebook).
+_DIGESTS = {}
 
 
-def file_digest(path):
-    """SHA-256 of a file, cached while its size and modification time are unchanged."""
-    return _file_digest(str(path), _stamp(path))
+def digest_cache(notebook):
+    """The process's :class:`~.digests.DigestCache` of a notebook folder."""
+    key = str(Path(notebook).resolve())
+    if key not in _DIGESTS:
+        _DIGESTS[key] = DigestCache(Path(key) / CACHE_NAME)
+    return _DIGESTS[key]
+
+
+def file_digest(path, notebook=None):
+    """SHA-256 of a file, hashed again only when its size, times or inode changed."""
+    cache = digest_cache(notebook) if notebook is not None else _MEMORY
+    return cache.digest(path)
+
+
+_MEMORY = DigestCache(None)
 
 
 def _hash(*parts):
@@ -83,12 +94,43 @@ def _hash(*parts):
     return hashlib.sha256(text.encode()).hexdigest()
 
 
-def raw_identity(visit):
-    """Identity of the raw visit: raw file names, sizes, times; profile and reference files."""
-    raw = sorted((p.name, p.stat().st_size, p.stat().st_mtime_ns)
-                 for p in Path(visit.raw).glob("*.fits"))
-    refs = {role: file_digest(f) for role, f in visit.profile.files.items() if f is not None}
-    return _hash("raw", raw, file_digest(visit.profile.path), refs,
+def profile_content(profile):
+    """What the reduction uses of an instrument profile (not its path, name or layout)."""
+    return {"gain": profile.gain, "read_noise": profile.read_noise,
+            "saturation": profile.saturation, "full_shape": list(profile.full_shape),
+            "flat_range": list(profile.flat_range) if profile.flat_range else None,
+            "dispersion": list(profile.dispersion), "column_offset": profile.column_offset,
+            "row_offset": profile.row_offset, "tilt": profile.tilt, "width": profile.width,
+            "keywords": dict(sorted(profile.keywords.items())),
+            "extensions": dict(sorted(profile.extensions.items()))}
+
+
+def raw_files(visit):
+    """The raw FITS files of a visit, by name."""
+    return sorted(Path(visit.raw).glob("*.fits"))
+
+
+def raw_identity(visit, digests=None):
+    """Identity of the raw visit: the content of its raw and reference files.
+
+    Parameters
+    ----------
+    visit : config.Visit
+    digests : callable, optional
+        ``digests(path) -> sha256 hex``; default :func:`file_digest` with the
+        notebook's record.
+
+    Notes
+    -----
+    SHA-256 over the raw files' names and contents, the profile's content
+    (:func:`profile_content`), each reference file's content and the source
+    position.  Paths, modification times and the visit description's bytes
+    play no part, so a copied, moved or touched visit keeps its identity.
+    """
+    digest = digests or (lambda p: file_digest(p, visit.notebook))
+    raw = [(p.name, digest(p)) for p in raw_files(visit)]
+    refs = {role: digest(f) for role, f in sorted(visit.profile.files.items()) if f is not None}
+    return _hash("raw", raw, profile_content(visit.profile), refs,
                  [visit.target["source_x"], visit.target["source_y"]])
 
 

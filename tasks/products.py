@@ -31,7 +31,7 @@ from astropy.table import Table
 
 from lightledger.pipeline import __version__
 
-from .rawio import sha256_of
+from .digests import current_umask, sha256_of
 
 __all__ = ["Provenance", "relative_input", "resolve_input", "atomic_path", "table_hdu", "write_fits", "write_ecsv", "write_json",
            "save_figure", "read_provenance"]
@@ -123,11 +123,19 @@ def resolve_input(product, name):
     return name if name.is_absolute() else (Path(product).parent / name).resolve()
 
 
+def part_pattern(name):
+    """Glob pattern of the temporary files :func:`atomic_path` makes for a final ``name``."""
+    name = Path(name)
+    return f".{name.stem}-*{name.suffix}.part"
+
+
 @contextmanager
 def atomic_path(path):
     """Yield a temporary path beside ``path``; move it into place on success.
 
     On an exception the temporary file is removed and ``path`` is untouched.
+    The final file gets the permissions of any file the user creates (mode
+    0666 less the umask), not the owner-only mode of a temporary file.
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -138,6 +146,7 @@ def atomic_path(path):
         yield Path(tmp)
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
+        os.chmod(tmp, 0o666 & ~current_umask())
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
@@ -199,9 +208,17 @@ def write_fits(path, hdus, provenance, *, header=None):
     for key, value in (header or {}).items():
         primary.header[key] = value
     hdul = fits.HDUList([primary, *hdus, provenance.table_hdu()])
+    for hdu in hdul:
+        # astropy dates the comments of CHECKSUM and DATASUM with the wall clock; a fixed text
+        # keeps the bytes (and so the checksums) of a product a function of its content only
+        hdu._get_timestamp = _checksum_comment
     with atomic_path(path) as tmp:
         hdul.writeto(tmp, overwrite=True, checksum=True)
     return sha256_of(path)
+
+
+def _checksum_comment():
+    return "by lightledger"
 
 
 def write_ecsv(path, table, provenance):

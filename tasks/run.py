@@ -13,7 +13,7 @@ from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER
 
 from . import figures  # noqa: F401  (matplotlib loads once here, not in every worker)
-from .base import PROGRESS, settings_to_text, stage_dir, visit_config
+from .base import PROGRESS, digest_cache, raw_identity, settings_to_text, stage_dir, visit_config
 from .rawio import inventory
 
 __all__ = ["RunResult", "reduce_visit", "stage_task"]
@@ -89,6 +89,8 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
         raise LightledgerError(f"{visit.raw}: the visit holds no exposures")
     if workers < 1:
         raise LightledgerError("--workers must be at least 1")
+    raw_identity(visit)                     # hashes new or changed files once, then remembers
+    digest_cache(visit.notebook).save()
     _supersede(visit, force)
     until = until or STAGE_ORDER[-1]
     task = stage_task(until, visit.path, settings_text)
