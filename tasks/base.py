@@ -1,4 +1,4 @@
-"""What every lightledger task shares: the visit, identities, entries.
+"""What every lightledger task shares: the visit, identities, the run plan, entries.
 
 Products are named by what made them.  Each stage writes into
 ``NOTEBOOK/STAGE-IDENT/`` where ``IDENT`` is the first 10 hex digits of a
@@ -7,22 +7,40 @@ SHA-256 over
 * the stage's name and code version (``pipeline.parameters.STAGES``),
 * the stage's parameters after defaults and overrides,
 * the visit facts the stage uses (target coordinates for ``bin``, the event
-  for ``detrend``), and
+  for ``detrend``, the stellar temperature for ``extract``), and
 * the identity of the stage it reads from; the first stage reads the raw
-  visit, whose identity covers every raw file's name, size and modification
-  time and the content of the instrument profile and its reference files.
+  visit, whose identity is the **content** of the raw files (with their
+  names), of the reference files and of the instrument profile's settings,
+  and the source position (:func:`raw_identity`).
 
 Changing a parameter of one stage therefore changes the folder of that stage
 and of every stage after it, and nothing before it; earlier folders stay in
-place for comparison.  A folder is complete when its ``entry.json`` exists:
-it is written last, after every product of the entry.
+place for comparison.  Copying, moving or touching a visit keeps every
+identity; changing one byte of a raw or reference file changes them all.
+
+Bookkeeping is done once per run: :func:`make_plan` hashes the raw and
+reference files (remembering digests across runs, see :mod:`.digests`),
+computes every stage identity and keeps the inventory of exposures, and the
+tasks receive the identities as the Luigi parameter ``chain`` (so a task
+built from its parameters anywhere, another machine's worker included,
+knows its folder without looking at the raw files).  ``complete()`` is one
+file test; a chunk reads only its own inputs.
+
+A folder is complete when its ``entry.json`` exists and is valid: it is
+written last, after every product of the entry.  Every task makes its output
+while holding a lock on it (:mod:`.locks`), so that two reducers of one visit
+never make the same product twice.
 """
 
 import getpass
 import hashlib
+import inspect
 import json
+import os
 import socket
 import time
+from contextlib import contextmanager
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from functools import lru_cache
 from pathlib import Path
@@ -30,16 +48,21 @@ from pathlib import Path
 import luigi
 
 from lightledger.pipeline import __version__
+from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER, STAGES
 
+from . import locks
 from .config import load_visit
-from .products import Provenance, relative_input, write_json
-from .digests import CACHE_NAME, DigestCache
+from .digests import CACHE_NAME, DigestCache, sha256_of
+from .products import Provenance, known_digest, part_pattern, relative_input, write_json
 
-__all__ = ["VisitTask", "visit_config", "stage_identity", "stage_dir", "ENTRY_NAME",
-           "settings_to_text", "settings_from_text"]
+__all__ = ["VisitTask", "RunPlan", "make_plan", "register_plan", "visit_config", "raw_identity",
+           "stage_identity", "stage_dir", "stage_hash", "chunk_ranges", "read_entry",
+           "ENTRY_NAME", "settings_to_text", "settings_from_text", "product_digest"]
 
 ENTRY_NAME = "entry.json"
+#: Suffix of the hidden record a task writes beside its output once made.
+MADE_SUFFIX = ".made"
 
 
 def settings_to_text(settings):
@@ -58,7 +81,7 @@ def _visit_cached(path, settings_text, stamp):
 
 def _stamp(path):
     st = Path(path).stat()
-    return (st.st_mtime_ns, st.st_size)
+    return (st.st_mtime_ns, st.st_size, st.st_ino)
 
 
 def visit_config(path, settings_text="[]"):
@@ -68,7 +91,16 @@ def visit_config(path, settings_text="[]"):
     return _visit_cached(str(Path(path).resolve()), settings_text, _stamp(path))
 
 
-#: Digests of files known to this process (the notebook's record is read once per notebook).
+def chunk_ranges(n_exposures, chunk_size):
+    """(start, stop) exposure ranges of each chunk."""
+    return [(i, min(i + chunk_size, n_exposures)) for i in range(0, n_exposures, chunk_size)]
+
+
+# ---------------------------------------------------------------------------
+# identities
+# ---------------------------------------------------------------------------
+
+#: Digest records of notebooks known to this process.
 _DIGESTS = {}
 
 
@@ -81,7 +113,7 @@ def digest_cache(notebook):
 
 
 def file_digest(path, notebook=None):
-    """SHA-256 of a file, hashed again only when its size, times or inode changed."""
+    """SHA-256 of an input file, hashed again only when its size, times or inode changed."""
     cache = digest_cache(notebook) if notebook is not None else _MEMORY
     return cache.digest(path)
 
@@ -110,6 +142,12 @@ def raw_files(visit):
     return sorted(Path(visit.raw).glob("*.fits"))
 
 
+def raw_identity_of(raw, references, visit):
+    """Raw identity from ``raw`` [(name, sha256)] and ``references`` {role: sha256}."""
+    return _hash("raw", sorted(raw), profile_content(visit.profile), dict(sorted(references.items())),
+                 [visit.target["source_x"], visit.target["source_y"]])
+
+
 def raw_identity(visit, digests=None):
     """Identity of the raw visit: the content of its raw and reference files.
 
@@ -129,12 +167,12 @@ def raw_identity(visit, digests=None):
     """
     digest = digests or (lambda p: file_digest(p, visit.notebook))
     raw = [(p.name, digest(p)) for p in raw_files(visit)]
-    refs = {role: digest(f) for role, f in sorted(visit.profile.files.items()) if f is not None}
-    return _hash("raw", raw, profile_content(visit.profile), refs,
-                 [visit.target["source_x"], visit.target["source_y"]])
+    refs = {role: digest(f) for role, f in visit.profile.files.items() if f is not None}
+    return raw_identity_of(raw, refs, visit)
 
 
-def _stage_facts(visit, stage):
+def stage_facts(visit, stage):
+    """The visit facts a stage uses besides its parameters (part of its identity)."""
     if stage == "bin":
         return [visit.target["ra"], visit.target["dec"]]
     if stage == "detrend":
@@ -144,14 +182,25 @@ def _stage_facts(visit, stage):
     return []
 
 
+_stage_facts = stage_facts
+
+
+def stage_params(visit, stage):
+    """A stage's resolved parameters as a sorted list of [name, value] (JSON-ready)."""
+    return sorted((k, list(v) if isinstance(v, tuple) else v) for k, v in visit.stages[stage].items())
+
+
+def stage_hash(visit, stage, upstream):
+    """Identity (hex) of ``stage`` given the identity of what it reads from."""
+    return _hash(stage, STAGES[stage].version, stage_params(visit, stage), stage_facts(visit, stage),
+                 upstream)
+
+
 def stage_identity(visit, stage):
-    """Identity hash (hex) of ``stage`` for this visit and its settings."""
+    """Identity hash (hex) of ``stage`` for this visit and its settings, from the files."""
     index = STAGE_ORDER.index(stage)
     upstream = raw_identity(visit) if index == 0 else stage_identity(visit, STAGE_ORDER[index - 1])
-    spec = STAGES[stage]
-    params = sorted((k, list(v) if isinstance(v, tuple) else v)
-                    for k, v in visit.stages[stage].items())
-    return _hash(stage, spec.version, params, _stage_facts(visit, stage), upstream)
+    return stage_hash(visit, stage, upstream)
 
 
 def stage_dir(visit, stage):
@@ -159,42 +208,392 @@ def stage_dir(visit, stage):
     return Path(visit.notebook) / f"{stage}-{stage_identity(visit, stage)[:10]}"
 
 
+# ---------------------------------------------------------------------------
+# the run plan: what a run computes once and hands to its tasks
+# ---------------------------------------------------------------------------
+
+@dataclass
+class RunPlan:
+    """Bookkeeping of one run, computed once (see :func:`make_plan`).
+
+    Attributes
+    ----------
+    visit : config.Visit
+    settings : str
+        Canonical text of the command-line overrides.
+    digests : dict
+        Absolute path (str) of every raw and reference file to its SHA-256.
+    raw : list of (name, sha256)
+        The raw files.
+    references : dict
+        Reference-file role to SHA-256.
+    raw_identity : str
+    identities : dict
+        Stage name to its identity (hex).
+    refs : list of rawio.ExposureRef or None
+        The inventory (every exposure in start-time order), when taken.
+    """
+
+    visit: object
+    settings: str
+    digests: dict
+    raw: list
+    references: dict
+    raw_identity: str
+    identities: dict
+    refs: list | None = None
+
+    def chain(self, stage):
+        """The ``chain`` parameter of a task of ``stage``: raw and stage identities up to it."""
+        index = STAGE_ORDER.index(stage)
+        return ":".join([self.raw_identity] + [self.identities[s] for s in STAGE_ORDER[:index + 1]])
+
+    def folder(self, stage):
+        return Path(self.visit.notebook) / f"{stage}-{self.identities[stage][:10]}"
+
+
+def make_plan(visit, settings_text="[]", refs=None):
+    """Hash the raw and reference files (once, remembered) and compute every identity.
+
+    Parameters
+    ----------
+    visit : config.Visit
+    settings_text : str
+    refs : list of rawio.ExposureRef, optional
+        The inventory, when the caller has taken it.
+
+    Returns
+    -------
+    RunPlan
+    """
+    cache = digest_cache(visit.notebook)
+    digests = {}
+    raw = []
+    for path in raw_files(visit):
+        digests[str(path)] = value = cache.digest(path)
+        raw.append((path.name, value))
+    references = {}
+    for role, path in visit.profile.files.items():
+        if path is not None:
+            digests[str(Path(path))] = references[role] = cache.digest(path)
+    cache.save()
+    raw_ident = raw_identity_of(raw, references, visit)
+    identities, upstream = {}, raw_ident
+    for stage in STAGE_ORDER:
+        identities[stage] = upstream = stage_hash(visit, stage, upstream)
+    return RunPlan(visit=visit, settings=settings_text, digests=digests, raw=raw,
+                   references=references, raw_identity=raw_ident, identities=identities, refs=refs)
+
+
+#: Plans of the runs this process made or was handed (forked workers inherit them).
+_PLANS = {}
+
+
+def register_plan(plan):
+    """Make ``plan`` the one tasks of its visit, settings and raw identity use in this process."""
+    key = (str(Path(plan.visit.path).resolve()), plan.settings, plan.raw_identity)
+    if len(_PLANS) > 16:
+        _PLANS.clear()
+    _PLANS[key] = plan
+    return plan
+
+
+def _find_plan(visit, settings, raw_ident):
+    return _PLANS.get((str(Path(visit).resolve()), settings, raw_ident))
+
+
+# ---------------------------------------------------------------------------
+# digests of products and the records of who made them
+# ---------------------------------------------------------------------------
+
+def made_record_path(path):
+    """Hidden record beside a task's output: ``.NAME.made`` (JSON)."""
+    path = Path(path)
+    return path.parent / f".{path.name}{MADE_SUFFIX}"
+
+
+def _stat_key(path):
+    st = os.stat(path)
+    return [st.st_size, st.st_mtime_ns, st.st_ino]
+
+
+def read_made_record(path):
+    """The record of who made a task's output (dict), or {} when there is none."""
+    try:
+        doc = json.loads(made_record_path(path).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    return doc if isinstance(doc, dict) else {}
+
+
+@lru_cache(maxsize=64)
+def _entry_outputs(path, stamp):
+    entry = read_entry(path)
+    return entry.get("outputs", {}) if entry else {}
+
+
+def product_digest(path):
+    """SHA-256 of a product, from what was recorded when it was written where possible.
+
+    Looks in this process's record of writes, then in the made-record of a
+    task's output (valid while the file's size, time and inode are those
+    recorded), then in the folder's entry (valid for files not modified after
+    it); hashes the file otherwise.
+    """
+    path = Path(path)
+    value = known_digest(path)
+    if value:
+        return value
+    try:
+        key = _stat_key(path)
+    except FileNotFoundError:
+        raise LightledgerError(f"{path}: missing; it should have been made before this step") from None
+    record = read_made_record(path)
+    if record.get("stat") == key and record.get("sha256"):
+        return record["sha256"]
+    entry = path.parent / ENTRY_NAME
+    try:
+        est = os.stat(entry)
+        if est.st_mtime_ns >= key[1]:
+            value = _entry_outputs(str(entry), (est.st_mtime_ns, est.st_size, est.st_ino)).get(path.name)
+            if value:
+                return value
+    except FileNotFoundError:
+        pass
+    return sha256_of(path)
+
+
+# ---------------------------------------------------------------------------
+# entries
+# ---------------------------------------------------------------------------
+
+def read_entry(path, stage=None):
+    """The contents of an ``entry.json`` (dict), or None when missing or not a valid entry."""
+    try:
+        entry = json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    if not isinstance(entry, dict) or not isinstance(entry.get("stage"), str) \
+            or not isinstance(entry.get("params"), dict) or not isinstance(entry.get("outputs"), dict):
+        return None
+    if stage is not None and entry["stage"] != stage:
+        return None
+    return entry
+
+
+# ---------------------------------------------------------------------------
+# the task base
+# ---------------------------------------------------------------------------
+
 class VisitTask(luigi.Task):
-    """Base of every stage task: a visit description plus command-line settings."""
+    """Base of every stage task: a visit description, command-line settings, identities.
+
+    Subclasses define ``stage``, ``requires()``, ``output()`` (one file of the
+    stage folder) and ``run()``.  Every ``run()`` is wrapped: it checks that the
+    visit still has the identities it was scheduled with, moves a forced
+    stage's old folder aside, takes the folder's and the output's locks, and
+    returns at once when another reducer made the output meanwhile; after a
+    successful run it writes the output's made-record (who, when, how long,
+    its SHA-256).
+    """
 
     visit = luigi.Parameter(description="path of the visit description (TOML)")
     settings = luigi.Parameter(default="[]",
                                description="JSON list of [stage, key, value] overrides (--set)")
+    chain = luigi.Parameter(default="",
+                            description="identities of the raw visit and of every stage up to this "
+                                        "one, colon-separated (computed once per run); empty: "
+                                        "computed from the files")
+    force_from = luigi.Parameter(default="",
+                                 description="first forced stage (--force), or empty")
+    force_after = luigi.FloatParameter(default=0.0,
+                                       description="a forced stage is made again unless its entry "
+                                                   "is newer than this time (seconds since 1970)")
+    run_id = luigi.Parameter(default="", significant=False,
+                             description="identifier of the reduction that scheduled this task")
 
     #: Stage this task belongs to; set by subclasses.
     stage = None
 
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        if "run" in cls.__dict__:
+            cls.run = _guarded(cls.__dict__["run"])
+
+    # -- the plan ---------------------------------------------------------------
+    @property
+    def plan(self):
+        """The run's plan when this process has it (None otherwise)."""
+        if "_plan" not in self.__dict__:
+            plan = None
+            if self.chain:
+                plan = _find_plan(self.visit, self.settings, self.chain.split(":")[0])
+            else:
+                plan = register_plan(make_plan(visit_config(self.visit, self.settings), self.settings))
+            self.__dict__["_plan"] = plan
+        return self.__dict__["_plan"]
+
+    @property
+    def identities(self):
+        """[raw identity, calibrate identity, ...] up to this task's stage."""
+        if "_ids" not in self.__dict__:
+            if self.chain:
+                ids = self.chain.split(":")
+            else:
+                ids = self.plan.chain(self.stage).split(":")
+            if len(ids) < STAGE_ORDER.index(self.stage) + 2:
+                raise LightledgerError(f"{self.task_id}: the chain parameter is too short for "
+                                       f"the {self.stage} stage")
+            self.__dict__["_ids"] = ids
+        return self.__dict__["_ids"]
+
     @property
     def config(self):
+        plan = self.plan
+        if plan is not None:
+            return plan.visit
         return visit_config(self.visit, self.settings)
 
     @property
     def params(self):
         return self.config.stages[self.stage]
 
+    def stage_folder(self, stage):
+        """Folder of ``stage`` (this one or an earlier one) in this task's chain."""
+        index = STAGE_ORDER.index(stage)
+        return Path(self.config.notebook) / f"{stage}-{self.identities[index + 1][:10]}"
+
     @property
     def folder(self):
-        return stage_dir(self.config, self.stage)
+        return self.stage_folder(self.stage)
 
     @property
     def identity(self):
-        return stage_identity(self.config, self.stage)[:10]
+        return self.identities[STAGE_ORDER.index(self.stage) + 1][:10]
+
+    def check_identity(self):
+        """Raise when the visit description no longer gives this task's identity."""
+        if self.plan is not None:
+            return
+        index = STAGE_ORDER.index(self.stage)
+        ids = self.identities
+        if stage_hash(self.config, self.stage, ids[index]) != ids[index + 1]:
+            raise LightledgerError(f"{self.visit}: the visit description changed while the "
+                                   f"{self.stage} stage was scheduled; run lightledger reduce again")
 
     def stage_task(self, cls, **extra):
-        """Another task of the same visit and settings."""
-        return cls(visit=self.visit, settings=self.settings, **extra)
+        """Another task of the same visit, settings and run."""
+        index = STAGE_ORDER.index(cls.stage)
+        forced = bool(self.force_from) and index >= STAGE_ORDER.index(self.force_from)
+        return cls(visit=self.visit, settings=self.settings,
+                   chain=":".join(self.identities[:index + 2]),
+                   force_from=self.force_from if forced else "",
+                   force_after=self.force_after if forced else 0.0,
+                   run_id=self.run_id, **extra)
+
+    # -- the inventory and chunks ----------------------------------------------
+    def exposures(self):
+        """Every exposure of the visit (rawio.ExposureRef) in start-time order."""
+        plan = self.plan
+        if plan is not None and plan.refs is not None:
+            return plan.refs
+        return _inventory_refs(self.stage_folder("calibrate") / "inventory.ecsv", self.config.raw)
+
+    def chunk_count(self):
+        """Number of chunks of ``calibrate.chunk_size`` exposures."""
+        return len(chunk_ranges(len(self.exposures()), self.config.stages["calibrate"]["chunk_size"]))
+
+    def chunk_span(self, chunk):
+        """(start, stop) exposure numbers of a chunk."""
+        return chunk_ranges(len(self.exposures()), self.config.stages["calibrate"]["chunk_size"])[chunk]
+
+    def chunk_exposures(self, chunk):
+        """The exposures of one chunk."""
+        start, stop = self.chunk_span(chunk)
+        return self.exposures()[start:stop]
+
+    def calibrated_chunks(self):
+        """Paths of the calibrated frames of every chunk (``frames-NNN.fits``)."""
+        folder = self.stage_folder("calibrate")
+        return [folder / f"frames-{k:03d}.fits" for k in range(self.chunk_count())]
+
+    # -- digests ----------------------------------------------------------------
+    def input_digest(self, path):
+        """SHA-256 of an input: a raw or reference file from the plan, a product as recorded."""
+        path = Path(path)
+        plan = self.plan
+        if plan is not None:
+            value = plan.digests.get(str(path))
+            if value:
+                return value
+        try:
+            inside = path.resolve().is_relative_to(Path(self.config.notebook).resolve())
+        except OSError:
+            inside = False
+        if inside:
+            return product_digest(path)
+        return file_digest(path, self.config.notebook)
 
     def provenance(self, inputs):
         """Provenance for a product of this task; ``inputs`` is a list of paths."""
-        digests = {relative_input(p, self.folder): file_digest(p) for p in inputs}
+        digests = {relative_input(p, self.folder): self.input_digest(p) for p in inputs}
         return Provenance(self.stage, STAGES[self.stage].version, self.identity, self.params,
                           digests, visit=self.config.name)
 
+    # -- completion -------------------------------------------------------------
+    @property
+    def forced(self):
+        return bool(self.force_from) and \
+            STAGE_ORDER.index(self.stage) >= STAGE_ORDER.index(self.force_from)
+
+    def complete(self):
+        """One file test (two for a forced stage; an entry is also parsed)."""
+        path = Path(self.output().path)
+        try:
+            st = os.stat(path)
+        except FileNotFoundError:
+            return False
+        entry = self.folder / ENTRY_NAME
+        if self.forced:
+            try:
+                est = st if path == entry else os.stat(entry)
+            except FileNotFoundError:
+                est = None          # the folder is being made anew
+            if est is not None and est.st_mtime < self.force_after:
+                return False
+        if path.name == ENTRY_NAME:
+            return read_entry(path, self.stage) is not None
+        return True
+
+    def made_by_this_run(self):
+        """True when this task's output was made by the run that scheduled it."""
+        return bool(self.run_id) and read_made_record(self.output().path).get("run") == self.run_id
+
+    # -- forcing ---------------------------------------------------------------
+    def supersede_if_old(self):
+        """Move a forced stage's complete folder aside when its entry predates the run.
+
+        Done under the folder's exclusive lock, so never while another task
+        writes into it; a folder whose entry is newer than the run's start was
+        made again by a run that started later, or is being made (no entry):
+        it is kept.
+        """
+        folder = self.folder
+        entry = folder / ENTRY_NAME
+        try:
+            if os.stat(entry).st_mtime >= self.force_after:
+                return
+        except FileNotFoundError:
+            return
+        with locks.locked(locks.folder_lock_path(folder)):
+            try:
+                if os.stat(entry).st_mtime >= self.force_after:
+                    return
+            except FileNotFoundError:
+                return
+            supersede(folder)
+
+    # -- progress, failure, entry -------------------------------------------------
     def progress(self, done, total, what):
         """Report progress to Luigi's scheduler (status message and percentage)."""
         percent = 100.0 * done / max(total, 1)
@@ -211,20 +610,22 @@ class VisitTask(luigi.Task):
         """Record a one-line reason for the command line, then let Luigi record its own."""
         import traceback
 
-        from lightledger.pipeline.errors import LightledgerError
-
         if isinstance(exception, LightledgerError):
             text = f"lightledger: error: {exception}"
         else:
             text = (f"lightledger: {self.task_family} failed (a bug; please report it):\n"
                     + "".join(traceback.format_exception(exception)).rstrip())
         try:
-            folder = Path(self.config.notebook) / ".failures"
+            folder = Path(self.config.notebook) / ".failures" / (self.run_id or "by-hand")
             folder.mkdir(parents=True, exist_ok=True)
             (folder / f"{self.task_id}.txt").write_text(text + "\n", encoding="utf-8")
         except Exception:
             pass
         return super().on_failure(exception)
+
+    def task_seconds(self, paths):
+        """Seconds the tasks that made ``paths`` ran (from their made-records)."""
+        return float(sum(read_made_record(p).get("seconds", 0.0) for p in paths))
 
     def write_entry(self, path, inputs, outputs, metrics, figures, started, *, extra_seconds=0.0):
         """Write the stage's entry.json (the completion marker), atomically.
@@ -232,35 +633,160 @@ class VisitTask(luigi.Task):
         ``seconds`` is this task's own time since ``started`` plus ``extra_seconds``
         spent in the stage's other tasks (its chunks).
         """
+        index = STAGE_ORDER.index(self.stage)
+        ids = self.identities
+        visit = self.config
         entry = {
             "stage": self.stage,
             "identity": self.identity,
+            "identity_hash": ids[index + 1],
+            "upstream": ids[index],
             "folder": Path(self.folder).name,
-            "visit": self.config.name,
-            "visit_file": str(self.config.path),
+            "visit": visit.name,
+            "visit_file": str(visit.path),
+            "target": visit.target.get("name") or "",
+            "event": visit.event.get("kind", ""),
             "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
             "user": _user(),
             "host": socket.gethostname(),
+            "run": self.run_id,
             "software_version": __version__,
             "stage_version": STAGES[self.stage].version,
             "seconds": round(time.time() - started + extra_seconds, 2),
             "params": {k: list(v) if isinstance(v, tuple) else v for k, v in self.params.items()},
-            "overrides": self.config.overrides.get(self.stage, {}),
-            "made_from": (stage_dir(self.config, STAGE_ORDER[STAGE_ORDER.index(self.stage) - 1]).name
-                          if self.stage != STAGE_ORDER[0] else str(self.config.raw)),
-            "inputs": {relative_input(p, self.folder): file_digest(p) for p in inputs},
-            "outputs": {Path(p).name: file_digest(p) for p in outputs},
+            "facts": stage_facts(visit, self.stage),
+            "overrides": visit.overrides.get(self.stage, {}),
+            "made_from": (self.stage_folder(STAGE_ORDER[index - 1]).name if index else "raw"),
+            "inputs": {relative_input(p, self.folder): self.input_digest(p) for p in inputs},
+            "outputs": {Path(p).name: product_digest(p) for p in [*outputs, *figures]},
             "metrics": metrics,
             "figures": [Path(f).name for f in figures],
         }
+        if index == 0:
+            entry["raw"] = self._raw_record()
         write_json(path, entry)
 
+    def _raw_record(self):
+        """What the raw identity was computed from (so that audit can recompute it)."""
+        plan = self.plan
+        visit = self.config
+        if plan is not None:
+            raw, references = plan.raw, plan.references
+        else:
+            raw = [(p.name, file_digest(p, visit.notebook)) for p in raw_files(visit)]
+            references = {r: file_digest(f, visit.notebook) for r, f in visit.profile.files.items()
+                          if f is not None}
+        return {"files": dict(sorted(raw)), "references": dict(sorted(references.items())),
+                "profile": profile_content(visit.profile),
+                "source": [visit.target["source_x"], visit.target["source_y"]]}
 
-def elapsed_of(paths):
-    """Sum of the ELAPSED primary-header keyword (task seconds) of FITS products."""
-    from astropy.io import fits
 
-    return float(sum(fits.getheader(p).get("ELAPSED", 0.0) for p in paths))
+def raw_identity_from_record(record):
+    """Recompute the raw identity from an entry's ``raw`` record (see ``write_entry``)."""
+    return _hash("raw", sorted([n, d] for n, d in record["files"].items()), record["profile"],
+                 dict(sorted(record["references"].items())), record["source"])
+
+
+def supersede(folder):
+    """Rename a stage folder to ``NAME.superseded-TIME`` (the caller holds its lock)."""
+    folder = Path(folder)
+    stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S")
+    target = folder.with_name(f"{folder.name}.superseded-{stamp}")
+    n = 1
+    while target.exists():
+        n += 1
+        target = folder.with_name(f"{folder.name}.superseded-{stamp}-{n}")
+    folder.rename(target)
+    return target
+
+
+def remove_parts(folder, name=None):
+    """Remove temporary files of dead writers in a folder (of one product, or all).
+
+    The caller holds the product's lock (or the folder's exclusive lock), so
+    no live process is writing them.
+    """
+    pattern = part_pattern(name) if name else ".*.part"
+    removed = 0
+    for part in Path(folder).glob(pattern):
+        try:
+            part.unlink()
+            removed += 1
+        except FileNotFoundError:
+            pass
+    return removed
+
+
+def _guarded(run):
+    """Wrap a task's ``run`` (plain or generator) with the checks and locks of :class:`VisitTask`."""
+    if inspect.isgeneratorfunction(run):
+        def wrapper(self):
+            with _claim(self) as fresh:
+                if fresh:
+                    yield from run(self)
+                    _record(self)
+    else:
+        def wrapper(self):
+            with _claim(self) as fresh:
+                if fresh:
+                    result = run(self)
+                    _record(self)
+                    return result
+    wrapper.__name__ = run.__name__
+    wrapper.__doc__ = run.__doc__
+    wrapper.__wrapped__ = run
+    return wrapper
+
+
+@contextmanager
+def _claim(task):
+    task.check_identity()
+    if task.forced:
+        task.supersede_if_old()
+    folder = task.folder
+    output = Path(task.output().path)
+    shared = locks.acquire(locks.folder_lock_path(folder), shared=True)
+    try:
+        own = locks.acquire(locks.product_lock_path(folder, output.name))
+        try:
+            if task.complete():
+                yield False          # another reducer made it while this one waited
+                return
+            remove_parts(folder, output.name)
+            task.__dict__["_started"] = time.time()
+            yield True
+        finally:
+            locks.release(own)
+    finally:
+        locks.release(shared)
+
+
+def _record(task):
+    output = Path(task.output().path)
+    if not output.exists():
+        return
+    record = {"run": task.run_id, "task": task.task_family,
+              "seconds": round(time.time() - task.__dict__.get("_started", time.time()), 3),
+              "host": socket.gethostname(), "pid": os.getpid(),
+              "stat": _stat_key(output), "sha256": known_digest(output) or sha256_of(output)}
+    write_json(made_record_path(output), record)
+
+
+@lru_cache(maxsize=4)
+def _inventory_cached(path, stamp, raw):
+    from astropy.table import Table
+
+    from .rawio import refs_from_table
+    return refs_from_table(Table.read(path, format="ascii.ecsv"), raw)
+
+
+def _inventory_refs(path, raw):
+    """Exposures from an inventory product, read once per process while it is unchanged."""
+    try:
+        stamp = _stamp(path)
+    except FileNotFoundError:
+        raise LightledgerError(f"{path}: the inventory is missing; run lightledger reduce again") from None
+    return _inventory_cached(str(path), stamp, str(raw))
 
 
 def _user():

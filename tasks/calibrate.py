@@ -31,19 +31,14 @@ from astropy.table import Table, vstack
 from lightledger.pipeline import mask as dq
 from lightledger.pipeline.calibrate import calibrate_exposure
 
-from .base import ENTRY_NAME, VisitTask, elapsed_of
+from .base import ENTRY_NAME, VisitTask, chunk_ranges
 from .geometry import expected_source_rows
 from .products import table_hdu, write_ecsv, write_fits
-from .rawio import inventory, inventory_table, read_exposures, refs_from_table
+from .rawio import inventory, inventory_table, read_exposures
 from .references import load_references
 
 __all__ = ["Inventory", "CalibrateChunk", "Calibrate", "chunk_ranges", "read_chunk",
            "calibrate_reads"]
-
-
-def chunk_ranges(n_exposures, chunk_size):
-    """(start, stop) exposure ranges of each chunk."""
-    return [(i, min(i + chunk_size, n_exposures)) for i in range(0, n_exposures, chunk_size)]
 
 
 def _destripe_mode(setting, scan_velocity):
@@ -94,16 +89,13 @@ class Inventory(VisitTask):
         return luigi.LocalTarget(str(self.folder / "inventory.ecsv"))
 
     def run(self):
-        visit = self.config
-        refs = inventory(visit.raw, visit.profile)
+        visit, plan = self.config, self.plan
+        # the run took the inventory once before any task ran; a task run elsewhere takes it again
+        refs = plan.refs if plan is not None and plan.refs is not None \
+            else inventory(visit.raw, visit.profile)
         table = inventory_table(refs)
         files = sorted({r.file for r in refs})
-        write_ecsv(self.output().path, table, self.provenance([visit.path, visit.profile.path, *files]))
-
-
-def read_inventory(task):
-    table = Table.read(task.input_inventory().path, format="ascii.ecsv")
-    return table, refs_from_table(table, task.config.raw)
+        write_ecsv(self.output().path, table, self.provenance(files))
 
 
 class CalibrateChunk(VisitTask):
@@ -115,18 +107,13 @@ class CalibrateChunk(VisitTask):
     def requires(self):
         return self.stage_task(Inventory)
 
-    def input_inventory(self):
-        return self.input()
-
     def output(self):
         return luigi.LocalTarget(str(self.folder / f"frames-{self.chunk:03d}.fits"))
 
     def run(self):
-        started = time.time()
         visit, params = self.config, self.params
-        table, refs = read_inventory(self)
-        start, stop = chunk_ranges(len(refs), params["chunk_size"])[self.chunk]
-        refs = refs[start:stop]
+        start, stop = self.chunk_span(self.chunk)
+        refs = self.chunk_exposures(self.chunk)
         ny, nx = refs[0].shape[1:]
         ref = load_references(visit.profile, (ny, nx), refs[0].origin, visit.target["source_x"])
         flux = np.empty((len(refs), ny, nx), np.float32)
@@ -164,8 +151,7 @@ class CalibrateChunk(VisitTask):
         inputs = [self.input().path, *sorted({e.file for e in refs}),
                   *[f for f in visit.profile.files.values() if f is not None]]
         write_fits(self.output().path, hdus, self.provenance(inputs),
-                       header={"CHUNK": self.chunk, "EXPFIRST": start, "EXPLAST": stop - 1,
-                               "ELAPSED": (round(time.time() - started, 3), "seconds this task ran")})
+                   header={"CHUNK": self.chunk, "EXPFIRST": start, "EXPLAST": stop - 1})
 
 
 def read_chunk(path, *, exposures_only=False):
@@ -190,9 +176,7 @@ class Calibrate(VisitTask):
         return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
 
     def chunk_tasks(self):
-        n = len(Table.read(self.input().path, format="ascii.ecsv"))
-        return [self.stage_task(CalibrateChunk, chunk=i)
-                for i in range(len(chunk_ranges(n, self.params["chunk_size"])))]
+        return [self.stage_task(CalibrateChunk, chunk=i) for i in range(self.chunk_count())]
 
     def run(self):
         chunks = self.chunk_tasks()
@@ -213,7 +197,7 @@ class Calibrate(VisitTask):
                    **{f"flagged {k.lower()} (pixel-exposures)": v for k, v in counts.items() if v}}
         self.write_entry(self.output().path, [self.input().path, *paths],
                          [*paths, table_path, self.input().path], metrics, [fig_path], started,
-                         extra_seconds=elapsed_of(paths))
+                         extra_seconds=self.task_seconds(paths))
 
     def final_product(self):
         return self.folder / "exposures.ecsv"

@@ -38,18 +38,14 @@ from lightledger.pipeline.trace import fit_trace, refine, scan_band
 from lightledger.pipeline.wavelength import (column_wavelengths, pixel_edges, reference_column,
                                              refine_solution)
 
-from .base import ENTRY_NAME, VisitTask, elapsed_of
-from .calibrate import Calibrate, chunk_ranges, read_chunk
+from .base import ENTRY_NAME, VisitTask, chunk_ranges
+from .calibrate import Calibrate, read_chunk
 from .products import table_hdu, write_fits
 from .references import load_throughput
 
 __all__ = ["ExtractReference", "ExtractChunk", "Extract"]
 
 N_REFERENCE = 24
-
-
-def _chunk_paths(calibrate_task):
-    return [c.output().path for c in calibrate_task.chunk_tasks()]
 
 
 def _good_frames(flux, bits):
@@ -69,10 +65,9 @@ class ExtractReference(VisitTask):
         return luigi.LocalTarget(str(self.folder / "reference.fits"))
 
     def run(self):
-        started = time.time()
         visit, params = self.config, self.params
         calib = self.requires()
-        paths = _chunk_paths(calib)
+        paths = self.calibrated_chunks()
         exposures = Table.read(calib.folder / "exposures.ecsv", format="ascii.ecsv")
         n = len(exposures)
         pick = np.unique(np.linspace(0, n - 1, min(N_REFERENCE, n)).round().astype(int))
@@ -114,8 +109,7 @@ class ExtractReference(VisitTask):
                           TRRMS=(float(trace.residual_rms), "rms of column centroids about the fit"))
             for k, c in enumerate(trace.coefficients):
                 header[f"TRCOEF{k}"] = (float(c), f"trace row polynomial coefficient {k}")
-        header.update(APLO=(lo, "aperture first row"), APHI=(hi, "aperture row after the last"),
-                      ELAPSED=(round(time.time() - started, 3), "seconds this task ran"))
+        header.update(APLO=(lo, "aperture first row"), APHI=(hi, "aperture row after the last"))
         ref_spec = np.sum(median[lo:hi], axis=0)
 
         origin_x = int(exposures["origin_x"][0])
@@ -176,10 +170,8 @@ class ExtractChunk(VisitTask):
         return luigi.LocalTarget(str(self.folder / f"spectra-{self.chunk:03d}.fits"))
 
     def run(self):
-        started = time.time()
         params = self.params
-        calib = self.stage_task(Calibrate)
-        chunk_path = _chunk_paths(calib)[self.chunk]
+        chunk_path = self.stage_folder("calibrate") / f"frames-{self.chunk:03d}.fits"
         header, refspec, _ = read_reference(self.input().path)
         self.progress(0, 3, f"chunk {self.chunk} extraction")
         flux, var, bits, exposures = read_chunk(chunk_path)
@@ -237,8 +229,7 @@ class ExtractChunk(VisitTask):
                 table_hdu(table, "EXPOSURES"),
                 fits.ImageHDU(first_profile, name="PROFILE")]
         write_fits(self.output().path, hdus, self.provenance([chunk_path, self.input().path]),
-                       header={"CHUNK": self.chunk,
-                           "ELAPSED": (round(time.time() - started, 3), "seconds this task ran")})
+                   header={"CHUNK": self.chunk})
         self.progress(3, 3, f"chunk {self.chunk} extraction")
 
 
@@ -257,8 +248,7 @@ class Extract(VisitTask):
         return self.folder / "spectra.fits"
 
     def run(self):
-        calib = self.stage_task(Calibrate)
-        chunks = [self.stage_task(ExtractChunk, chunk=i) for i in range(len(calib.chunk_tasks()))]
+        chunks = [self.stage_task(ExtractChunk, chunk=i) for i in range(self.chunk_count())]
         yield chunks
         started = time.time()     # run() starts again once the chunks are complete
         fluxes, variances, masks, tables = [], [], [], []
@@ -307,4 +297,4 @@ class Extract(VisitTask):
                    "masked spectral pixels": int(np.sum(mask > 0)),
                    "aperture rows": [int(header["APLO"]), int(header["APHI"])]}
         self.write_entry(self.output().path, inputs, [path, self.input().path], metrics, [fig],
-                         started, extra_seconds=elapsed_of(inputs))
+                         started, extra_seconds=self.task_seconds(inputs))

@@ -33,8 +33,36 @@ from lightledger.pipeline import __version__
 
 from .digests import current_umask, sha256_of
 
-__all__ = ["Provenance", "relative_input", "resolve_input", "atomic_path", "table_hdu", "write_fits", "write_ecsv", "write_json",
-           "save_figure", "read_provenance"]
+__all__ = ["Provenance", "relative_input", "resolve_input", "atomic_path", "part_pattern", "table_hdu",
+           "write_fits", "write_ecsv", "write_json", "save_figure", "read_provenance",
+           "known_digest"]
+
+#: SHA-256 of the files this process wrote: path -> ((size, mtime_ns, inode), sha256).
+_WRITTEN = {}
+
+
+def _remember(path):
+    """Hash a file just written, once, and remember it while it is unchanged."""
+    path = os.path.abspath(path)
+    st = os.stat(path)
+    digest = sha256_of(path)
+    if len(_WRITTEN) > 4096:
+        _WRITTEN.clear()
+    _WRITTEN[path] = ((st.st_size, st.st_mtime_ns, st.st_ino), digest)
+    return digest
+
+
+def known_digest(path):
+    """SHA-256 of a file this process wrote, if it is unchanged since; else None."""
+    path = os.path.abspath(path)
+    known = _WRITTEN.get(path)
+    if known is None:
+        return None
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        return None
+    return known[1] if known[0] == (st.st_size, st.st_mtime_ns, st.st_ino) else None
 
 
 class Provenance:
@@ -112,9 +140,11 @@ def relative_input(path, folder):
     """Name of an input as recorded: its path relative to the product's folder.
 
     Relative names keep a notebook (with its raw files beside it) valid when
-    the whole visit folder is moved or copied.
+    the whole visit folder is moved or copied.  Both paths are taken as given
+    (made absolute, symbolic links not followed): the visit description's
+    paths are resolved when it is read, so no file is looked at here.
     """
-    return os.path.relpath(Path(path).resolve(), Path(folder).resolve())
+    return os.path.relpath(os.path.abspath(path), os.path.abspath(folder))
 
 
 def resolve_input(product, name):
@@ -214,7 +244,7 @@ def write_fits(path, hdus, provenance, *, header=None):
         hdu._get_timestamp = _checksum_comment
     with atomic_path(path) as tmp:
         hdul.writeto(tmp, overwrite=True, checksum=True)
-    return sha256_of(path)
+    return _remember(path)
 
 
 def _checksum_comment():
@@ -230,7 +260,7 @@ def write_ecsv(path, table, provenance):
     table.meta.update({"lightledger": provenance.meta()})
     with atomic_path(path) as tmp:
         table.write(tmp, format="ascii.ecsv", overwrite=True)
-    return sha256_of(path)
+    return _remember(path)
 
 
 def write_json(path, document):
@@ -239,7 +269,7 @@ def write_json(path, document):
         with open(tmp, "w", encoding="utf-8") as fh:
             json.dump(document, fh, indent=2, sort_keys=False, default=_jsonable)
             fh.write("\n")
-    return sha256_of(path)
+    return _remember(path)
 
 
 def save_figure(fig, path, *, dpi=110):
@@ -251,7 +281,7 @@ def save_figure(fig, path, *, dpi=110):
             fig.savefig(tmp, format="png", dpi=dpi)
     finally:
         plt.close(fig)
-    return sha256_of(path)
+    return _remember(path)
 
 
 def read_provenance(path):

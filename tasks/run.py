@@ -3,8 +3,8 @@
 import logging
 import shutil
 import time
+import uuid
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
 from pathlib import Path
 
 import luigi
@@ -13,10 +13,12 @@ from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER
 
 from . import figures  # noqa: F401  (matplotlib loads once here, not in every worker)
-from .base import PROGRESS, digest_cache, raw_identity, settings_to_text, stage_dir, visit_config
+from . import locks
+from .base import (PROGRESS, VisitTask, make_plan, register_plan, remove_parts, settings_to_text,
+                   visit_config)
 from .rawio import inventory
 
-__all__ = ["RunResult", "reduce_visit", "stage_task"]
+__all__ = ["RunResult", "reduce_visit", "stage_task", "sweep"]
 
 
 @dataclass
@@ -30,25 +32,57 @@ class RunResult:
     messages: list = field(default_factory=list)  # one line per failure
 
 
-def stage_task(stage, visit, settings_text):
-    """The Luigi task that completes ``stage`` for a visit."""
+def stage_task(stage, plan, *, force_from="", force_after=0.0, run_id=""):
+    """The Luigi task that completes ``stage`` for a visit, given the run's plan."""
     from . import stages
 
     cls = {"calibrate": stages.Calibrate, "extract": stages.Extract, "bin": stages.Bin,
            "detrend": stages.Detrend}[stage]
-    return cls(visit=str(visit), settings=settings_text)
+    forced = bool(force_from) and STAGE_ORDER.index(stage) >= STAGE_ORDER.index(force_from)
+    return cls(visit=str(plan.visit.path), settings=plan.settings, chain=plan.chain(stage),
+               force_from=force_from if forced else "", force_after=force_after if forced else 0.0,
+               run_id=run_id)
 
 
-def _supersede(visit, stages_to_force):
-    """Move the folders of forced stages (and everything after) aside, kept for comparison."""
-    if not stages_to_force:
-        return
-    first = min(STAGE_ORDER.index(s) for s in stages_to_force)
-    stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S")
-    for stage in STAGE_ORDER[first:]:
-        folder = stage_dir(visit, stage)
-        if folder.exists():
-            folder.rename(folder.with_name(f"{folder.name}.superseded-{stamp}"))
+def _check_force(force, until):
+    """The first forced stage, or "" (a forced stage after ``until`` is a user's mistake)."""
+    if not force:
+        return ""
+    for stage in force:
+        if stage not in STAGE_ORDER:
+            raise LightledgerError(f"--force {stage}: not a stage; stages are {', '.join(STAGE_ORDER)}")
+    first = min(force, key=STAGE_ORDER.index)
+    late = [s for s in force if STAGE_ORDER.index(s) > STAGE_ORDER.index(until)]
+    if late:
+        raise LightledgerError(f"--force {late[0]} with --until {until}: the run stops before "
+                               f"{late[0]}, so it cannot make it again")
+    return first
+
+
+def sweep(notebook, folders=None):
+    """Remove temporary files that dead runs left in a notebook's stage folders.
+
+    A folder is swept only when no process writes into it (its exclusive lock
+    is free at once); busy folders are left for a later run.
+    """
+    notebook = Path(notebook)
+    if not notebook.is_dir():
+        return 0
+    removed = 0
+    candidates = folders if folders is not None else [
+        p for p in notebook.iterdir() if p.is_dir() and not p.name.startswith(".")]
+    for folder in candidates:
+        folder = Path(folder)
+        if not folder.is_dir() or not any(folder.glob(".*.part")):
+            continue
+        with locks.locked(locks.folder_lock_path(folder), blocking=False) as held:
+            if held:
+                removed += remove_parts(folder)
+    if any(notebook.glob(".*.part")):
+        with locks.locked(locks.notebook_lock_path(notebook), blocking=False) as held:
+            if held:
+                removed += remove_parts(notebook)
+    return removed
 
 
 def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), progress=None,
@@ -66,7 +100,9 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     until : str, optional
         Last stage to run.
     force : list of str
-        Stages to run again although complete.
+        Stages to make again although complete (with every stage after them up
+        to ``until``); a folder made again is kept beside the new one, renamed
+        ``...superseded-TIME``, at the moment its replacement starts.
     progress : callable, optional
         ``progress(stage, what, done, total)``.
     scheduler : (host, port), optional
@@ -79,24 +115,36 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     Raises
     ------
     LightledgerError
-        When the visit description, its profile or the raw files are unusable
-        (found before any task runs).
+        When the visit description, its profile or the raw files are unusable,
+        or the options contradict each other (found before any task runs).
+
+    Notes
+    -----
+    The bookkeeping is done here, once: the inventory of exposures, the
+    digests of the raw and reference files and every identity
+    (:func:`lightledger.tasks.base.make_plan`); the tasks receive the
+    identities as parameters and the plan in memory.
     """
+    started = time.time()
+    until = until or STAGE_ORDER[-1]
+    if until not in STAGE_ORDER:
+        raise LightledgerError(f"--until {until}: not a stage; stages are {', '.join(STAGE_ORDER)}")
+    force_from = _check_force(list(force or ()), until)
+    if workers < 1:
+        raise LightledgerError("--workers must be at least 1")
     settings_text = settings_to_text(settings)
     visit = visit_config(visit_path, settings_text)
     refs = inventory(visit.raw, visit.profile)   # fails early, with one line, on bad raw files
     if not refs:
         raise LightledgerError(f"{visit.raw}: the visit holds no exposures")
-    if workers < 1:
-        raise LightledgerError("--workers must be at least 1")
-    raw_identity(visit)                     # hashes new or changed files once, then remembers
-    digest_cache(visit.notebook).save()
-    _supersede(visit, force)
-    until = until or STAGE_ORDER[-1]
-    task = stage_task(until, visit.path, settings_text)
-    failures = Path(visit.notebook) / ".failures"
-    if failures.exists():
-        shutil.rmtree(failures)
+    plan = register_plan(make_plan(visit, settings_text, refs))
+    run_id = uuid.uuid4().hex
+    notebook = Path(visit.notebook)
+    notebook.mkdir(parents=True, exist_ok=True)
+    sweep(notebook)
+    task = stage_task(until, plan, force_from=force_from, force_after=started if force_from else 0.0,
+                      run_id=run_id)
+    failures = notebook / ".failures" / run_id
 
     PROGRESS["callback"] = progress
     logging.getLogger("luigi-interface").setLevel(logging.CRITICAL)
@@ -132,12 +180,13 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
             text = file.read_text().rstrip()
             if text not in messages:       # chunks that fail alike say so once
                 messages.append(text)
+        shutil.rmtree(failures, ignore_errors=True)
     ok = task.complete()
     if not ok and not messages:
         messages.append(f"lightledger: error: the reduction did not complete ({summary.status})")
 
     from .notebook import write_page
-    page = write_page(visit.notebook)
+    page = write_page(notebook)
     final = task.final_product() if ok else None
     return RunResult(ok=ok, final=final, page=page, ran=sorted(ran), messages=messages)
 
@@ -152,7 +201,12 @@ def _others_running(summary):
 
 
 def _ran_families(summary):
-    """Families of the tasks that this build ran (not those found complete), sorted."""
+    """Families of the tasks that this build ran, sorted.
+
+    Not those found complete, nor those another reducer made while this one
+    waited for the product's lock (their made-record names another run).
+    """
     from luigi.execution_summary import _partition_tasks
 
-    return sorted(task.task_family for task in _partition_tasks(summary.worker)["completed"])
+    return sorted(task.task_family for task in _partition_tasks(summary.worker)["completed"]
+                  if not isinstance(task, VisitTask) or task.made_by_this_run())
