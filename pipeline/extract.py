@@ -87,13 +87,13 @@ for digital image processing" (citation from memory).
 """
 
 from dataclasses import dataclass
-import warnings
 
 import numpy as np
 from numpy.polynomial import legendre
 from scipy import sparse
 
 from .errors import AllMaskedError, ParameterError
+from .ramps import masked_median
 
 __all__ = ["Spectrum", "fit_profile", "optimal_extract", "box_extract",
            "extract_chunk"]
@@ -213,15 +213,19 @@ def _polynomial_smooth(y, w, order, threshold, n_iter):
 
 
 def _median_smooth(y, w, window):
-    """Running median along the last axis over pixels with ``w > 0``."""
+    """Running median along the last axis over pixels with ``w > 0``.
+
+    The median of each window ignores the other pixels (as ``numpy.nanmedian``
+    would, with the same result) through :func:`.ramps.masked_median`, which
+    sorts windows of up to 8 pixels by a comparator network: several times
+    faster than ``nanmedian`` on the 7-pixel screening window.
+    """
     half = window // 2
     vals = np.where(w > 0, y, np.nan)
     pad = [(0, 0)] * (vals.ndim - 1) + [(half, half)]
     vals = np.pad(vals, pad, constant_values=np.nan)
     windows = np.lib.stride_tricks.sliding_window_view(vals, window, axis=-1)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN windows
-        model = np.nanmedian(windows, axis=-1)
+    model, _ = masked_median(windows, False, axis=-1)                 # all-masked: NaN
     return np.where(np.isfinite(model), model, 0.0)
 
 

@@ -177,10 +177,11 @@ STAGES = {
         Param("band_padding", 3, "int",
               "rows added on each side of the band a scan crossed in each read difference",
               minimum=0, maximum=50),
-        Param("chunk_size", 16, "int",
-              "exposures per calibration product (one Luigi task each)", minimum=1),
+        Param("chunk_size", 0, "int",
+              "exposures per calibration and extraction product (one Luigi task each); "
+              "0 = a quarter of the visit, at least 16 and at most 64", minimum=0),
     )),
-    "extract": StageSpec("extract", "2", "calibrated frames to aligned spectra", (
+    "extract": StageSpec("extract", "3", "calibrated frames to aligned spectra", (
         Param("method", "optimal", "str", "'optimal' (Horne 1986) or 'box'",
               choices=("optimal", "box")),
         Param("aperture_padding", 6.0, "float",

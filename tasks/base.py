@@ -57,7 +57,7 @@ from .digests import CACHE_NAME, DigestCache, sha256_of
 from .products import Provenance, known_digest, part_pattern, relative_input, write_json
 
 __all__ = ["VisitTask", "RunPlan", "make_plan", "register_plan", "visit_config", "raw_identity",
-           "stage_identity", "stage_dir", "stage_hash", "chunk_ranges", "read_entry",
+           "stage_identity", "stage_dir", "stage_hash", "chunk_ranges", "chunk_length", "AUTO_CHUNK", "read_entry",
            "ENTRY_NAME", "settings_to_text", "settings_from_text", "product_digest"]
 
 ENTRY_NAME = "entry.json"
@@ -91,9 +91,28 @@ def visit_config(path, settings_text="[]"):
     return _visit_cached(str(Path(path).resolve()), settings_text, _stamp(path))
 
 
+#: Least and most exposures of an automatic chunk (``calibrate.chunk_size = 0``).
+AUTO_CHUNK = (16, 64)
+
+
+def chunk_length(n_exposures, chunk_size):
+    """Exposures per chunk: ``chunk_size``, or for 0 a quarter of the visit within :data:`AUTO_CHUNK`.
+
+    A quarter keeps two workers busy on a short visit; the upper bound keeps a
+    chunk's memory (its raw reads and calibrated frames) the same for every
+    longer visit, and the lower bound keeps a task long against the
+    scheduler's and the products' fixed cost per task.
+    """
+    if chunk_size:
+        return int(chunk_size)
+    lo, hi = AUTO_CHUNK
+    return int(min(hi, max(lo, -(-n_exposures // 4))))
+
+
 def chunk_ranges(n_exposures, chunk_size):
-    """(start, stop) exposure ranges of each chunk."""
-    return [(i, min(i + chunk_size, n_exposures)) for i in range(0, n_exposures, chunk_size)]
+    """(start, stop) exposure ranges of each chunk (``chunk_size`` 0 = automatic)."""
+    size = chunk_length(n_exposures, chunk_size)
+    return [(i, min(i + size, n_exposures)) for i in range(0, n_exposures, size)]
 
 
 # ---------------------------------------------------------------------------

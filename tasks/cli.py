@@ -23,9 +23,33 @@ import os
 import sys
 import time
 
-from lightledger.pipeline import __version__
-from lightledger.pipeline.errors import LightledgerError
-from lightledger.pipeline.parameters import STAGE_ORDER, parse_assignment
+#: Variables that set the thread count of the BLAS and OpenMP libraries under numpy.
+BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS",
+                         "BLIS_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")
+
+
+def one_blas_thread(environ=os.environ):
+    """Ask the BLAS for one thread per process unless the user set a thread count.
+
+    Parallelism comes from Luigi's worker processes (``--workers``); a
+    threaded BLAS inside each of them only competes for the same cores and
+    stalls when another process is busy.  Must run before numpy is imported
+    (the command line does it first thing); setting any of
+    :data:`BLAS_THREAD_VARIABLES` yourself keeps your choice.  Returns True
+    when it set them.
+    """
+    if any(name in environ for name in BLAS_THREAD_VARIABLES):
+        return False
+    for name in BLAS_THREAD_VARIABLES:
+        environ[name] = "1"
+    return True
+
+
+one_blas_thread()
+
+from lightledger.pipeline import __version__  # noqa: E402  (after the BLAS threads are set)
+from lightledger.pipeline.errors import LightledgerError  # noqa: E402
+from lightledger.pipeline.parameters import STAGE_ORDER, parse_assignment  # noqa: E402
 
 __all__ = ["main"]
 

@@ -223,8 +223,9 @@ class ExtractChunk(VisitTask):
             drifts[name].unit = "pix"
         table = hstack([exposures, drifts])
         first_profile = np.asarray(spec.profile[0], np.float32)
-        hdus = [fits.ImageHDU(np.asarray(out_flux, np.float64), name="FLUX"),
-                fits.ImageHDU(np.asarray(out_var, np.float64), name="VARIANCE"),
+        # float32 keeps 7 significant digits, far below the photon noise of any pixel
+        hdus = [fits.ImageHDU(np.asarray(out_flux, np.float32), name="FLUX"),
+                fits.ImageHDU(np.asarray(out_var, np.float32), name="VARIANCE"),
                 fits.ImageHDU(np.asarray(out_mask, np.uint8), name="MASK"),
                 table_hdu(table, "EXPOSURES"),
                 fits.ImageHDU(first_profile, name="PROFILE")]
@@ -251,17 +252,19 @@ class Extract(VisitTask):
         chunks = [self.stage_task(ExtractChunk, chunk=i) for i in range(self.chunk_count())]
         yield chunks
         started = time.time()     # run() starts again once the chunks are complete
+        # the chunks' spectra stay float32 (half the memory of the visit's float64 copy)
         fluxes, variances, masks, tables = [], [], [], []
         profile = None
         for task in chunks:
             with fits.open(task.output().path, memmap=False) as hdul:
-                fluxes.append(np.asarray(hdul["FLUX"].data, float))
-                variances.append(np.asarray(hdul["VARIANCE"].data, float))
+                fluxes.append(np.asarray(hdul["FLUX"].data, np.float32))
+                variances.append(np.asarray(hdul["VARIANCE"].data, np.float32))
                 masks.append(np.asarray(hdul["MASK"].data, np.uint8))
                 tables.append(Table(hdul["EXPOSURES"].data))
                 if profile is None:
                     profile = np.asarray(hdul["PROFILE"].data, float)
         flux, var, mask = np.concatenate(fluxes), np.concatenate(variances), np.concatenate(masks)
+        del fluxes, variances, masks
         exposures = vstack(tables)
         header, refspec, _ = read_reference(self.input().path)
         wave = Table()

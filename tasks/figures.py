@@ -1,5 +1,7 @@
 """Diagnostic figures of each stage (PNG, written through :func:`products.save_figure`)."""
 
+import warnings
+
 import matplotlib
 
 matplotlib.use("Agg")
@@ -11,6 +13,29 @@ from lightledger.pipeline import mask as dq  # noqa: E402
 from .products import save_figure  # noqa: E402
 
 __all__ = ["calibrate_figure", "extract_figure", "bin_figure", "detrend_figure"]
+
+
+#: Most rows of an image drawn from per-exposure data (a figure is ~800 pixels tall).
+MAX_ROWS = 600
+
+
+def decimate_rows(values, max_rows=MAX_ROWS):
+    """Mean of consecutive groups of rows (NaN ignored), so at most ``max_rows`` remain.
+
+    Returns ``(decimated, step)``; ``step`` rows of ``values`` make one row.
+    """
+    values = np.asarray(values)
+    step = max(1, -(-len(values) // max_rows))
+    if step == 1:
+        return values, 1
+    n = len(values) // step * step
+    groups = values[:n].reshape((n // step, step) + values.shape[1:])
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)        # a group of NaN only
+        out = np.nanmean(groups, axis=1)
+        if n < len(values):
+            out = np.concatenate([out, np.nanmean(values[n:], axis=0, keepdims=True)])
+    return out, step
 
 
 def _hours(days):
@@ -55,13 +80,15 @@ def calibrate_figure(path, frame, bits, exposures):
 def extract_figure(path, wavelength, flux, exposures, profile_image):
     """Waterfall of normalised spectra, shifts against time, the spatial profile image."""
     fig, axes = plt.subplots(2, 2, figsize=(11, 7), constrained_layout=True)
+    n_exposures = len(flux)
+    flux, _ = decimate_rows(flux)               # means of consecutive exposures, at most 600 rows
     med = np.nanmedian(flux, axis=0)
     bright = med > 0.2 * np.nanmax(med)           # the faint ends would swamp the colour scale
     ratio = flux / np.where(bright, med, np.nan)
     ratio = ratio / np.nanmedian(ratio, axis=1, keepdims=True)
     lo, hi = np.nanpercentile(ratio[:, bright], [1, 99]) if np.any(bright) else (0.99, 1.01)
     axes[0, 0].imshow(ratio, origin="lower", aspect="auto", cmap="viridis", vmin=lo, vmax=hi,
-                      extent=[wavelength[0], wavelength[-1], 0, len(flux)])
+                      extent=[wavelength[0], wavelength[-1], 0, n_exposures])
     axes[0, 0].set_xlabel("wavelength (um)")
     axes[0, 0].set_ylabel("exposure")
     axes[0, 0].set_title("spectra / median spectrum")
