@@ -630,13 +630,17 @@ def optimal_extract(flux, variance, mask=None, *, threshold=5.0, max_iter=10,
                     method="optimal")
 
 
-def box_extract(flux, variance, mask=None):
+def box_extract(flux, variance, mask=None, *, profile=None, rows=None, threshold=None,
+                max_iter=10, min_coverage=0.5):
     """Box (unweighted sum) extraction over the rows given.
 
-    A column with any masked, non-finite or non-positive-variance pixel is
-    flagged unusable (the plain sum cannot recover the missing flux; use
-    :func:`optimal_extract` for that).  Raises AllMaskedError when every
-    pixel is bad.  Inputs are not modified.
+    Without ``profile``, a column with any masked, non-finite or
+    non-positive-variance pixel is flagged unusable (the plain sum cannot
+    recover the missing flux).  With ``profile``, the flux of such pixels is
+    recovered through the profile (the usual patch of a box sum) and a column
+    is flagged only when its good pixels hold less than ``min_coverage`` of the
+    profile.  Raises AllMaskedError when every pixel is bad.  Inputs are not
+    modified.
 
     Parameters
     ----------
@@ -646,25 +650,88 @@ def box_extract(flux, variance, mask=None):
         Pixel variance, e-^2.
     mask : array_like of bool, same shape, optional
         True = bad pixel.
+    profile : array_like, same shape, optional, keyword-only
+        Non-negative spatial profile of each exposure (e.g. from
+        :func:`fit_profile`); it is renormalised to unit sum over the box
+        rows of each column.
+    rows : array_like of bool, same shape, optional
+        True for the pixels inside each exposure's box (a box that follows a
+        moving band); default every row.  Pixels outside are neither summed
+        nor counted as missing.
+    threshold : float, optional
+        With ``profile``: a pixel with ``(D - f P)^2 > threshold^2 V`` is
+        rejected as an outlier and patched like a masked pixel, the worst one
+        per column per iteration, at most ``max_iter`` iterations; default no
+        rejection.
+    max_iter : int
+        Largest number of rejection iterations.
+    min_coverage : float
+        Smallest profile fraction held by the good pixels of a usable column
+        (with ``profile``), in (0, 1].
 
     Returns
     -------
     Spectrum
-        ``profile`` holds ones (each pixel weighted 1); nothing is rejected.
+        ``profile`` holds the box's weights (ones inside the box); rejected
+        pixels are in ``rejected``.
 
     Notes
     -----
-    ``f = sum_y D`` of independent pixels has ``var f = sum_y V``.
+    ``f = sum_y D`` of independent pixels has ``var f = sum_y V``.  With a
+    profile P normalised over the box, the patched sum is
+    ``f = sum_y M D + f sum_y (1 - M) P``, i.e. ``f = sum(M D) / sum(M P)``
+    (M = 1 for a good pixel), with ``var f = sum(M V) / sum(M P)^2`` (P taken
+    as exact); with no pixel missing both reduce to the plain sum.
     """
     flux, variance, good = _validate(flux, variance, mask)
-    bad_col = ~good.all(axis=1)
-    f = np.where(good, flux, 0.0).sum(axis=1)
-    v = np.where(good, variance, 0.0).sum(axis=1)
-    zeros = np.zeros(flux.shape, dtype=bool)
+    inside = np.ones(flux.shape, bool) if rows is None else _as_cube("rows", rows, dtype=bool)
+    if inside.shape != flux.shape:
+        raise ParameterError(f"rows: shape {inside.shape} must equal flux shape {flux.shape}")
+    good = good & inside
+    weights = inside.astype(float)
+    data = np.where(good, flux, 0.0)
+    var_pix = np.where(good, variance, 0.0)
+    rejected = np.zeros(flux.shape, dtype=bool)
+    if profile is None:
+        bad_col = ~(good | ~inside).all(axis=1) | ~good.any(axis=1)
+        f = data.sum(axis=1)
+        v = var_pix.sum(axis=1)
+    else:
+        prof = np.broadcast_to(np.asarray(profile, dtype=float), flux.shape)
+        if not np.all(np.isfinite(prof)) or np.any(prof < 0):
+            raise ParameterError("profile: must be finite and >= 0")
+        min_coverage = float(min_coverage)
+        if not 0 < min_coverage <= 1:
+            raise ParameterError(f"min_coverage: must be in (0, 1], got {min_coverage}")
+        prof = np.where(inside, prof, 0.0)
+        total = prof.sum(axis=1, keepdims=True)
+        prof = np.where(total > 0, prof / np.where(total > 0, total, 1.0), 0.0)
+        use = good.copy()
+        for _ in range(int(max_iter) + 1 if threshold is not None else 1):
+            cover = (prof * use).sum(axis=1)
+            f = np.where(cover > 0, (data * use).sum(axis=1) / np.where(cover > 0, cover, 1.0), 0.0)
+            if threshold is None:
+                break
+            score = np.where(use, (data - f[:, None, :] * prof) ** 2
+                             / np.where(use, variance, 1.0), -1.0)
+            worst = np.argmax(score, axis=1)
+            worst_score = np.take_along_axis(score, worst[:, None, :], axis=1)[:, 0, :]
+            hit = worst_score > float(threshold) ** 2
+            if not hit.any():
+                break
+            e_idx, x_idx = np.nonzero(hit)
+            y_idx = worst[e_idx, x_idx]
+            use[e_idx, y_idx, x_idx] = False
+            rejected[e_idx, y_idx, x_idx] = True
+        cover = (prof * use).sum(axis=1)
+        f = np.where(cover > 0, (data * use).sum(axis=1) / np.where(cover > 0, cover, 1.0), 0.0)
+        v = np.where(cover > 0, (var_pix * use).sum(axis=1) / np.where(cover > 0, cover, 1.0) ** 2,
+                     np.nan)
+        bad_col = ~(cover >= min_coverage) | ~np.isfinite(f) | ~np.isfinite(v)
     return Spectrum(flux=np.where(bad_col, np.nan, f),
                     variance=np.where(bad_col, np.nan, v), mask=bad_col,
-                    n_rejected=np.zeros(bad_col.shape, dtype=int),
-                    profile=np.ones(flux.shape), rejected=zeros, row_lo=0,
+                    n_rejected=rejected.sum(axis=1).astype(int),
+                    profile=weights, rejected=rejected, row_lo=0,
                     method="box")
 
 
@@ -677,7 +744,9 @@ def extract_chunk(flux, variance, mask=None, *, method="optimal", aperture=None,
     Pixels where ``mask`` is True are bad (see :func:`optimal_extract` and
     :func:`box_extract` for how each method treats them); rows of the
     aperture outside an exposure's own band (per-exposure apertures of a
-    scan) are treated as masked.  Inputs are not modified.
+    scan) are left out: masked for the optimal extraction, outside the box
+    for the box extraction, which sums each exposure over its own rows.
+    Inputs are not modified.
 
     Parameters
     ----------
@@ -690,9 +759,12 @@ def extract_chunk(flux, variance, mask=None, *, method="optimal", aperture=None,
         shape (n_exposures,) for a band that moves (scans).  Default: all rows.
     threshold, max_iter, profile_method, profile_order, profile_window,
     profile_passes, read_variance, min_coverage
-        See :func:`optimal_extract` (ignored by ``"box"``).
+        See :func:`optimal_extract`.  ``"box"`` uses the profile options to
+        fit the profile that patches masked and outlying pixels (one pass),
+        ``threshold`` and ``max_iter`` for its outliers and ``min_coverage``;
+        it ignores ``profile_passes`` and ``read_variance``.
     trace_offset : array_like of shape (n_columns,) or (n_exposures, n_columns), optional
-        Trace row offset per column (optimal only).
+        Trace row offset per column, for the profile.
 
     Returns
     -------
@@ -728,10 +800,14 @@ def extract_chunk(flux, variance, mask=None, *, method="optimal", aperture=None,
     sub_mask = mask[:, r0:r1] | outside
     sub_flux, sub_var = flux[:, r0:r1], variance[:, r0:r1]
     if method == "box":
-        if np.any(outside):
-            raise ParameterError("aperture: box extraction needs the same rows for "
-                                 "every exposure; use method='optimal' for a moving band")
-        spec = box_extract(sub_flux, sub_var, sub_mask)
+        # each exposure's own rows; missing and outlying pixels patched through the
+        # profile that optimal extraction would use
+        inside = ~np.broadcast_to(outside, sub_flux.shape)
+        prof = fit_profile(sub_flux, sub_var, sub_mask, method=profile_method,
+                           order=profile_order, window=profile_window, threshold=threshold,
+                           trace_offset=trace_offset)
+        spec = box_extract(sub_flux, sub_var, mask[:, r0:r1], profile=prof, rows=inside,
+                           threshold=threshold, max_iter=max_iter, min_coverage=min_coverage)
     else:
         spec = optimal_extract(sub_flux, sub_var, sub_mask, threshold=threshold,
                                max_iter=max_iter, profile_method=profile_method,
