@@ -201,15 +201,22 @@ STAGES = {
         Param("align", True, "bool",
               "resample each spectrum onto the reference grid with its own measured shift"),
     )),
-    "bin": StageSpec("bin", "2", "spectra to channel light curves", (
+    "bin": StageSpec("bin", "3", "spectra to channel light curves", (
         Param("edges", (), "floats", "channel edges in micrometres (takes precedence when given)",
               minimum=0.0),
-        Param("width", 0.0, "float", "uniform channel width in micrometres (used when edges is empty)",
-              minimum=0.0),
-        Param("n_channels", 10, "int", "number of channels when neither edges nor width is given",
-              minimum=1),
+        Param("width", 0.0, "float",
+              "uniform channel width in micrometres over the lit part of the spectrum (used when "
+              "edges is empty)", minimum=0.0),
+        Param("n_channels", 10, "int",
+              "number of channels over the lit part of the spectrum when neither edges nor width "
+              "is given", minimum=1),
         Param("equal_counts", False, "bool",
               "with n_channels: make the channels hold equal numbers of photons"),
+        Param("lit_threshold", 0.05, "float",
+              "a pixel is lit where the median spectrum (5-pixel running median) reaches this "
+              "fraction of its peak; channels from n_channels or width span the lit pixels only, "
+              "and a channel whose mean light is below this fraction is flagged dim (0 = the "
+              "whole spectrum)", minimum=0.0, maximum=0.99),
         Param("white_range", (), "floats", "white band [lo, hi] in micrometres; empty = all channels",
               minimum=0.0),
         Param("fill", "profile", "str",

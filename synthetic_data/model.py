@@ -12,7 +12,8 @@ of reference column X - dx.  The trace centre at column X is
 source_y + row_offset + tilt (X - dx - x_ref) + dy rows; a forward scan
 starts there at the zero read and moves toward increasing rows at
 scan_length / XPOSURE rows/s; a reverse scan starts scan_length rows higher
-and moves back, so both cover the same band.
+and moves back, so both cover the same band (or, with the scenario's
+``reverse_rows``, a band that many rows higher).
 """
 
 from dataclasses import dataclass
@@ -248,7 +249,8 @@ def build_visit(sc, *, seed=0, n_exposures=None, ramps="exponential"):
     ny, nx = sc.sub_shape
     x0, y0 = sc.sub_origin
     # Keep the brightest science pixels free of dead pixels.
-    protect = (slice(y0 + int(sc.source_y - y0) - 3, y0 + int(sc.source_y - y0 + sc.scan_length) + 4),
+    protect = (slice(y0 + int(sc.source_y - y0) - 3,
+                     y0 + int(sc.source_y - y0 + sc.scan_length + abs(sc.reverse_rows)) + 4),
                slice(x0 + 40, x0 + nx - 40))
     refs = detector.make_reference_files(
         rng_refs, full_shape=sc.full_shape, bias_level=sc.bias_level, dark_rate=sc.dark_rate,
@@ -377,7 +379,7 @@ def trace_centre(model, index, columns=None):
     centre = (sc.source_y + sc.row_offset + sc.tilt * (x - model.dx[index] - x_reference(sc))
               + model.dy[index] - sc.sub_origin[1])
     if model.direction[index] < 0:
-        centre = centre + sc.scan_length
+        centre = centre + sc.scan_length + sc.reverse_rows
     return centre
 
 

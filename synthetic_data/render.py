@@ -24,7 +24,7 @@ from astropy.time import Time, TimeDelta
 
 from . import detector, model as vm
 from .sizes import resolve_size
-from .scenarios import SCENARIOS, get_scenario
+from .scenarios import SCENARIOS, Scenario, get_scenario
 from .truth import write_truth
 
 __all__ = ["render", "simulate_reads", "SCENARIOS"]
@@ -190,8 +190,9 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
 
     Parameters
     ----------
-    scenario : str
-        A name in :data:`SCENARIOS`.
+    scenario : str or Scenario
+        A name in :data:`SCENARIOS`, or a scenario's parameters (e.g. one
+        with a field changed by :func:`dataclasses.replace`).
     outdir : str or path-like
         Directory to write (created; existing files of the same names are
         overwritten).
@@ -228,7 +229,8 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
     Memory is bounded by one raw file's reads (exposures are rendered and
     written one file at a time) plus per-exposure tables, whatever the size.
     """
-    sc, n_exposures = resolve_size(get_scenario(scenario), n_exposures=n_exposures,
+    sc = scenario if isinstance(scenario, Scenario) else get_scenario(scenario)
+    sc, n_exposures = resolve_size(sc, n_exposures=n_exposures,
                                    n_orbits=n_orbits)
     model = vm.build_visit(sc, seed=seed, n_exposures=n_exposures, ramps=ramps)
     out = pathlib.Path(outdir)

@@ -115,7 +115,9 @@ class Scenario:
     # charge trapping, for ramps rendered with traps (synthetic_data/model.py)
     trap_populations: tuple = ()      # ((traps e-/pixel, efficiency, release time s), ...)
     trap_initial: tuple = ()          # e-/pixel trapped per population when the visit starts
-    trap_refill: tuple = ()           # e-/pixel added per population at each later orbit's start
+    trap_refill: tuple = ()
+    # rows by which the reverse scans' band sits above the forward scans' (0 = the same band)
+    reverse_rows: float = 0.0           # e-/pixel added per population at each later orbit's start
 
     @property
     def psf_sigma(self):

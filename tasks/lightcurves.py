@@ -24,6 +24,7 @@ from lightledger.pipeline.binning import (bin_spectra, channel_edges_from_list,
                                           equal_count_channel_edges, uniform_channel_edges)
 from lightledger.pipeline.covariates import exposure_covariates
 from lightledger.pipeline.errors import ParameterError
+from lightledger.pipeline.lit import channel_light, lit_range
 from lightledger.pipeline.timing import interpolated_barycentric_times
 
 from .base import ENTRY_NAME, VisitTask
@@ -65,16 +66,21 @@ def _bridge(values):
     return np.where(ok, values, np.interp(index, index[ok], values[ok]))
 
 
-def _channel_edges(params, pixel_edges, mean_spectrum):
+def _channel_edges(params, pixel_edges, mean_spectrum, lit):
+    """Channel edges: the visit's list, or channels made over the lit range ``lit``."""
     lo, hi = float(np.min(pixel_edges)), float(np.max(pixel_edges))
     if params["edges"]:
         edges = channel_edges_from_list(params["edges"])
     elif params["width"] > 0:
-        edges = uniform_channel_edges((lo, hi), width=params["width"])
+        if params["width"] > lit.hi - lit.lo:
+            raise ParameterError(f"bin.width: {params['width']:g} um is wider than the lit part of "
+                                 f"the spectrum, {lit.lo:.4f}-{lit.hi:.4f} um")
+        edges = uniform_channel_edges((lit.lo, lit.hi), width=params["width"])
     elif params["equal_counts"]:
-        edges = equal_count_channel_edges(pixel_edges, mean_spectrum, params["n_channels"])
+        edges = equal_count_channel_edges(pixel_edges, mean_spectrum, params["n_channels"],
+                                          wavelength_range=(lit.lo, lit.hi))
     else:
-        edges = uniform_channel_edges((lo, hi), n_channels=params["n_channels"])
+        edges = uniform_channel_edges((lit.lo, lit.hi), n_channels=params["n_channels"])
     edges = np.asarray(edges, float)
     if edges[0] < lo - 1e-9 or edges[-1] > hi + 1e-9:
         raise ParameterError(f"bin.edges: channels {edges[0]:.4f}-{edges[-1]:.4f} um reach outside "
@@ -148,7 +154,10 @@ class Bin(VisitTask):
         total = np.nansum(np.where(good, flux, 0.0), axis=1)
         median_spec = np.nanmedian(np.where(good, flux, np.nan), axis=0)
         median_spec = _bridge(median_spec)
-        edges = _channel_edges(params, pix_edges, median_spec)
+        lit = lit_range(pix_edges, median_spec, params["lit_threshold"])
+        edges = _channel_edges(params, pix_edges, median_spec, lit)
+        light = channel_light(pix_edges, median_spec, edges, lit.peak)
+        dim = light < params["lit_threshold"]
         fill = fill_var = None
         if params["fill"] == "profile":
             # a bad pixel takes the median spectrum scaled to its exposure's total, and the
@@ -203,6 +212,8 @@ class Bin(VisitTask):
         channels["wave_mid"] = 0.5 * (edges[:-1] + edges[1:])
         channels["n_pixels"] = binned.weights.sum(axis=0)
         channels["mean_counts"] = np.nanmean(binned.flux, axis=0)
+        channels["light"] = light
+        channels["dim"] = dim
         for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),
                            ("n_pixels", "pix"), ("mean_counts", "electron")):
             channels[name].unit = unit
@@ -224,6 +235,9 @@ class Bin(VisitTask):
         hdus[0].header["WLO"] = (float(white_range[0]), "white band lower edge, um")
         hdus[0].header["WHI"] = (float(white_range[1]), "white band upper edge, um")
         hdus[0].header["ERRKIND"] = ("1-sigma", "error columns hold standard deviations")
+        hdus[1].header["LITLO"] = (lit.lo, "lit part of the median spectrum: from, um")
+        hdus[1].header["LITHI"] = (lit.hi, "lit part of the median spectrum: to, um")
+        hdus[1].header["LITTHR"] = (lit.threshold, "lit: smoothed spectrum >= LITTHR x peak")
         write_fits(fits_path, hdus, prov, header={"TIMESYS": "TDB", "TIMEREF": "SOLARSYSTEM"})
         n_ch = len(edges) - 1
         outputs = [fits_path]
@@ -236,6 +250,8 @@ class Bin(VisitTask):
         bin_figure(fig, lc, channels)
         white_flux = lc["white_flux"][~lc["white_mask"]]
         metrics = {"channels": n_ch, "white band (um)": [float(white_range[0]), float(white_range[1])],
+                   "lit part of the spectrum (um)": [round(lit.lo, 4), round(lit.hi, 4)],
+                   "dim channels": [int(j) for j in np.flatnonzero(dim)],
                    "orbits": int(cov.n_orbits),
                    "flagged channel-exposures": int(np.sum(binned.mask)),
                    "filled pixels": int(np.sum(binned.n_filled)),

@@ -439,3 +439,46 @@ def test_unusable_columns_and_errors():
         optimal_extract(data, var, trace_offset=np.zeros(7))
     with pytest.raises(ParameterError, match="trace_offset"):
         fit_profile(data, var, trace_offset=np.full(20, np.nan))
+
+
+def test_box_follows_each_exposures_own_rows_and_patches_through_the_profile():
+    # Definition of a box sum over each exposure's own band (common practice for
+    # scans whose forward and reverse bands sit on different rows): noiseless
+    # frames whose band sits 7 rows apart give exactly the sum over each band;
+    # a masked pixel is recovered through the profile, f = sum(M D) / sum(M P),
+    # which is exact when the profile is (self-consistency of the formula).
+    n_exp, ny, nx = 4, 30, 40
+    spec = smooth_spectrum(nx)
+    centre = np.where(np.arange(n_exp)[:, None] % 2 == 0, 9.3, 16.3) * np.ones((1, nx))
+    prof = gaussian_rows(ny, centre, 1.2)
+    data = spec[None, None, :] * prof
+    var = 100.0 + data
+    lo = np.where(np.arange(n_exp) % 2 == 0, 4, 11)
+    hi = lo + 12
+    box = extract_chunk(data, var, method="box", aperture=(lo, hi))
+    inside = [data[e, lo[e]:hi[e]].sum(axis=0) for e in range(n_exp)]
+    np.testing.assert_allclose(box.flux, inside, rtol=1e-12)
+    assert not box.mask.any()
+    mask = np.zeros(data.shape, bool)
+    mask[1, 16, 5] = mask[2, 9, 20] = True         # the brightest pixel of two columns
+    patched = box_extract(data, var, mask, profile=prof, rows=None)
+    np.testing.assert_allclose(patched.flux, data.sum(axis=1), rtol=1e-9)
+    plain = box_extract(data, var, mask)
+    assert plain.mask[1, 5] and plain.mask[2, 20] and plain.mask.sum() == 2
+
+
+def test_patched_box_variance_monte_carlo():
+    # var f = sum(M V) / sum(M P)^2 for the profile-patched box (derived in the
+    # docstring); a Monte Carlo of 4000 exposures with the core pixel of every
+    # column masked agrees within 4 % (the sample variance of 4000 draws has a
+    # relative error of 2.2 %), and the patched flux is unbiased.
+    rng = np.random.default_rng(11)
+    data, var, prof, spec = simulate(rng, 4000, 9, 12, level=3000.0, read_var=150.0)
+    mask = np.zeros(data.shape, bool)
+    mask[:, 4, :] = True
+    box = box_extract(data, var, mask, profile=np.broadcast_to(prof, data.shape))
+    mc = box.flux.var(axis=0, ddof=1)
+    np.testing.assert_allclose(mc / box.variance.mean(axis=0), 1.0, atol=0.1)
+    assert abs(np.mean(mc / box.variance.mean(axis=0)) - 1) < 0.04
+    sem = np.sqrt(box.variance.mean(axis=0) / len(data))
+    assert np.all(np.abs(box.flux.mean(axis=0) - spec) < 4 * sem)

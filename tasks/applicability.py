@@ -1,0 +1,104 @@
+"""Which stage parameters have no effect on a given visit, and why.
+
+A parameter such as ``detrend.scan_offset`` means nothing for a staring
+visit, and ``bin.n_channels`` means nothing once ``bin.edges`` is given.  The
+parameter still enters the entry's identity (its value is recorded), but the
+notebook entry and page say that it did not apply, so that an observer does
+not read a setting into a result it could not touch.
+
+:func:`not_applying` takes the stage's resolved parameters and a few facts
+about the visit (:func:`visit_facts`) and returns ``{parameter: reason}``.
+"""
+
+__all__ = ["visit_facts", "not_applying"]
+
+
+def visit_facts(*, scanning, n_orbits, kind, phase_curve=None):
+    """The facts that decide whether a parameter applies.
+
+    Parameters
+    ----------
+    scanning : bool
+        True for spatial scans, False for a stare.
+    n_orbits : int or None
+        Orbits of the visit (a stare counts as one); None when not yet known.
+    kind : str
+        The event: ``"transit"`` or ``"eclipse"`` (or another kind).
+    phase_curve : bool, optional
+        Whether the detrend fits phase-curve terms (None when not decided).
+    """
+    return {"scanning": bool(scanning), "n_orbits": n_orbits, "kind": kind,
+            "phase_curve": phase_curve}
+
+
+def _calibrate(p, f):
+    out = {}
+    if f["scanning"]:
+        out["ramp_method"] = "scans are always reduced from read differences masked to the band"
+    else:
+        out["band_padding"] = "a stare has no scanned band"
+    return out
+
+
+def _extract(p, f):
+    out = {}
+    if f["scanning"]:
+        out["follow_tilt"] = "a scanned band is extracted along detector rows"
+    if p.get("method") == "box":
+        out["follow_tilt"] = out.get("follow_tilt", "box extraction sums whole rows")
+    return out
+
+
+def _bin(p, f):
+    out = {}
+    if p.get("edges"):
+        for key in ("width", "n_channels", "equal_counts"):
+            out[key] = "bin.edges is given"
+    elif p.get("width", 0) > 0:
+        out["n_channels"] = "bin.width is given"
+        out["equal_counts"] = "bin.width is given"
+    return out
+
+
+def _detrend(p, f):
+    out = {}
+    if not f["scanning"]:
+        out["scan_offset"] = "a stare has no scan directions"
+        out["orbit_order"] = "a stare has no orbits"
+        out["drop_first_orbit"] = "a stare has no orbits"
+    elif f["n_orbits"] is not None and f["n_orbits"] <= 2:
+        out["drop_first_orbit"] = f"the visit has {f['n_orbits']} orbit(s); at least 3 are needed"
+    if f["kind"] != "eclipse" or f["phase_curve"] is False or p.get("fit") != "joint":
+        why = ("the event is a transit" if f["kind"] != "eclipse"
+               else "no phase curve is fitted" if f["phase_curve"] is False
+               else "the fit is not joint")
+        if "phase_curve_model" in p:
+            out["phase_curve_model"] = why
+    return out
+
+
+_RULES = {"calibrate": _calibrate, "extract": _extract, "bin": _bin, "detrend": _detrend}
+
+
+def not_applying(stage, params, facts):
+    """Parameters of ``stage`` that have no effect on this visit.
+
+    Parameters
+    ----------
+    stage : str
+        A stage name.
+    params : dict
+        The stage's resolved parameters.
+    facts : dict
+        From :func:`visit_facts`.
+
+    Returns
+    -------
+    dict of str to str
+        Parameter name to a one-line reason; only names present in
+        ``params`` (stages without rules give an empty dict).
+    """
+    rule = _RULES.get(stage)
+    if rule is None:
+        return {}
+    return {k: v for k, v in rule(params, facts).items() if k in params}
