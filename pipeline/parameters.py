@@ -181,7 +181,7 @@ STAGES = {
               "exposures per calibration and extraction product (one Luigi task each); "
               "0 = a quarter of the visit, at least 16 and at most 64", minimum=0),
     )),
-    "extract": StageSpec("extract", "3", "calibrated frames to aligned spectra", (
+    "extract": StageSpec("extract", "4", "calibrated frames to aligned spectra", (
         Param("method", "optimal", "str", "'optimal' (Horne 1986) or 'box'",
               choices=("optimal", "box")),
         Param("aperture_padding", 6.0, "float",
