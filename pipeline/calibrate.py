@@ -20,6 +20,7 @@ from .destripe import destripe as _destripe
 from .detector import linearize
 from .errors import ParameterError
 from .ramps import fit_ramps
+from .rawreads import clipped_reads, wrapped_reads
 from .scans import find_bands, sum_scan
 
 __all__ = ["CalibratedExposure", "calibrate_exposure", "RAMP_METHODS", "BACKGROUND_METHODS",
@@ -101,7 +102,8 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
                        destripe="off", jump_threshold=5.0, weighting="optimal",
                        max_jumps=3, source_pad=3, destripe_axes="both",
                        background_options=None, scan_options=None, source_mask=None,
-                       mask_options=None, destripe_options=None):
+                       mask_options=None, destripe_options=None, detect_clipping=False,
+                       clip_level=None, storage_span=0.0):
     """Calibrate one raw exposure of cumulative reads into electrons per pixel.
 
     Mask contract: pixels with a nonzero ``bad_pixels`` value get LISTED_BAD
@@ -134,7 +136,8 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
     read_noise : float or array_like of shape (ny, nx)
         Electrons per read.
     saturation_adu : float or array_like of shape (ny, nx), or None
-        Saturation level, ADU above bias; reads above it are dropped.
+        Saturation level, ADU above bias; reads at or above it are dropped
+        (electronics that clip write the level itself).
     scan_velocity : float
         Rows per second; 0 = staring (slope fit), otherwise spatial scan
         (:func:`lightledger.pipeline.scans.sum_scan`).
@@ -188,6 +191,13 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         Extra keyword options passed to ``destripe`` for staring exposures;
         default ``{"method": "stream"}`` (``"median"`` gives row and column
         medians; ``smoothing``, ``clip``, ``iterations``, ``min_pixels``).
+    detect_clipping : bool, optional
+        Also drop, like saturated reads, reads that repeat their pixel's top
+        value exactly (a clip; :func:`lightledger.pipeline.rawreads.clipped_reads`
+        with ``clip_level``) and reads after an integer-storage wrap-around
+        (:func:`lightledger.pipeline.rawreads.wrapped_reads` with
+        ``storage_span`` ADU).  Off by default: noiseless test ramps of zero
+        flux repeat their value.
 
     Returns
     -------
@@ -276,7 +286,10 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
     if saturation_adu is not None:
         sat_level = _frame(_value(saturation_adu, "adu", "saturation_adu"), shape, "saturation_adu", np.inf)
         with np.errstate(invalid="ignore"):
-            saturated = above > sat_level
+            saturated = above >= sat_level
+    if detect_clipping:
+        untrusted = clipped_reads(r, clip_level) | wrapped_reads(r, storage_span)
+        saturated = untrusted if saturated is None else saturated | untrusted
     e = linearize(above * g, nl)
     e = e - e[0]
     fl_safe = np.where(np.isfinite(fl) & (fl > 0), fl, 1.0)

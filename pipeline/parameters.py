@@ -22,6 +22,7 @@ raise it whenever a change to the stage's code changes its numbers.
 """
 
 import difflib
+import math
 from dataclasses import dataclass, field
 
 from .errors import ParameterError
@@ -118,8 +119,17 @@ def _number(value, kind, label):
             raise ParameterError(f"{label} must be a number, not {value!r}") from None
     if not isinstance(value, (int, float)):
         raise ParameterError(f"{label} must be a number, not {value!r}")
+    if isinstance(value, int):
+        if kind == "int":
+            return int(value)
+        try:
+            return float(value)
+        except OverflowError:
+            raise ParameterError(f"{label} must be a finite number, not {value!r}") from None
+    if not math.isfinite(value):
+        raise ParameterError(f"{label} must be a finite number, not {value!r}")
     if kind == "int":
-        if float(value) != int(value):
+        if value != int(value):
             raise ParameterError(f"{label} must be a whole number, not {value!r}")
         return int(value)
     return float(value)
@@ -158,7 +168,7 @@ def nearest(word, candidates):
 
 
 STAGES = {
-    "calibrate": StageSpec("calibrate", "4", "raw ramps to calibrated frames", (
+    "calibrate": StageSpec("calibrate", "5", "raw ramps to calibrated frames", (
         Param("ramp_method", "fit", "str",
               "staring ramps: 'fit' = weighted up-the-ramp slope, 'diff' = sum of read differences",
               choices=("fit", "diff")),

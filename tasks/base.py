@@ -192,12 +192,18 @@ def raw_identity(visit, digests=None):
 
 def stage_facts(visit, stage):
     """The visit facts a stage uses besides its parameters (part of its identity)."""
+    exclude = getattr(visit, "exclude", None) or {}
     if stage == "bin":
         return [visit.target["ra"], visit.target["dec"]]
     if stage == "detrend":
-        return sorted(visit.event.items())
+        facts = sorted(visit.event.items())
+        return facts + [["exclude.channels", exclude["channels"]]] if exclude.get("channels") \
+            else facts
     if stage == "extract":
         return [visit.target["teff"]]
+    if stage == "calibrate":   # the observer's exclusions change the inventory
+        return [[f"exclude.{k}", exclude[k]] for k in ("files", "exposures", "times")
+                if exclude.get(k)]
     return []
 
 
@@ -250,7 +256,10 @@ class RunPlan:
     identities : dict
         Stage name to its identity (hex).
     refs : list of rawio.ExposureRef or None
-        The inventory (every exposure in start-time order), when taken.
+        The exposures to reduce in start-time order, when taken.
+    inventory : list of rawio.ExposureRef or None
+        Every exposure, set-aside ones included (flagged, with their reason),
+        from the validation pass (:func:`lightledger.tasks.check.check_visit`).
     """
 
     visit: object
@@ -261,6 +270,7 @@ class RunPlan:
     raw_identity: str
     identities: dict
     refs: list | None = None
+    inventory: list | None = None
 
     def chain(self, stage):
         """The ``chain`` parameter of a task of ``stage``: raw and stage identities up to it."""
@@ -271,7 +281,7 @@ class RunPlan:
         return Path(self.visit.notebook) / f"{stage}-{self.identities[stage][:10]}"
 
 
-def make_plan(visit, settings_text="[]", refs=None):
+def make_plan(visit, settings_text="[]", refs=None, inventory=None):
     """Hash the raw and reference files (once, remembered) and compute every identity.
 
     Parameters
@@ -279,7 +289,9 @@ def make_plan(visit, settings_text="[]", refs=None):
     visit : config.Visit
     settings_text : str
     refs : list of rawio.ExposureRef, optional
-        The inventory, when the caller has taken it.
+        The exposures to reduce, when the caller has taken the inventory.
+    inventory : list of rawio.ExposureRef, optional
+        Every exposure, set-aside ones included.
 
     Returns
     -------
@@ -301,7 +313,8 @@ def make_plan(visit, settings_text="[]", refs=None):
     for stage in STAGE_ORDER:
         identities[stage] = upstream = stage_hash(visit, stage, upstream)
     return RunPlan(visit=visit, settings=settings_text, digests=digests, raw=raw,
-                   references=references, raw_identity=raw_ident, identities=identities, refs=refs)
+                   references=references, raw_identity=raw_ident, identities=identities, refs=refs,
+                   inventory=inventory)
 
 
 #: Plans of the runs this process made or was handed (forked workers inherit them).
@@ -512,7 +525,11 @@ class VisitTask(luigi.Task):
 
     # -- the inventory and chunks ----------------------------------------------
     def exposures(self):
-        """Every exposure of the visit (rawio.ExposureRef) in start-time order."""
+        """The exposures to reduce (rawio.ExposureRef) in start-time order.
+
+        Set-aside exposures are not among them; they keep their rows in the
+        inventory product (:meth:`RunPlan.inventory`, the Inventory task).
+        """
         plan = self.plan
         if plan is not None and plan.refs is not None:
             return plan.refs
@@ -626,18 +643,22 @@ class VisitTask(luigi.Task):
             reporter(self.stage, what, done, total)
 
     def on_failure(self, exception):
-        """Record a one-line reason for the command line, then let Luigi record its own."""
-        import traceback
+        """Record the reason and exit status for the command line, then let Luigi record its own.
 
-        if isinstance(exception, LightledgerError):
-            text = f"lightledger: error: {exception}"
-        else:
-            text = (f"lightledger: {self.task_family} failed (a bug; please report it):\n"
-                    + "".join(traceback.format_exception(exception)).rstrip())
+        A user's mistake or a failure of the machine is one line per problem
+        (see :func:`lightledger.tasks.problems.describe_failure`); a pipeline
+        error that names no file is prefixed with the visit and the task.
+        """
+        from .problems import describe_failure
+
+        status, text = describe_failure(exception, context=self._failure_context())
+        if status == 1:
+            text = text.replace("lightledger: internal error", f"lightledger: {self.task_family} "
+                                                                "failed: internal error", 1)
         try:
             folder = Path(self.config.notebook) / ".failures" / (self.run_id or "by-hand")
             folder.mkdir(parents=True, exist_ok=True)
-            (folder / f"{self.task_id}.txt").write_text(text + "\n", encoding="utf-8")
+            (folder / f"{self.task_id}.txt").write_text(f"{status}\n{text}\n", encoding="utf-8")
         except Exception:
             pass
         return super().on_failure(exception)
@@ -645,6 +666,14 @@ class VisitTask(luigi.Task):
     def task_seconds(self, paths):
         """Seconds the tasks that made ``paths`` ran (from their made-records)."""
         return float(sum(read_made_record(p).get("seconds", 0.0) for p in paths))
+
+    def _failure_context(self):
+        chunk = getattr(self, "chunk", None)
+        where = f"{self.stage} stage" + (f", chunk {chunk}" if chunk is not None else "")
+        try:
+            return f"{self.config.path} ({where})"
+        except Exception:
+            return f"{self.visit} ({where})"
 
     def write_entry(self, path, inputs, outputs, metrics, figures, started, *, extra_seconds=0.0):
         """Write the stage's entry.json (the completion marker), atomically.
@@ -795,8 +824,8 @@ def _record(task):
 def _inventory_cached(path, stamp, raw):
     from astropy.table import Table
 
-    from .rawio import refs_from_table
-    return refs_from_table(Table.read(path, format="ascii.ecsv"), raw)
+    from .rawio import refs_from_table, usable
+    return usable(refs_from_table(Table.read(path, format="ascii.ecsv"), raw))
 
 
 def _inventory_refs(path, raw):

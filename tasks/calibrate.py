@@ -4,7 +4,9 @@ Products in ``NOTEBOOK/calibrate-IDENT/``:
 
 ``inventory.ecsv``
     one row per exposure in start-time order: file, index, start time, read
-    times, scan velocity, observer position, subarray origin;
+    times, scan velocity, observer position, subarray origin, and whether it
+    was set aside (``excluded``) with its ``reason``; set-aside exposures keep
+    their rows and their numbers, and are not calibrated;
 ``frames-NNN.fits``
     the calibrated exposures of chunk NNN: FLUX (electrons), VARIANCE
     (electrons squared), FLAGS (the project's data-quality bitfield, legend
@@ -31,10 +33,11 @@ from astropy.table import Table, vstack
 from lightledger.pipeline import mask as dq
 from lightledger.pipeline.calibrate import calibrate_exposure
 
-from .base import ENTRY_NAME, VisitTask, chunk_ranges
+from .base import ENTRY_NAME, VisitTask, chunk_ranges, settings_from_text
+from .check import clip_level, visit_exposures
 from .geometry import expected_source_rows
 from .products import table_hdu, write_ecsv, write_fits
-from .rawio import inventory, inventory_table, read_exposures
+from .rawio import inventory_table, read_exposures
 from .references import load_references
 
 __all__ = ["Inventory", "CalibrateChunk", "Calibrate", "chunk_ranges", "read_chunk",
@@ -77,7 +80,9 @@ def calibrate_reads(visit, params, ref, exp, reads):
         background_method=params["background_method"],
         destripe=_destripe_mode(params["destripe"], exp.scan_velocity),
         jump_threshold=params["break_threshold"],
-        scan_options={"pad_rows": params["band_padding"]} if exp.scan_velocity else None)
+        scan_options={"pad_rows": params["band_padding"]} if exp.scan_velocity else None,
+        detect_clipping=True, clip_level=clip_level(exp, ref.bias, visit.profile.saturation),
+        storage_span=exp.wrap)
 
 
 class Inventory(VisitTask):
@@ -90,9 +95,10 @@ class Inventory(VisitTask):
 
     def run(self):
         visit, plan = self.config, self.plan
-        # the run took the inventory once before any task ran; a task run elsewhere takes it again
-        refs = plan.refs if plan is not None and plan.refs is not None \
-            else inventory(visit.raw, visit.profile)
+        # the run's validation pass listed every exposure, set-aside ones included; a task run
+        # elsewhere takes the list again
+        refs = plan.inventory if plan is not None and plan.inventory is not None \
+            else visit_exposures(self.visit, self.settings, settings_from_text(self.settings))
         table = inventory_table(refs)
         files = sorted({r.file for r in refs})
         write_ecsv(self.output().path, table, self.provenance(files))
@@ -125,7 +131,7 @@ class CalibrateChunk(VisitTask):
             self.progress(i, len(refs), f"chunk {self.chunk} exposures")
             cal = calibrate_reads(visit, params, ref, exp, chunk_reads[i])
             flux[i], var[i], bits[i] = cal.flux, cal.variance, cal.bits
-            row = {"exposure": start + i, "start_mjd_utc": exp.start_mjd,
+            row = {"exposure": exp.exposure, "start_mjd_utc": exp.start_mjd,
                    "mid_offset": cal.mid_time_offset, "integration_time": cal.integration_time,
                    "exposure_time": exp.exposure_time, "scan_velocity": exp.scan_velocity,
                    "scan_direction": int(np.sign(exp.scan_velocity)),
@@ -192,7 +198,14 @@ class Calibrate(VisitTask):
         fig_path = self.folder / "calibrate.png"
         calibrate_figure(fig_path, flux[0], bits[0], exposures)
         counts = {name: int(np.sum(exposures[f"n_{name.lower()}"])) for name in dq.FLAGS}
+        inventory = Table.read(self.input().path, format="ascii.ecsv")
+        aside = inventory[np.asarray(inventory["excluded"], bool)]
         metrics = {"exposures": len(exposures), "chunks": len(paths),
+                   "exposures set aside": len(aside),
+                   **({"set aside (see inventory.ecsv)": [
+                       f"{row['exposure']} {row['file']}"
+                       + (f"[{row['index']}]" if row["index"] >= 0 else "") + f": {row['reason']}"
+                       for row in aside]} if len(aside) else {}),
                    "median background (e-/pixel)": float(np.median(exposures["background_level"])),
                    **{f"flagged {k.lower()} (pixel-exposures)": v for k, v in counts.items() if v}}
         self.write_entry(self.output().path, [self.input().path, *paths],

@@ -3,6 +3,8 @@
 ``lightledger reduce VISIT.toml``
     run the chain of stages on Luigi's local scheduler (or a central one with
     ``--scheduler-host``) and print the final light-curve product's path last;
+``lightledger check VISIT.toml``
+    the validation pass alone: every problem of the visit at once;
 ``lightledger simulate SCENARIO OUTDIR``
     render a fictional visit with known truth;
 ``lightledger demo [DIR]``
@@ -13,9 +15,11 @@
     differences between two entries or two products.
 
 A user's mistake (a missing file, a bad key, a malformed product) prints one
-line ``lightledger: error: ...`` on standard error and exits with status 2,
-whether it is found before the run or inside a stage; a stage that fails for
-any other reason (a bug) prints its traceback and exits with status 1.
+line ``lightledger: error: FILE: what is wrong`` per problem on standard error
+and exits with status 2, whether it is found before the run or inside a stage;
+a failure of the machine (disk full, file-size limit, permission denied)
+prints one such line and exits with status 3; anything else (a bug) says so,
+prints its traceback and exits with status 1.
 """
 
 import argparse
@@ -49,7 +53,7 @@ one_blas_thread()
 
 from lightledger.pipeline import __version__  # noqa: E402  (after the BLAS threads are set)
 from lightledger.pipeline.errors import LightledgerError  # noqa: E402
-from lightledger.pipeline.parameters import STAGE_ORDER, parse_assignment  # noqa: E402
+from lightledger.pipeline.parameters import STAGE_ORDER  # noqa: E402
 
 __all__ = ["main"]
 
@@ -99,6 +103,16 @@ def _parser():
                      help="use a central Luigi scheduler (luigid) on this host instead of the local one")
     red.add_argument("--scheduler-port", type=int, default=8082)
 
+    chk = sub.add_parser("check", help="check a visit (description, profile, raw and reference "
+                                       "files, parameters) and list every problem at once")
+    chk.add_argument("visit", help="visit description (TOML)")
+    chk.add_argument("--set", dest="settings", action="append", default=[], metavar="STAGE.KEY=VALUE",
+                     help="check with this stage parameter overridden (repeatable)")
+    chk.add_argument("--until", choices=STAGE_ORDER,
+                     help="check for a reduction that stops after this stage")
+    chk.add_argument("--headers-only", action="store_true",
+                     help="read headers only (skip reading every exposure's reads)")
+
     sim = sub.add_parser("simulate", help="render a fictional visit with known truth",
                          description="Render a fictional visit with known truth; the same seed "
                                      "gives the same files.",
@@ -145,9 +159,6 @@ def main(argv=None):
     args = _parser().parse_args(argv)
     try:
         return _COMMANDS[args.command](args)
-    except LightledgerError as exc:
-        print(f"lightledger: error: {exc}", file=sys.stderr)
-        return 2
     except BrokenPipeError:   # output piped into a program that stopped reading (head, less)
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
@@ -155,23 +166,34 @@ def main(argv=None):
         print("lightledger: interrupted; complete products are kept, partial ones were not written",
               file=sys.stderr)
         return 130
+    except Exception as exc:   # noqa: BLE001  every exception gets a status and its own words
+        from .problems import describe_failure
+
+        status, text = describe_failure(exc)
+        print(text, file=sys.stderr)
+        return status
 
 
 def _cmd_reduce(args):
     from .run import reduce_visit
 
-    settings = [parse_assignment(text) for text in args.settings]
-    result = reduce_visit(args.visit, settings=settings, workers=args.workers, until=args.until,
+    result = reduce_visit(args.visit, settings=args.settings, workers=args.workers, until=args.until,
                           force=args.force, progress=Progress(),
                           scheduler=(args.scheduler_host, args.scheduler_port)
-                          if args.scheduler_host else None)
+                          if args.scheduler_host else None,
+                          warn=lambda line: print(line, file=sys.stderr))
     for line in result.messages:
         print(line, file=sys.stderr)
+    if result.set_aside:
+        print(f"set aside: {len(result.set_aside)} exposures (listed in the calibrate stage's "
+              f"inventory.ecsv):", file=sys.stderr)
+        for line in result.set_aside:
+            print(f"  {line}", file=sys.stderr)
     if not result.ok:
         # a user's mistake found inside a stage (e.g. channels outside the spectrum) exits like
-        # one found before the run; a failure of the code itself exits with 1
-        user = result.messages and all(m.startswith("lightledger: error:") for m in result.messages)
-        return 2 if user else 1
+        # one found before the run (2); a full disk or a file-size limit exits with 3; a failure
+        # of the code itself with 1
+        return result.status
     if result.ran:
         counts = {}
         for family in result.ran:
@@ -182,6 +204,25 @@ def _cmd_reduce(args):
     print(f"notebook page: {result.page}", file=sys.stderr)
     print(result.final)
     return 0
+
+
+def _cmd_check(args):
+    from .check import check_visit
+
+    progress = Progress()
+    report = check_visit(args.visit, args.settings, until=args.until, read_data=not args.headers_only,
+                         progress=lambda done, total: progress("check", "exposures read", done,
+                                                               total))
+    for line in report.lines():
+        print(line, file=sys.stderr)
+    for ref in report.set_aside:
+        print(f"set aside: {ref.label}: {ref.reason}")
+    n_err = len(report.errors)
+    print(f"{report.visit.path if report.visit else args.visit}: {report.summary()}; "
+          f"{n_err} errors, {len(report.warnings)} warnings")
+    if not n_err:
+        return 0
+    return 3 if all(p.level == "environment" for p in report.errors) else 2
 
 
 def _cmd_simulate(args):
@@ -243,7 +284,7 @@ def _cmd_compare(args):
     return 0
 
 
-_COMMANDS = {"reduce": _cmd_reduce, "simulate": _cmd_simulate, "demo": _cmd_demo, "params": _cmd_params,
+_COMMANDS = {"reduce": _cmd_reduce, "check": _cmd_check, "simulate": _cmd_simulate, "demo": _cmd_demo, "params": _cmd_params,
              "audit": _cmd_audit, "compare": _cmd_compare}
 
 

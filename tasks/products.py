@@ -31,6 +31,7 @@ from astropy.table import Table
 
 from lightledger.pipeline import __version__
 
+from .config import fits_text
 from .digests import current_umask, sha256_of
 
 __all__ = ["Provenance", "relative_input", "resolve_input", "atomic_path", "part_pattern", "table_hdu",
@@ -96,15 +97,18 @@ class Provenance:
         header["LLSTGVER"] = (self.stage_version, "code version of that stage")
         header["LLVERS"] = (__version__, "lightledger version")
         header["LLIDENT"] = (self.identity, "identity hash of the notebook entry")
-        header["LLVISIT"] = (self.visit[:60], "visit name")
+        # FITS headers hold printable ASCII only: a free-text visit name is transliterated
+        # there (the original is in entry.json and the ECSV metadata)
+        header["LLVISIT"] = (fits_text(self.visit, 60), "visit name")
         for key, value in sorted(self.params.items()):
-            header.add_history(f"param {self.stage}.{key} = {_text(value)}")
+            header.add_history(fits_text(f"param {self.stage}.{key} = {_text(value)}"))
         for path, digest in sorted(self.inputs.items()):
-            header.add_history(f"input {Path(path).name} sha256 {digest}")
+            header.add_history(fits_text(f"input {Path(path).name} sha256 {digest}"))
 
     def table_hdu(self):
-        rows = [("param", k, _text(v), "") for k, v in sorted(self.params.items())]
-        rows += [("input", str(p), "", d) for p, d in sorted(self.inputs.items())]
+        rows = [("param", k, fits_text(_text(v)), "") for k, v in sorted(self.params.items())]
+        rows += [("input", fits_text(str(p), reversible=True), "", d)
+                 for p, d in sorted(self.inputs.items())]
         if not rows:
             rows = [("none", "", "", "")]
         kinds, names, values, digests = zip(*rows)

@@ -16,7 +16,7 @@ from . import figures  # noqa: F401  (matplotlib loads once here, not in every w
 from . import locks
 from .base import (PROGRESS, VisitTask, make_plan, register_plan, remove_parts, settings_to_text,
                    visit_config)
-from .rawio import inventory
+from .check import check_visit, parse_settings
 
 __all__ = ["RunResult", "reduce_visit", "stage_task", "sweep"]
 
@@ -30,6 +30,9 @@ class RunResult:
     page: Path | None
     ran: list = field(default_factory=list)      # task families that ran, in no order
     messages: list = field(default_factory=list)  # one line per failure
+    warnings: list = field(default_factory=list)  # lines: validation warnings, result flags
+    set_aside: list = field(default_factory=list)  # "FILE[index]: reason" per set-aside exposure
+    status: int = 0                               # exit status of the command line
 
 
 def stage_task(stage, plan, *, force_from="", force_after=0.0, run_id=""):
@@ -86,14 +89,14 @@ def sweep(notebook, folders=None):
 
 
 def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), progress=None,
-                 scheduler=None):
+                 scheduler=None, warn=None):
     """Reduce a visit up to ``until`` (default: every stage).
 
     Parameters
     ----------
     visit_path : str or Path
         Visit description.
-    settings : list of (stage, key, value)
+    settings : list of (stage, key, value) or of "STAGE.KEY=VALUE" texts
         Overrides from ``--set``.
     workers : int
         Luigi workers.
@@ -107,6 +110,9 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
         ``progress(stage, what, done, total)``.
     scheduler : (host, port), optional
         A central ``luigid`` scheduler; default the local scheduler.
+    warn : callable, optional
+        ``warn(line)`` for each warning of the validation pass, before any
+        stage runs (they are also in the result's ``warnings``).
 
     Returns
     -------
@@ -115,13 +121,16 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     Raises
     ------
     LightledgerError
-        When the visit description, its profile or the raw files are unusable,
-        or the options contradict each other (found before any task runs).
+        Every problem of the visit description, its profile, the raw and
+        reference files and the stage parameters, one per line
+        (:func:`lightledger.tasks.check.check_visit`), or options that
+        contradict each other, found before any task runs.
 
     Notes
     -----
-    The bookkeeping is done here, once: the inventory of exposures, the
-    digests of the raw and reference files and every identity
+    The bookkeeping is done here, once: the validation pass lists every
+    exposure (set-aside ones with their reasons), the digests of the raw and
+    reference files and every identity are computed
     (:func:`lightledger.tasks.base.make_plan`); the tasks receive the
     identities as parameters and the plan in memory.
     """
@@ -132,12 +141,16 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     force_from = _check_force(list(force or ()), until)
     if workers < 1:
         raise LightledgerError("--workers must be at least 1")
+    # the validation pass: every problem of the visit at once, before any stage runs
+    report = check_visit(visit_path, settings, until=until, progress=_check_progress(progress))
+    for problem in report.warnings:
+        if warn is not None:
+            warn(problem.line)
+    report.raise_errors()
+    settings = parse_settings(settings)
     settings_text = settings_to_text(settings)
     visit = visit_config(visit_path, settings_text)
-    refs = inventory(visit.raw, visit.profile)   # fails early, with one line, on bad raw files
-    if not refs:
-        raise LightledgerError(f"{visit.raw}: the visit holds no exposures")
-    plan = register_plan(make_plan(visit, settings_text, refs))
+    plan = register_plan(make_plan(visit, settings_text, report.usable, inventory=report.refs))
     run_id = uuid.uuid4().hex
     notebook = Path(visit.notebook)
     notebook.mkdir(parents=True, exist_ok=True)
@@ -174,10 +187,16 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     finally:
         PROGRESS.pop("callback", None)
 
-    messages = []
+    messages, statuses = [], []
     if failures.exists():
         for file in sorted(failures.glob("*.txt")):
-            text = file.read_text().rstrip()
+            text = file.read_text(encoding="utf-8").rstrip()
+            status, _, rest = text.partition("\n")
+            if status.isdigit():               # "STATUS\nTEXT" (VisitTask.on_failure)
+                text = rest
+                statuses.append(int(status))
+            else:
+                statuses.append(2 if text.startswith("lightledger: error:") else 1)
             if text not in messages:       # chunks that fail alike say so once
                 messages.append(text)
         shutil.rmtree(failures, ignore_errors=True)
@@ -188,7 +207,24 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     from .notebook import write_page
     page = write_page(notebook)
     final = task.final_product() if ok else None
-    return RunResult(ok=ok, final=final, page=page, ran=sorted(ran), messages=messages)
+    status = 0 if ok else _status(statuses)
+    return RunResult(ok=ok, final=final, page=page, ran=sorted(ran), messages=messages,
+                     warnings=[p.line for p in report.warnings],
+                     set_aside=[f"{r.label}: {r.reason}" for r in report.set_aside], status=status)
+
+
+def _status(statuses):
+    """Exit status of a failed run: 1 if a task met a bug, else 2 for the user's input, 3 if
+    only the machine failed (disk full, file-size limit, permission denied)."""
+    if not statuses or 1 in statuses:
+        return 1
+    return 3 if all(s == 3 for s in statuses) else 2
+
+
+def _check_progress(progress):
+    if progress is None:
+        return None
+    return lambda done, total: progress("check", "exposures read", done, total)
 
 
 def _others_running(summary):

@@ -114,6 +114,22 @@ def stare_destripe_off(stare_visit):
     return Path(result.final).parent.resolve()
 
 
+@pytest.fixture(scope="session")
+def raw_scan(tmp_path_factory):
+    """A rendered, unreduced scan visit: 10 exposures (one per file), seed 5; do not modify."""
+    from lightledger.synthetic_data.render import render
+
+    return render("scan-transit", tmp_path_factory.mktemp("raw-scan"), seed=5, n_exposures=10)
+
+
+@pytest.fixture(scope="session")
+def raw_stare(tmp_path_factory):
+    """A rendered, unreduced stare visit: 60 exposures in two 4-D files, seed 5; do not modify."""
+    from lightledger.synthetic_data.render import render
+
+    return render("stare-eclipse", tmp_path_factory.mktemp("raw-stare"), seed=5, n_exposures=60)
+
+
 # --------------------------------------------------------------------------
 # helpers shared by the science tests (plain functions exposed as fixtures)
 # --------------------------------------------------------------------------

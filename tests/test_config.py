@@ -116,7 +116,7 @@ def test_missing_reference_file(visit_dir):
 
 def test_unknown_stage_key_in_visit(visit_dir):
     (visit_dir / "visit.toml").write_text(VISIT.replace("clip_threshold", "clip_treshold"))
-    with pytest.raises(ConfigError, match=r"unknown key extract\.clip_treshold.*clip_threshold"):
+    with pytest.raises(ConfigError, match=r"unknown key stages\.extract\.clip_treshold.*clip_threshold"):
         load_visit(visit_dir / "visit.toml")
 
 

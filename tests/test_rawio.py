@@ -16,7 +16,6 @@ from astropy.io import fits
 from astropy.time import Time
 
 from lightledger.pipeline.errors import InputFileError
-from lightledger.synthetic_data.render import render
 from lightledger.tasks.config import load_visit
 from lightledger.tasks.rawio import inventory, read_exposure
 
@@ -26,15 +25,13 @@ RENAMED_EXTENSIONS = {"READS": "RAMPDATA", "READTIME": "RAMPTIME", "STARTOFF": "
 
 
 @pytest.fixture(scope="module")
-def scan(tmp_path_factory):
-    root = tmp_path_factory.mktemp("scan")
-    return load_visit(render("scan-transit", root, seed=5, n_exposures=10))
+def scan(raw_scan):
+    return load_visit(raw_scan)
 
 
 @pytest.fixture(scope="module")
-def stare(tmp_path_factory):
-    root = tmp_path_factory.mktemp("stare")
-    return load_visit(render("stare-eclipse", root, seed=5, n_exposures=60))
+def stare(raw_stare):
+    return load_visit(raw_stare)
 
 
 def test_three_dimensional_files(scan):
@@ -157,10 +154,13 @@ def test_command_line_errors_are_one_line(scan, tmp_path):
 
     v, path = _damage(scan, tmp_path / "t", lambda h: None)
     path.write_bytes(path.read_bytes()[:5000])    # a truncated raw file
+    # a visit that stops at a bad exposure instead of setting it aside
+    v.path.write_text(v.path.read_text().replace("[visit]\n", '[visit]\non_bad_exposure = "stop"\n'))
     run = _cli("reduce", str(v.path), cwd=tmp_path)
     assert run.returncode == 2, run.stderr
-    lines = run.stderr.strip().splitlines()
+    lines = [line for line in run.stderr.strip().splitlines() if "exposures read" not in line]
     assert len(lines) == 1 and lines[0].startswith("lightledger: error: ") and path.name in lines[0]
+    assert "truncated" in lines[0]
     assert "Traceback" not in run.stderr
     assert not (v.notebook.exists() and any(v.notebook.rglob("*.fits")))
 
