@@ -57,10 +57,16 @@ class Damage:
 
 
 def copy_visit(src, dest):
-    """Copy a rendered visit folder; FITS and ECSV files are hard links (no notebook)."""
+    """Copy a rendered visit folder (no notebook, no truth).
+
+    FITS and ECSV files are hard links: never write into them, replace them
+    (the damages do); the TOML documents are copies.
+    """
     src, dest = Path(src), Path(dest)
 
     def link(a, b):
+        if not str(a).endswith((".fits", ".ecsv")):     # text documents are copied
+            return shutil.copy2(a, b)
         try:
             os.link(a, b)
         except OSError:
