@@ -630,8 +630,13 @@ class VisitTask(luigi.Task):
             supersede(folder)
 
     # -- progress, failure, entry -------------------------------------------------
-    def progress(self, done, total, what):
-        """Report progress to Luigi's scheduler (status message and percentage)."""
+    def progress(self, done, total, what, *, part=None):
+        """Report progress to Luigi's scheduler and to the command line's bar of the stage.
+
+        A task that is its whole stage gives its own ``done`` of ``total``
+        steps; a chunk task gives ``part`` (its chunk number), the units it
+        has done and the stage's total units (see ``tasks/console.py``).
+        """
         percent = 100.0 * done / max(total, 1)
         try:
             self.set_status_message(f"{what}: {done}/{total}")
@@ -640,7 +645,7 @@ class VisitTask(luigi.Task):
             pass
         reporter = PROGRESS.get("callback")
         if reporter is not None:
-            reporter(self.stage, what, done, total)
+            reporter(self.stage, what, done, total, part)
 
     def on_failure(self, exception):
         """Record the reason and exit status for the command line, then let Luigi record its own.

@@ -120,6 +120,7 @@ class CalibrateChunk(VisitTask):
         visit, params = self.config, self.params
         start, stop = self.chunk_span(self.chunk)
         refs = self.chunk_exposures(self.chunk)
+        n_visit = len(self.exposures())
         ny, nx = refs[0].shape[1:]
         ref = load_references(visit.profile, (ny, nx), refs[0].origin, visit.target["source_x"])
         flux = np.empty((len(refs), ny, nx), np.float32)
@@ -128,7 +129,7 @@ class CalibrateChunk(VisitTask):
         rows = []
         chunk_reads = read_exposures(refs, visit.profile)     # each raw file opened once
         for i, exp in enumerate(refs):
-            self.progress(i, len(refs), f"chunk {self.chunk} exposures")
+            self.progress(i, n_visit, "calibrating exposures", part=self.chunk)
             cal = calibrate_reads(visit, params, ref, exp, chunk_reads[i])
             flux[i], var[i], bits[i] = cal.flux, cal.variance, cal.bits
             row = {"exposure": exp.exposure, "start_mjd_utc": exp.start_mjd,
@@ -140,7 +141,7 @@ class CalibrateChunk(VisitTask):
                    "obsgeo": np.asarray(exp.obsgeo if exp.obsgeo else (np.nan,) * 3, float)}
             row.update({f"n_{name.lower()}": cal.flag_counts.get(name, 0) for name in dq.FLAGS})
             rows.append(row)
-        self.progress(len(refs), len(refs), f"chunk {self.chunk} exposures")
+        self.progress(len(refs), n_visit, "calibrating exposures", part=self.chunk)
         exposures = Table(rows=rows, names=list(rows[0]))
         for col, unit in (("start_mjd_utc", "d"), ("mid_offset", "s"), ("integration_time", "s"),
                           ("exposure_time", "s"), ("scan_velocity", "pix / s"),
@@ -211,6 +212,7 @@ class Calibrate(VisitTask):
         self.write_entry(self.output().path, [self.input().path, *paths],
                          [*paths, table_path, self.input().path], metrics, [fig_path], started,
                          extra_seconds=self.task_seconds(paths))
+        self.progress(len(exposures), len(exposures), "exposures calibrated")
 
     def final_product(self):
         return self.folder / "exposures.ecsv"

@@ -25,7 +25,6 @@ prints its traceback and exits with status 1.
 import argparse
 import os
 import sys
-import time
 
 #: Variables that set the thread count of the BLAS and OpenMP libraries under numpy.
 BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS",
@@ -58,30 +57,22 @@ from lightledger.pipeline.parameters import STAGE_ORDER  # noqa: E402
 __all__ = ["main"]
 
 
-class Progress:
-    """A terminal progress bar per stage step, written to standard error."""
+#: The progress display of the running command (closed before any final message).
+_DISPLAY = []
 
-    def __init__(self, stream=None):
-        self.stream = stream or sys.stderr
-        self.tty = self.stream.isatty()
-        self.last = {}
 
-    def __call__(self, stage, what, done, total):
-        key = (stage, what)
-        now = time.monotonic()
-        if not self.tty and done not in (0, total) and now - self.last.get(key, 0) < 2.0:
-            return
-        self.last[key] = now
-        width = 24
-        filled = int(width * done / max(total, 1))
-        bar = "#" * filled + "-" * (width - filled)
-        line = f"{stage:>9} [{bar}] {done:>5}/{total:<5} {what}"
-        if self.tty:
-            end = "\n" if done >= total else ""
-            self.stream.write("\r" + line + end)
-        else:
-            self.stream.write(line + "\n")
-        self.stream.flush()
+def Progress(stream=None):
+    """The command's progress display (:class:`lightledger.tasks.console.Progress`)."""
+    from .console import Progress as _Progress
+
+    display = _Progress(stream)
+    _DISPLAY.append(display)
+    return display
+
+
+def _close_progress():
+    for display in _DISPLAY:
+        display.close()
 
 
 def _parser():
@@ -93,23 +84,31 @@ def _parser():
 
     red = sub.add_parser("reduce", help="reduce a visit described by a TOML file")
     red.add_argument("visit", help="visit description (TOML)")
-    red.add_argument("--workers", type=int, default=1, help="parallel Luigi workers (default 1)")
+    red.add_argument("--workers", type=int, default=1, metavar="N",
+                     help="run up to N Luigi tasks at once, in N processes (default: 1)")
     red.add_argument("--set", dest="settings", action="append", default=[], metavar="STAGE.KEY=VALUE",
-                     help="override one stage parameter (repeatable)")
-    red.add_argument("--until", choices=STAGE_ORDER, help="stop after this stage")
-    red.add_argument("--force", choices=STAGE_ORDER, action="append", default=[],
-                     help="run this stage (and the ones after it) again even if complete")
-    red.add_argument("--scheduler-host", default=None,
-                     help="use a central Luigi scheduler (luigid) on this host instead of the local one")
-    red.add_argument("--scheduler-port", type=int, default=8082)
+                     help="override one stage parameter, checked like the visit description; "
+                          "repeatable ('lightledger params' lists them; default: none)")
+    red.add_argument("--until", choices=STAGE_ORDER, metavar="STAGE",
+                     help="stop after this stage: " + ", ".join(STAGE_ORDER)
+                          + " (default: run every stage)")
+    red.add_argument("--force", choices=STAGE_ORDER, action="append", default=[], metavar="STAGE",
+                     help="run this stage and the ones after it again although complete, keeping "
+                          "the old entries renamed ...superseded-TIME; repeatable (default: none)")
+    red.add_argument("--scheduler-host", default=None, metavar="HOST",
+                     help="use Luigi's central scheduler (luigid) on HOST instead of a local one "
+                          "(default: a local scheduler)")
+    red.add_argument("--scheduler-port", type=int, default=8082, metavar="PORT",
+                     help="port of the central scheduler given by --scheduler-host (default: 8082)")
 
     chk = sub.add_parser("check", help="check a visit (description, profile, raw and reference "
                                        "files, parameters) and list every problem at once")
     chk.add_argument("visit", help="visit description (TOML)")
     chk.add_argument("--set", dest="settings", action="append", default=[], metavar="STAGE.KEY=VALUE",
-                     help="check with this stage parameter overridden (repeatable)")
-    chk.add_argument("--until", choices=STAGE_ORDER,
-                     help="check for a reduction that stops after this stage")
+                     help="check with this stage parameter overridden; repeatable (default: none)")
+    chk.add_argument("--until", choices=STAGE_ORDER, metavar="STAGE",
+                     help="check for a reduction that stops after this stage: "
+                          + ", ".join(STAGE_ORDER) + " (default: every stage)")
     chk.add_argument("--headers-only", action="store_true",
                      help="read headers only (skip reading every exposure's reads)")
 
@@ -120,7 +119,9 @@ def _parser():
                          formatter_class=argparse.RawDescriptionHelpFormatter)
     sim.add_argument("scenario", nargs="?", help="scenario name (see --list)")
     sim.add_argument("outdir", nargs="?", help="directory to write the visit into")
-    sim.add_argument("--seed", type=int, default=0)
+    sim.add_argument("--seed", type=int, default=0, metavar="N",
+                     help="seed of every random draw; the same seed gives the same files "
+                          "(default: 0)")
     sim.add_argument("--exposures", type=int, default=None,
                      help="number of exposures (ranges below; default the scenario's)")
     sim.add_argument("--orbits", type=int, default=None,
@@ -130,11 +131,18 @@ def _parser():
                           "(scan scenarios: two trap populations, a ramp that differs per channel)")
     sim.add_argument("--list", action="store_true", help="list the scenarios and exit")
 
-    demo = sub.add_parser("demo", help="render a small scan visit, reduce it, compare with the truth")
-    demo.add_argument("dir", nargs="?", default="lightledger-demo")
-    demo.add_argument("--exposures", type=int, default=60)
-    demo.add_argument("--seed", type=int, default=1)
-    demo.add_argument("--workers", type=int, default=2)
+    demo = sub.add_parser("demo", help="render a small scan visit, reduce it, compare with the truth",
+                          description="Render the scan-transit scenario into DIR, reduce it and "
+                                      "compare the result with the truth it was rendered from.")
+    demo.add_argument("dir", nargs="?", default="lightledger-demo", metavar="DIR",
+                      help="directory for the visit and its notebook (default: lightledger-demo)")
+    demo.add_argument("--exposures", type=int, default=60, metavar="N",
+                      help="exposures of the visit, spread over its orbits: {} to {} "
+                           "(default: 60)".format(*_demo_exposure_range()))
+    demo.add_argument("--seed", type=int, default=1, metavar="N",
+                      help="seed of the rendering (default: 1)")
+    demo.add_argument("--workers", type=int, default=2, metavar="N",
+                      help="Luigi worker processes of the reduction (default: 2)")
 
     sub.add_parser("params", help="list every stage parameter with its default and meaning")
 
@@ -142,9 +150,17 @@ def _parser():
     aud.add_argument("path", help="a product, a stage folder, a notebook folder or a visit TOML")
 
     cmp_ = sub.add_parser("compare", help="differences between two entries or two products")
-    cmp_.add_argument("a")
-    cmp_.add_argument("b")
+    cmp_.add_argument("a", metavar="A",
+                      help="a stage folder (NOTEBOOK/STAGE-IDENT) or a product file (FITS or ECSV)")
+    cmp_.add_argument("b", metavar="B", help="the folder or product to compare A with (same kind)")
     return parser
+
+
+def _demo_exposure_range():
+    from lightledger.synthetic_data.scenarios import get_scenario
+    from lightledger.synthetic_data.sizes import exposure_range
+
+    return exposure_range(get_scenario("scan-transit"))     # tasks/demo.py's DEMO_SCENARIO
 
 
 def _size_limits():
@@ -163,6 +179,7 @@ def main(argv=None):
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
     except KeyboardInterrupt:
+        _close_progress()
         print("lightledger: interrupted; complete products are kept, partial ones were not written",
               file=sys.stderr)
         return 130
@@ -170,6 +187,7 @@ def main(argv=None):
         from .problems import describe_failure
 
         status, text = describe_failure(exc)
+        _close_progress()
         print(text, file=sys.stderr)
         return status
 
@@ -181,7 +199,8 @@ def _cmd_reduce(args):
                           force=args.force, progress=Progress(),
                           scheduler=(args.scheduler_host, args.scheduler_port)
                           if args.scheduler_host else None,
-                          warn=lambda line: print(line, file=sys.stderr))
+                          warn=lambda line: (_close_progress(), print(line, file=sys.stderr)))
+    _close_progress()
     for line in result.messages:
         print(line, file=sys.stderr)
     if result.set_aside:

@@ -222,5 +222,5 @@ class Detrend(VisitTask):
                    "median channel rms / expected":
                        round(float(np.nanmedian(depths["rms_over_expected"][1:])), 3),
                    "exposures fitted": int(used.sum())}
-        self.progress(2, 2, "channel light curves")
+        self.progress(2, 2, "light curves fitted")
         self.write_entry(self.output().path, [lc_path], outputs, metrics, [fig], started)

@@ -74,7 +74,7 @@ class ExtractReference(VisitTask):
         frames, masks, inputs = [], [], []
         ranges = chunk_ranges(n, calib.params["chunk_size"])
         for k, (path, (start, stop)) in enumerate(zip(paths, ranges)):
-            self.progress(k, len(paths), "reading frames for the median")
+            self.progress(0, n, "reference frame and trace", part=-1)
             local = pick[(pick >= start) & (pick < stop)] - start
             if local.size:          # only chunks holding a picked exposure are read, once
                 flux, _, bits, _ = read_chunk(path)
@@ -173,7 +173,8 @@ class ExtractChunk(VisitTask):
         params = self.params
         chunk_path = self.stage_folder("calibrate") / f"frames-{self.chunk:03d}.fits"
         header, refspec, _ = read_reference(self.input().path)
-        self.progress(0, 3, f"chunk {self.chunk} extraction")
+        n_visit = len(self.exposures())
+        self.progress(0, n_visit, "extracting spectra", part=self.chunk)
         flux, var, bits, exposures = read_chunk(chunk_path)
         bad = _good_frames(flux, bits) | ~np.isfinite(var) | (var <= 0)
         n, ny, nx = flux.shape
@@ -202,7 +203,7 @@ class ExtractChunk(VisitTask):
         spec = extract_chunk(flux, var, bad, method=params["method"], aperture=aperture,
                              threshold=params["clip_threshold"], profile_order=params["profile_order"],
                              trace_offset=trace_offset if params["follow_tilt"] else None)
-        self.progress(1, 3, f"chunk {self.chunk} drifts")
+        self.progress(0.8 * n, n_visit, "extracting spectra", part=self.chunk)
         reference = np.asarray(refspec["flux"], float)
         shifts = spectral_shift(spec.flux, reference, variance=spec.variance, mask=spec.mask)
         out_flux, out_var, out_mask = spec.flux, spec.variance, spec.mask
@@ -212,7 +213,6 @@ class ExtractChunk(VisitTask):
             old = grid[None, :] - shifts.shift[:, None]
             moved = resample(old, spec.flux, grid, variance=spec.variance, mask=spec.mask)
             out_flux, out_var, out_mask = moved.flux, moved.variance, moved.mask
-        self.progress(2, 3, f"chunk {self.chunk} writing")
         drifts = Table()
         drifts["dx"] = shifts.shift
         drifts["dx_error"] = shifts.shift_error
@@ -231,7 +231,7 @@ class ExtractChunk(VisitTask):
                 fits.ImageHDU(first_profile, name="PROFILE")]
         write_fits(self.output().path, hdus, self.provenance([chunk_path, self.input().path]),
                    header={"CHUNK": self.chunk})
-        self.progress(3, 3, f"chunk {self.chunk} extraction")
+        self.progress(n, n_visit, "extracting spectra", part=self.chunk)
 
 
 class Extract(VisitTask):
@@ -301,3 +301,4 @@ class Extract(VisitTask):
                    "aperture rows": [int(header["APLO"]), int(header["APHI"])]}
         self.write_entry(self.output().path, inputs, [path, self.input().path], metrics, [fig],
                          started, extra_seconds=self.task_seconds(inputs))
+        self.progress(len(exposures), len(exposures), "spectra extracted")

@@ -257,5 +257,5 @@ class Bin(VisitTask):
                    "filled pixels": int(np.sum(binned.n_filled)),
                    "white flux median (e-)": float(np.median(white_flux)) if white_flux.size else None,
                    "flux outliers": int(np.sum(cov.flux_outlier))}
-        self.progress(3, 3, "binning")
+        self.progress(3, 3, "light curves written")
         self.write_entry(self.output().path, [spectra_path], outputs, metrics, [fig], started)

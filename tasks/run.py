@@ -107,7 +107,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
         to ``until``); a folder made again is kept beside the new one, renamed
         ``...superseded-TIME``, at the moment its replacement starts.
     progress : callable, optional
-        ``progress(stage, what, done, total)``.
+        ``progress(stage, what, done, total, part)``; see ``tasks/console.py``.
     scheduler : (host, port), optional
         A central ``luigid`` scheduler; default the local scheduler.
     warn : callable, optional
