@@ -12,7 +12,9 @@
 ``lightledger audit PATH``
     verify checksums and lineage of one product or a whole notebook;
 ``lightledger compare A B``
-    differences between two entries or two products.
+    differences between two entries or two products;
+``lightledger notebook list|prune|page PATH``
+    the entries of a notebook, housekeeping, the page written again.
 
 A user's mistake (a missing file, a bad key, a malformed product) prints one
 line ``lightledger: error: FILE: what is wrong`` per problem on standard error
@@ -153,6 +155,18 @@ def _parser():
     cmp_.add_argument("a", metavar="A",
                       help="a stage folder (NOTEBOOK/STAGE-IDENT) or a product file (FITS or ECSV)")
     cmp_.add_argument("b", metavar="B", help="the folder or product to compare A with (same kind)")
+
+    nb = sub.add_parser("notebook", help="list, prune or rewrite the page of a notebook")
+    nb_sub = nb.add_subparsers(dest="action", required=True, metavar="ACTION")
+    nb_list = nb_sub.add_parser("list", help="every entry: stage, when, identity, size, state, "
+                                             "what it was made from")
+    nb_list.add_argument("path", help="a notebook folder, a visit TOML or a stage folder")
+    nb_prune = nb_sub.add_parser("prune", help="remove superseded entries nothing current depends "
+                                               "on, and folders of interrupted runs")
+    nb_prune.add_argument("path", help="a notebook folder or a visit TOML")
+    nb_prune.add_argument("--dry-run", action="store_true", help="only show what would go")
+    nb_page = nb_sub.add_parser("page", help="write index.html and notebook.json from the entries")
+    nb_page.add_argument("path", help="a notebook folder or a visit TOML")
     return parser
 
 
@@ -220,7 +234,11 @@ def _cmd_reduce(args):
         print("ran: " + ", ".join(f"{n} {f}" for f, n in counts.items()), file=sys.stderr)
     else:
         print("nothing to run: every product is already complete", file=sys.stderr)
+    for line in result.notes:
+        print(f"lightledger: note: {line}", file=sys.stderr)
     print(f"notebook page: {result.page}", file=sys.stderr)
+    for line in result.headlines:
+        print(line)
     print(result.final)
     return 0
 
@@ -289,10 +307,47 @@ def _cmd_audit(args):
     report = audit(args.path)
     for line in report.lines:
         print(line)
+    for note in report.notes:
+        print(f"note: {note}")
     for problem in report.problems:
         print(f"problem: {problem}", file=sys.stderr)
-    print(f"{report.n_products} products checked, {len(report.problems)} problems")
+    print(f"{report.n_entries} entries and {report.n_products} products checked, "
+          f"{len(report.problems)} problems")
     return 1 if report.problems else 0
+
+
+def _cmd_notebook(args):
+    from . import notebook
+
+    if args.action == "list":
+        folder, rows = notebook.list_entries(args.path)
+        print(f"{folder}: {len(rows)} entries, oldest first")
+        width = max([len(r.folder) for r in rows] + [6])
+        print(f"{'folder':<{width}} {'stage':<10} {'created':<26} {'size':>9}  {'state':<12} made from")
+        for r in rows:
+            state = r.state + (" *" if r.in_chain else "")
+            print(f"{r.folder:<{width}} {r.stage:<10} {r.created or '-':<26} {_bytes(r.size):>9}  "
+                  f"{state:<12} {r.made_from or '-'}")
+        print("* the current chain")
+        return 0
+    if args.action == "prune":
+        folder, removed, freed = notebook.prune(args.path, dry_run=args.dry_run)
+        verb = "would remove" if args.dry_run else "removed"
+        for name in removed:
+            print(f"{verb} {name}")
+        print(f"{folder}: {verb} {len(removed)} folders, {_bytes(freed)}")
+        return 0
+    page = notebook.write_page(notebook._notebook_of(args.path))
+    print(page)
+    return 0
+
+
+def _bytes(n):
+    for unit in ("B", "kB", "MB", "GB"):
+        if n < 1000 or unit == "GB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1000
+    return f"{n:.1f} TB"
 
 
 def _cmd_compare(args):
@@ -303,8 +358,9 @@ def _cmd_compare(args):
     return 0
 
 
-_COMMANDS = {"reduce": _cmd_reduce, "check": _cmd_check, "simulate": _cmd_simulate, "demo": _cmd_demo, "params": _cmd_params,
-             "audit": _cmd_audit, "compare": _cmd_compare}
+_COMMANDS = {"reduce": _cmd_reduce, "check": _cmd_check, "simulate": _cmd_simulate, "demo": _cmd_demo,
+             "params": _cmd_params, "audit": _cmd_audit, "compare": _cmd_compare,
+             "notebook": _cmd_notebook}
 
 
 if __name__ == "__main__":  # pragma: no cover

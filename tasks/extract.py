@@ -127,6 +127,10 @@ class ExtractReference(VisitTask):
             table[name].unit = unit
         hdus = [fits.ImageHDU(median.astype(np.float32), name="MEDIAN"),
                 table_hdu(table, "REFSPEC")]
+        inputs.append(calib.folder / "exposures.ecsv")
+        throughput = visit.profile.files.get("throughput") if params["refine_wavelength"] else None
+        if throughput is not None:
+            inputs.append(throughput)
         write_fits(self.output().path, hdus, self.provenance(inputs), header=header)
 
     def _wavelengths(self, nx, origin_x, ref_spec):
@@ -299,6 +303,8 @@ class Extract(VisitTask):
                    "rejected pixels": int(np.sum(exposures["n_rejected"])),
                    "masked spectral pixels": int(np.sum(mask > 0)),
                    "aperture rows": [int(header["APLO"]), int(header["APHI"])]}
-        self.write_entry(self.output().path, inputs, [path, self.input().path], metrics, [fig],
-                         started, extra_seconds=self.task_seconds(inputs))
+        # the entry names what the stage read from the calibrate folder too (its lineage)
+        upstream = [*self.calibrated_chunks(), self.stage_folder("calibrate") / "exposures.ecsv"]
+        self.write_entry(self.output().path, inputs + upstream, [path, self.input().path], metrics,
+                         [fig], started, extra_seconds=self.task_seconds(inputs))
         self.progress(len(exposures), len(exposures), "spectra extracted")

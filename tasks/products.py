@@ -19,8 +19,11 @@ and a binary table extension PROVENANCE with the same in columns
 ``kind`` (``param`` or ``input``), ``name``, ``value`` and ``sha256``.
 """
 
+import hashlib
+import io
 import json
 import os
+import re
 import tempfile
 from contextlib import contextmanager
 from pathlib import Path
@@ -36,7 +39,7 @@ from .digests import current_umask, sha256_of
 
 __all__ = ["Provenance", "relative_input", "resolve_input", "atomic_path", "part_pattern", "table_hdu",
            "write_fits", "write_ecsv", "write_json", "save_figure", "read_provenance",
-           "known_digest"]
+           "known_digest", "ecsv_checksum_ok"]
 
 #: SHA-256 of the files this process wrote: path -> ((size, mtime_ns, inode), sha256).
 _WRITTEN = {}
@@ -255,16 +258,43 @@ def _checksum_comment():
     return "by lightledger"
 
 
+#: Placeholder of an ECSV product's own checksum while the checksum is computed.
+_ECSV_BLANK = "sha256:" + "0" * 64
+_ECSV_CHECKSUM = re.compile(rb"checksum: '?sha256:([0-9a-f]{64})")
+
+
 def write_ecsv(path, table, provenance):
     """Write an astropy Table as ECSV with provenance in its metadata, atomically.
+
+    The metadata's ``lightledger.checksum`` is ``sha256:HEX``, the SHA-256 of
+    the file's bytes with HEX replaced by 64 zeros (a checksum the file
+    carries, as FITS files carry CHECKSUM; see :func:`ecsv_checksum_ok`).
 
     Returns the SHA-256 of the written file.
     """
     table = table.copy(copy_data=False)
-    table.meta.update({"lightledger": provenance.meta()})
+    table.meta.update({"lightledger": {**provenance.meta(), "checksum": _ECSV_BLANK}})
+    buffer = io.StringIO()
+    table.write(buffer, format="ascii.ecsv")
+    data = buffer.getvalue().encode("utf-8")
+    found = _ECSV_CHECKSUM.search(data)
+    if found is None:       # the YAML writer quoted or folded it (never seen): a bug
+        raise RuntimeError(f"{path}: could not place the ECSV checksum")
+    digest = hashlib.sha256(data).hexdigest().encode()
+    data = data[:found.start(1)] + digest + data[found.end(1):]
     with atomic_path(path) as tmp:
-        table.write(tmp, format="ascii.ecsv", overwrite=True)
+        Path(tmp).write_bytes(data)
     return _remember(path)
+
+
+def ecsv_checksum_ok(path):
+    """True when an ECSV product's bytes match its own checksum, False when not, None if absent."""
+    data = Path(path).read_bytes()
+    found = _ECSV_CHECKSUM.search(data)
+    if found is None:
+        return None
+    blank = data[:found.start(1)] + b"0" * 64 + data[found.end(1):]
+    return hashlib.sha256(blank).hexdigest() == found.group(1).decode()
 
 
 def write_json(path, document):

@@ -14,8 +14,8 @@ from lightledger.pipeline.parameters import STAGE_ORDER
 
 from . import figures  # noqa: F401  (matplotlib loads once here, not in every worker)
 from . import locks
-from .base import (PROGRESS, VisitTask, make_plan, register_plan, remove_parts, settings_to_text,
-                   visit_config)
+from .base import (ENTRY_NAME, PROGRESS, VisitTask, make_plan, read_entry, register_plan,
+                   remove_parts, settings_to_text, visit_config)
 from .check import check_visit, parse_settings
 
 __all__ = ["RunResult", "reduce_visit", "stage_task", "sweep"]
@@ -33,6 +33,8 @@ class RunResult:
     warnings: list = field(default_factory=list)  # lines: validation warnings, result flags
     set_aside: list = field(default_factory=list)  # "FILE[index]: reason" per set-aside exposure
     status: int = 0                               # exit status of the command line
+    notes: list = field(default_factory=list)     # things the user should know (not failures)
+    headlines: list = field(default_factory=list)  # headline figures of the chain's entries
 
 
 def stage_task(stage, plan, *, force_from="", force_after=0.0, run_id=""):
@@ -155,6 +157,21 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     notebook = Path(visit.notebook)
     notebook.mkdir(parents=True, exist_ok=True)
     sweep(notebook)
+    notes, repairs = [], []
+    stages = STAGE_ORDER[:STAGE_ORDER.index(until) + 1]
+    for k, stage in enumerate(stages):
+        # a stage whose entry is broken or gone, below a complete one, is made again in place
+        # (same identity, same bytes); Luigi would not look below the complete stage
+        entry = plan.folder(stage) / ENTRY_NAME
+        if not plan.folder(stage).is_dir() or read_entry(entry, stage) is not None:
+            continue
+        later = [s for s in stages[k + 1:] if read_entry(plan.folder(s) / ENTRY_NAME, s) is not None]
+        if entry.exists():
+            notes.append(f"{entry}: not a valid notebook entry; the {stage} stage is made again")
+        elif later:
+            notes.append(f"{entry}: missing; the {stage} stage is made again")
+        if later:
+            repairs.append(stage_task(stage, plan, run_id=run_id))
     task = stage_task(until, plan, force_from=force_from, force_after=started if force_from else 0.0,
                       run_id=run_id)
     failures = notebook / ".failures" / run_id
@@ -172,7 +189,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     else:
         kwargs.update(local_scheduler=True)
     try:
-        summary = luigi.build([task], **kwargs)
+        summary = luigi.build([*repairs, task], **kwargs)
         ran = _ran_families(summary)
         # With a central scheduler another machine may still be running tasks this chain
         # needs when this worker runs out of work: wait for them, building again until the
@@ -200,7 +217,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
             if text not in messages:       # chunks that fail alike say so once
                 messages.append(text)
         shutil.rmtree(failures, ignore_errors=True)
-    ok = task.complete()
+    ok = task.complete() and all(t.complete() for t in repairs)
     if not ok and not messages:
         messages.append(f"lightledger: error: the reduction did not complete ({summary.status})")
 
@@ -208,9 +225,37 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     page = write_page(notebook)
     final = task.final_product() if ok else None
     status = 0 if ok else _status(statuses)
+    lines = headlines([plan.folder(s) / ENTRY_NAME for s in stages]) if ok else []
     return RunResult(ok=ok, final=final, page=page, ran=sorted(ran), messages=messages,
                      warnings=[p.line for p in report.warnings],
-                     set_aside=[f"{r.label}: {r.reason}" for r in report.set_aside], status=status)
+                     set_aside=[f"{r.label}: {r.reason}" for r in report.set_aside], status=status,
+                     notes=notes, headlines=lines)
+
+
+#: Words that mark a headline figure among an entry's metrics.
+_HEADLINE_WORDS = ("depth", "rms / expected", "flag", "outlier", "exposures", "channels")
+
+
+def headlines(entry_paths):
+    """One line per stage entry with its headline figures (depths, rms over expected, flags)."""
+    lines = []
+    for path in entry_paths:
+        entry = read_entry(path)
+        if entry is None or not isinstance(entry.get("metrics"), dict):
+            continue
+        shown = [f"{name} {_headline_value(value)}" for name, value in entry["metrics"].items()
+                 if any(word in str(name) for word in _HEADLINE_WORDS) and value is not None]
+        if shown:
+            lines.append(f"{entry['stage']:>9}: " + ", ".join(shown))
+    return lines
+
+
+def _headline_value(value):
+    if isinstance(value, float):
+        return f"{value:.6g}"
+    if isinstance(value, list):
+        return "[" + ", ".join(_headline_value(v) for v in value) + "]"
+    return str(value)
 
 
 def _status(statuses):
