@@ -11,8 +11,9 @@
 A read in ADU is bias + nonlinear(e_linear) / gain + read noise / gain, with
 e_linear the cumulative charge: Poisson increments of source (times the
 flat), sky (times the flat) and dark between reads, plus cosmic-ray hits from
-their read on.  The output is deterministic for a seed: the same bytes apart
-from the CHECKSUM keywords' time stamps.
+their read on.  The output is deterministic for a seed: the same bytes (the
+CHECKSUM and DATASUM comments carry no time stamp, see :func:`write_hdus`), so
+a visit rendered again keeps its identity in the reducer's notebook.
 """
 
 import pathlib
@@ -86,17 +87,29 @@ def _primary_header(model, start_s, obsgeo):
     return h
 
 
+def write_hdus(hdus, path):
+    """Write HDUs with CHECKSUM and DATASUM whose comments carry no time stamp."""
+    hdul = fits.HDUList(hdus)
+    for hdu in hdul:
+        hdu._get_timestamp = _no_time     # astropy dates these comments with the wall clock
+    hdul.writeto(path, overwrite=True, checksum=True)
+
+
+def _no_time():
+    return "at rendering"
+
+
 def _write_raw(path, header, reads, read_times, startoff=None):
     hdus = [fits.PrimaryHDU(header=header),
             fits.ImageHDU(reads, name="READS"),
             fits.ImageHDU(np.asarray(read_times, dtype=np.float64), name="READTIME")]
     if startoff is not None:
         hdus.append(fits.ImageHDU(np.asarray(startoff, dtype=np.float64), name="STARTOFF"))
-    fits.HDUList(hdus).writeto(path, overwrite=True, checksum=True)
+    write_hdus(hdus, path)
 
 
 def _write_image(path, array):
-    fits.PrimaryHDU(np.asarray(array)).writeto(path, overwrite=True, checksum=True)
+    write_hdus([fits.PrimaryHDU(np.asarray(array))], path)
 
 
 def _toml_list(values):

@@ -216,5 +216,6 @@ def write_truth(model, path):
     h["U1"] = (sc.u1, "quadratic limb darkening")
     h["U2"] = (sc.u2, "quadratic limb darkening")
     h["XPOSURE"] = (model.exposure_time, "[s] zero read to last read")
-    fits.HDUList([primary, exposures, channels, cosmics]).writeto(path, overwrite=True, checksum=True)
+    from .render import write_hdus
+    write_hdus([primary, exposures, channels, cosmics], path)
     return tr

@@ -261,3 +261,26 @@ def science():
     """The helpers above, for the test modules (which cannot import conftest)."""
     return SimpleNamespace(read_truth=read_truth, check_products=check_products,
                            channel_flux_pulls=channel_flux_pulls)
+
+
+@pytest.fixture(scope="module")
+def quick_figures():
+    """Stand-in stage figures (a blank 1 x 1 inch PNG) for tests whose subject is not the figures.
+
+    Drawing the four diagnostic figures is most of the time of reducing a tiny
+    visit; the bookkeeping tests reduce many times and look only at files,
+    names and bytes (a stand-in is as deterministic as the real figures).
+    """
+    from lightledger.tasks import figures
+    from lightledger.tasks.products import save_figure
+
+    def blank(path, *args, **kwargs):
+        import matplotlib.pyplot as plt
+
+        return save_figure(plt.figure(figsize=(1, 1)), path, dpi=20)
+
+    with pytest.MonkeyPatch.context() as patch:
+        for name in dir(figures):
+            if name.endswith("_figure") and callable(getattr(figures, name)):
+                patch.setattr(figures, name, blank)
+        yield

@@ -13,6 +13,7 @@ existed.
 import os
 import shutil
 import stat
+import time
 import warnings
 from pathlib import Path
 
@@ -22,7 +23,7 @@ from lightledger.synthetic_data.render import render
 from lightledger.tasks import base
 from lightledger.tasks.run import reduce_visit
 
-pytestmark = pytest.mark.slow
+pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("quick_figures")]
 
 N_EXPOSURES = 12
 
@@ -209,3 +210,24 @@ def test_products_follow_the_umask(tmp_path, umask, readable):
         mode = stat.S_IMODE(path.stat().st_mode)
         assert mode == 0o666 & ~umask, (path.name, oct(mode))   # what open(2) gives a new file
         assert bool(mode & stat.S_IRGRP) == readable and bool(mode & stat.S_IROTH) == readable
+
+
+def test_figures_are_written_with_the_same_bytes_twice(tmp_path):
+    """A PNG carries no time of writing (matplotlib's PNG metadata is its version only)."""
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    import numpy as np
+
+    from lightledger.tasks.products import save_figure
+
+    def draw(path):
+        fig, ax = plt.subplots(figsize=(3, 2))
+        ax.plot(np.arange(10), np.arange(10) ** 0.5, label="white")
+        ax.set_title("a light curve")
+        ax.legend()
+        return save_figure(fig, path)
+
+    first = draw(tmp_path / "a.png")
+    time.sleep(1.1)
+    assert draw(tmp_path / "b.png") == first
