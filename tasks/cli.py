@@ -157,7 +157,8 @@ def _parser():
     cmp_.add_argument("b", metavar="B", help="the folder or product to compare A with (same kind)")
 
     nb = sub.add_parser("notebook", help="list, prune or rewrite the page of a notebook")
-    nb_sub = nb.add_subparsers(dest="action", required=True, metavar="ACTION")
+    nb_sub = nb.add_subparsers(dest="action", required=True, metavar="ACTION",
+                               help="list, prune or page")
     nb_list = nb_sub.add_parser("list", help="every entry: stage, when, identity, size, state, "
                                              "what it was made from")
     nb_list.add_argument("path", help="a notebook folder, a visit TOML or a stage folder")
