@@ -35,7 +35,6 @@ gives one header keyword ``LLFLAGn`` per bit (n = 0 for value 1, 1 for value
 """
 
 import numpy as np
-from astropy.nddata.bitmask import bitfield_to_boolean_mask
 
 __all__ = ["FLAGS", "MEANINGS", "UNSCANNED", "SKY_CLIPPED", "RAMP_BREAK", "PROFILE_REJECT",
            "PATCHED", "OVERFILLED", "NO_SLOPE", "INVALID_VALUE", "LISTED_BAD",
@@ -99,6 +98,10 @@ def to_boolean(bits, flags=UNUSABLE_FLAGS):
     mask : ndarray of bool
         Same shape as ``bits``; the input is not modified.
     """
+    # imported here: astropy.nddata (with its coordinates and WCS) takes about a second to
+    # import, which a command that converts no mask should not pay
+    from astropy.nddata.bitmask import bitfield_to_boolean_mask
+
     bits = np.asarray(bits)
     # bitfield_to_boolean_mask treats the listed bits as "ignore" unless
     # flip_bits is set; we want True where any of them is present.

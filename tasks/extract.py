@@ -25,7 +25,6 @@ import warnings
 import astropy.units as u
 import luigi
 import numpy as np
-from astropy.modeling.physical_models import BlackBody
 from astropy.io import fits
 from astropy.table import Table, hstack, vstack
 
@@ -145,6 +144,8 @@ class ExtractReference(VisitTask):
             columns = np.arange(-pad, nx + pad)
             wave = column_wavelengths(columns, coeffs, x_ref, origin_x=origin_x)
             dispersion = np.abs(np.gradient(wave))
+            from astropy.modeling.physical_models import BlackBody   # once per visit: import here
+
             photons = BlackBody(temperature=visit.target["teff"] * u.K)(wave * u.um).value / wave
             model = np.interp(wave, *throughput, left=0.0, right=0.0) * photons * dispersion
             order = np.argsort(wave)

@@ -12,7 +12,6 @@ import luigi
 from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER
 
-from . import figures  # noqa: F401  (matplotlib loads once here, not in every worker)
 from . import locks
 from .base import (ENTRY_NAME, PROGRESS, VisitTask, make_plan, read_entry, register_plan,
                    remove_parts, settings_to_text, visit_config)
@@ -188,6 +187,9 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
         kwargs.update(scheduler_host=scheduler[0], scheduler_port=scheduler[1])
     else:
         kwargs.update(local_scheduler=True)
+    if workers > 1 and not task.complete():
+        # forked workers inherit what is loaded: matplotlib once here, not in every task
+        from . import figures  # noqa: F401
     try:
         summary = luigi.build([*repairs, task], **kwargs)
         ran = _ran_families(summary)
