@@ -14,13 +14,14 @@ README's "Light-curve products" section):
 """
 
 import time
+import warnings
 
 import luigi
 import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
-from lightledger.pipeline.binning import (bin_spectra, channel_edges_from_list,
+from lightledger.pipeline.binning import (BinnedSpectra, bin_spectra, channel_edges_from_list,
                                           equal_count_channel_edges, uniform_channel_edges)
 from lightledger.pipeline.covariates import exposure_covariates
 from lightledger.pipeline.errors import ParameterError
@@ -33,16 +34,54 @@ from .products import table_hdu, write_ecsv, write_fits
 __all__ = ["Bin", "read_spectra", "read_lightcurves", "wide_table"]
 
 
-def read_spectra(path):
-    """Flux, variance, mask (n_exp, n_pix), pixel edges (um) and the exposure table."""
+def read_spectra(path, dtype=float):
+    """Flux, variance, mask (n_exp, n_pix), pixel edges (um) and the exposure table.
+
+    Flux and variance come as ``dtype`` (float64 by default; the product stores float32).
+    """
     with fits.open(path, memmap=False) as hdul:
-        flux = np.asarray(hdul["FLUX"].data, float)
-        var = np.asarray(hdul["VARIANCE"].data, float)
+        flux = np.asarray(hdul["FLUX"].data, dtype)
+        var = np.asarray(hdul["VARIANCE"].data, dtype)
         mask = np.asarray(hdul["MASK"].data) > 0
         wave = Table(hdul["WAVELENGTH"].data)
         exposures = Table(hdul["EXPOSURES"].data)
     edges = np.append(np.asarray(wave["wave_lo"], float), float(wave["wave_hi"][-1]))
     return flux, var, mask, edges, exposures
+
+
+#: Exposures binned at a time: the temporaries of binning scale with a block, not the visit.
+BLOCK_ROWS = 1024
+
+
+def _median_over_exposures(values, good, columns=32):
+    """Median over exposures of each pixel, from the good values, a block of pixels at a time."""
+    out = np.empty(values.shape[1])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)          # a pixel bad in every exposure
+        for a in range(0, values.shape[1], columns):
+            block = np.asarray(values[:, a:a + columns], float)
+            out[a:a + columns] = np.nanmedian(np.where(good[:, a:a + columns], block, np.nan), axis=0)
+    return out
+
+
+def _bin_in_blocks(pix_edges, flux, var, mask, edges, scale=None, fill_spec=None, fill_var=None):
+    """:func:`bin_spectra` over blocks of :data:`BLOCK_ROWS` exposures (the same numbers: it
+    treats every exposure on its own), with the fill of each block scaled per exposure."""
+    parts = []
+    for a in range(0, len(flux), BLOCK_ROWS):
+        rows = slice(a, a + BLOCK_ROWS)
+        fill = fvar = None
+        if fill_spec is not None:
+            fill = fill_spec[None, :] * scale[rows, None]
+            fvar = fill_var[None, :] * scale[rows, None]
+        parts.append(bin_spectra(pix_edges, np.asarray(flux[rows], float), np.asarray(var[rows], float),
+                                 mask[rows], edges, fill=fill, fill_variance=fvar))
+    first = parts[0]
+    return BinnedSpectra(flux=np.concatenate([p.flux for p in parts]),
+                         variance=np.concatenate([p.variance for p in parts]),
+                         mask=np.concatenate([p.mask for p in parts]),
+                         n_filled=np.concatenate([p.n_filled for p in parts]),
+                         weights=first.weights, channel_edges=first.channel_edges)
 
 
 def read_lightcurves(path):
@@ -148,29 +187,32 @@ class Bin(VisitTask):
         started = time.time()
         visit, params = self.config, self.params
         spectra_path = self.requires().final_product()
-        flux, var, mask, pix_edges, exp = read_spectra(spectra_path)
+        flux, var, mask, pix_edges, exp = read_spectra(spectra_path, dtype=np.float32)
         self.progress(0, 3, "binning")
+        # the spectra stay as stored (float32); sums, medians and binning work in float64 on
+        # blocks of exposures or pixels, so memory does not grow with the visit's temporaries
         good = ~mask & np.isfinite(flux)
-        total = np.nansum(np.where(good, flux, 0.0), axis=1)
-        median_spec = np.nanmedian(np.where(good, flux, np.nan), axis=0)
+        total = np.concatenate([np.sum(np.where(good[a:a + BLOCK_ROWS],
+                                                np.asarray(flux[a:a + BLOCK_ROWS], float), 0.0), axis=1)
+                                for a in range(0, len(flux), BLOCK_ROWS)])
+        median_spec = _median_over_exposures(flux, good)
         median_spec = _bridge(median_spec)
         lit = lit_range(pix_edges, median_spec, params["lit_threshold"])
         edges = _channel_edges(params, pix_edges, median_spec, lit)
         light = channel_light(pix_edges, median_spec, edges, lit.peak)
         dim = light < params["lit_threshold"]
-        fill = fill_var = None
+        scale = fill_spec = fill_var = None
+        median_var = _median_over_exposures(var, good)
         if params["fill"] == "profile":
             # a bad pixel takes the median spectrum scaled to its exposure's total, and the
             # median variance scaled alike
             scale = total / max(np.sum(median_spec), 1e-30)
-            median_var = np.nanmedian(np.where(good, var, np.nan), axis=0)
-            median_var = _bridge(median_var)
-            fill = median_spec[None, :] * scale[:, None]
-            fill_var = median_var[None, :] * scale[:, None]
-        binned = bin_spectra(pix_edges, flux, var, mask, edges, fill=fill, fill_variance=fill_var)
+            fill_spec = median_spec
+            fill_var = _bridge(median_var)
+        binned = _bin_in_blocks(pix_edges, flux, var, mask, edges, scale, fill_spec, fill_var)
         white_range = params["white_range"] or (edges[0], edges[-1])
-        white = bin_spectra(pix_edges, flux, var, mask, np.asarray(white_range, float), fill=fill,
-                            fill_variance=fill_var)
+        white = _bin_in_blocks(pix_edges, flux, var, mask, np.asarray(white_range, float), scale,
+                               fill_spec, fill_var)
         self.progress(1, 3, "times and covariates")
 
         mid_mjd = np.asarray(exp["start_mjd_utc"], float) + np.asarray(exp["mid_offset"], float) / 86400
@@ -221,7 +263,7 @@ class Bin(VisitTask):
         spectrum["wave_lo"] = pix_edges[:-1]
         spectrum["wave_hi"] = pix_edges[1:]
         spectrum["flux"] = median_spec
-        spectrum["error"] = np.sqrt(np.nanmedian(np.where(good, var, np.nan), axis=0) / max(len(flux), 1))
+        spectrum["error"] = np.sqrt(median_var / max(len(flux), 1))
         for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("flux", "electron"),
                            ("error", "electron")):
             spectrum[name].unit = unit
