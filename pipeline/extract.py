@@ -118,8 +118,9 @@ class Spectrum:
     n_rejected : ndarray of int, shape (n_exposures, n_columns)
         Pixels rejected as outliers in each column.
     profile : ndarray of shape (n_exposures, n_rows, n_columns)
-        Spatial profile used as weights: the normalised profile P for optimal
-        extraction, ones for box extraction (every pixel weighted 1).
+        Spatial profile: the normalised profile P that weights the optimal
+        extraction, or the profile that patched the box sum's missing pixels
+        (ones when a box had no profile: every pixel weighted 1).
     rejected : ndarray of bool, shape (n_exposures, n_rows, n_columns)
         True for pixels rejected as outliers (to be flagged
         ``mask.PROFILE_REJECT`` by the caller).
@@ -672,8 +673,9 @@ def box_extract(flux, variance, mask=None, *, profile=None, rows=None, threshold
     Returns
     -------
     Spectrum
-        ``profile`` holds the box's weights (ones inside the box); rejected
-        pixels are in ``rejected``.
+        ``profile`` holds the profile that patched missing pixels, normalised
+        over the box (without ``profile``: the box's weights, ones inside the
+        box); rejected pixels are in ``rejected``.
 
     Notes
     -----
@@ -731,7 +733,7 @@ def box_extract(flux, variance, mask=None, *, profile=None, rows=None, threshold
     return Spectrum(flux=np.where(bad_col, np.nan, f),
                     variance=np.where(bad_col, np.nan, v), mask=bad_col,
                     n_rejected=rejected.sum(axis=1).astype(int),
-                    profile=weights, rejected=rejected, row_lo=0,
+                    profile=weights if profile is None else prof, rejected=rejected, row_lo=0,
                     method="box")
 
 

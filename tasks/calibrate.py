@@ -197,7 +197,12 @@ class Calibrate(VisitTask):
         middle = paths[len(paths) // 2]
         flux, var, bits, _ = read_chunk(middle)
         fig_path = self.folder / "calibrate.png"
-        calibrate_figure(fig_path, flux[0], bits[0], exposures)
+        first = read_chunk(middle, exposures_only=True)[0]
+        ny, nx = bits[0].shape
+        source = expected_source_rows(self.config, nx, ny, (int(first["origin_x"]), int(first["origin_y"])),
+                                      float(first["scan_velocity"]), float(first["exposure_time"]))
+        calibrate_figure(fig_path, flux[0], bits[0], exposures, source_rows=source,
+                         scanning=bool(first["scan_velocity"]))
         counts = {name: int(np.sum(exposures[f"n_{name.lower()}"])) for name in dq.FLAGS}
         inventory = Table.read(self.input().path, format="ascii.ecsv")
         aside = inventory[np.asarray(inventory["excluded"], bool)]

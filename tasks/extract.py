@@ -39,6 +39,7 @@ from lightledger.pipeline.wavelength import (column_wavelengths, pixel_edges, re
 
 from .base import ENTRY_NAME, VisitTask, chunk_ranges
 from .calibrate import Calibrate, read_chunk
+from .geometry import expected_source_rows
 from .products import table_hdu, write_fits
 from .references import load_throughput
 
@@ -235,7 +236,8 @@ class ExtractChunk(VisitTask):
                 table_hdu(table, "EXPOSURES"),
                 fits.ImageHDU(first_profile, name="PROFILE")]
         write_fits(self.output().path, hdus, self.provenance([chunk_path, self.input().path]),
-                   header={"CHUNK": self.chunk})
+                   header={"CHUNK": self.chunk,
+                           "PROFROW": (int(spec.row_lo), "frame row of the PROFILE's first row")})
         self.progress(n, n_visit, "extracting spectra", part=self.chunk)
 
 
@@ -268,6 +270,7 @@ class Extract(VisitTask):
                 tables.append(Table(hdul["EXPOSURES"].data))
                 if profile is None:
                     profile = np.asarray(hdul["PROFILE"].data, float)
+                    profile_row = int(hdul[0].header.get("PROFROW", 0))
         flux, var, mask = np.concatenate(fluxes), np.concatenate(variances), np.concatenate(masks)
         del fluxes, variances, masks
         exposures = vstack(tables)
@@ -295,8 +298,18 @@ class Extract(VisitTask):
         write_fits(path, hdus, self.provenance(inputs))
         from .figures import extract_figure
         fig = self.folder / "extract.png"
+        _, refspec_rows, median_frame = read_reference(self.input().path)
+        ny, nx = median_frame.shape
+        first = exposures[0]
+        sky = expected_source_rows(self.config, nx, ny, (int(first["origin_x"]), int(first["origin_y"])),
+                                   float(first["scan_velocity"]), float(first["exposure_time"]))
+        scanning = bool(header.get("SCANNING"))
         extract_figure(fig, np.asarray(wave["wavelength"], float), np.where(mask > 0, np.nan, flux),
-                       exposures, profile)
+                       exposures, profile, median_frame=median_frame,
+                       aperture=(int(header["APLO"]), int(header["APHI"])),
+                       band=(header["BANDLO"], header["BANDHI"]) if scanning else None,
+                       trace_rows=None if scanning else np.asarray(refspec_rows["trace_row"], float),
+                       sky_rows=sky, method=self.params["method"], profile_row=profile_row)
         metrics = {"method": self.params["method"],
                    "dx rms (pix)": float(np.nanstd(exposures["dx"])),
                    "dy rms (pix)": float(np.nanstd(exposures["dy"])),

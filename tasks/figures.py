@@ -12,7 +12,8 @@ from lightledger.pipeline import mask as dq  # noqa: E402
 
 from .products import save_figure  # noqa: E402
 
-__all__ = ["calibrate_figure", "extract_figure", "bin_figure", "detrend_figure"]
+__all__ = ["calibrate_figure", "extract_figure", "bin_figure", "detrend_figure", "flag_image",
+           "binned_points", "decimate_rows"]
 
 
 #: Most rows of an image drawn from per-exposure data (a figure is ~800 pixels tall).
@@ -43,95 +44,350 @@ def _hours(days):
     return (days - days[0]) * 24.0
 
 
-def calibrate_figure(path, frame, bits, exposures):
-    """A calibrated frame, its mask, background and flagged counts against time."""
-    fig, axes = plt.subplots(2, 2, figsize=(11, 7), constrained_layout=True)
-    lo, hi = np.nanpercentile(frame, [1, 99.5])
-    im = axes[0, 0].imshow(frame, origin="lower", vmin=lo, vmax=hi, aspect="auto", cmap="magma")
-    fig.colorbar(im, ax=axes[0, 0], label="electrons")
-    axes[0, 0].set_title("calibrated frame (first exposure of the middle chunk)")
+def _figure(rows, cols, size, **space):
+    """A figure with a fixed layout (constrained layout costs ~40 % of the drawing time)."""
+    fig, axes = plt.subplots(rows, cols, figsize=size, squeeze=False)
+    fig.subplots_adjust(**{"left": 0.07, "right": 0.97, "bottom": 0.07, "top": 0.93,
+                           "wspace": 0.32, "hspace": 0.42, **space})
+    return fig, axes
+
+
+def _image(fig, ax, image, *, label, cmap="magma", percentiles=(1, 99.5), **kw):
+    """An image in pixel coordinates with a labelled colour bar."""
+    finite = np.isfinite(image)
+    lo, hi = (np.percentile(image[finite], percentiles) if finite.any() else (0.0, 1.0))
+    if not hi > lo:
+        hi = lo + 1.0
+    kw = {"origin": "lower", "aspect": "auto", "cmap": cmap, "vmin": lo, "vmax": hi,
+          "interpolation": "nearest", **kw}
+    im = ax.imshow(image, **kw)
+    fig.colorbar(im, ax=ax, label=label, fraction=0.05, pad=0.02)
+    return im
+
+
+def _pixel_axes(ax):
+    ax.set_xlabel("column (pixel)")
+    ax.set_ylabel("row (pixel)")
+
+
+#: One colour per flag, in bit order (colour-blind-safe qualitative palette, then greys).
+_FLAG_COLOURS = ("#88CCEE", "#DDCC77", "#CC6677", "#AA4499", "#44AA99", "#999933",
+                 "#882255", "#332288", "#000000")
+
+
+def flag_image(fig, ax, bits):
+    """The mask as its gravest flag per pixel, with a colour bar labelled by value and name.
+
+    Returns the names of the flags present.
+    """
+    from matplotlib.colors import BoundaryNorm, ListedColormap
+
+    bits = np.asarray(bits, dtype=np.int64)
+    present = [(name, value) for name, value in dq.FLAGS.items() if np.any(bits & value)]
     shown = np.zeros(bits.shape, int)
-    names = []
-    for k, (name, value) in enumerate(dq.FLAGS.items(), start=1):
-        if np.any(bits & value):
-            shown[(bits & value) > 0] = len(names) + 1
-            names.append(name)
-    cmap = plt.get_cmap("tab10", max(len(names) + 1, 2))
-    axes[0, 1].imshow(shown, origin="lower", aspect="auto", cmap=cmap, vmin=0,
-                      vmax=max(len(names), 1), interpolation="nearest")
-    axes[0, 1].set_title("mask: " + (", ".join(f"{i + 1}={n}" for i, n in enumerate(names)) or "clean"),
-                         fontsize=9)
+    for k, (name, value) in enumerate(present, start=1):   # bit order: the gravest comes last
+        shown[(bits & value) > 0] = k
+    colours = ["#FFFFFF"] + [_FLAG_COLOURS[list(dq.FLAGS).index(n) % len(_FLAG_COLOURS)]
+                             for n, _ in present]
+    cmap = ListedColormap(colours)
+    norm = BoundaryNorm(np.arange(len(colours) + 1) - 0.5, len(colours))
+    im = ax.imshow(shown, origin="lower", aspect="auto", cmap=cmap, norm=norm,
+                   interpolation="nearest")
+    bar = fig.colorbar(im, ax=ax, ticks=np.arange(len(colours)), fraction=0.05, pad=0.02)
+    counts = [int(np.count_nonzero(bits & v)) for _, v in present]
+    bar.set_ticklabels(["0 clean"] + [f"{v} {n} ({c})" for (n, v), c in zip(present, counts)])
+    bar.ax.tick_params(labelsize=7)
+    bar.set_label("gravest flag: bit value, name (pixels)")
+    _pixel_axes(ax)
+    return [n for n, _ in present]
+
+
+def _shade_rows(ax, lo, hi, *, colour, label, alpha=0.18):
+    ax.axhspan(lo - 0.5, hi - 0.5, color=colour, alpha=alpha, lw=0, label=label)
+
+
+def _hatch_rows(ax, lo, hi, *, colour, label):
+    ax.axhspan(lo - 0.5, hi - 0.5, facecolor="none", edgecolor=colour, hatch="///", lw=0.8,
+               label=label)
+
+
+def calibrate_figure(path, frame, bits, exposures, *, source_rows=None, scanning=False):
+    """A calibrated frame with its source and sky rows, its mask, the sky level and flags in time.
+
+    Parameters
+    ----------
+    path : path-like
+        PNG to write.
+    frame, bits : ndarray of shape (n_rows, n_columns)
+        One calibrated exposure (electrons) and its data-quality bits.
+    exposures : astropy.table.Table
+        The stage's per-exposure table.
+    source_rows : (int, int), optional
+        Rows ``[lo, hi)`` where the source was expected (kept out of the sky model).
+    scanning : bool
+        A scan: the scanned band is drawn from the frame's UNSCANNED flags.
+    """
+    fig, axes = _figure(2, 2, (13, 8), right=0.86, wspace=0.45)
+    ax = axes[0, 0]
+    _image(fig, ax, frame, label="electrons per pixel")
+    _pixel_axes(ax)
+    ax.set_title("calibrated frame (first exposure of the middle chunk)", fontsize=10)
+    if scanning:
+        covered = np.flatnonzero(np.mean((bits & dq.UNSCANNED) == 0, axis=1) > 0.5)
+        if covered.size:
+            ax.axhline(covered[0] - 0.5, color="cyan", lw=1.2, label="scanned band (from the data)")
+            ax.axhline(covered[-1] + 0.5, color="cyan", lw=1.2)
+    if source_rows is not None:
+        lo, hi = source_rows
+        _shade_rows(ax, lo, hi, colour="white", label="expected source rows (not sky)")
+        ny = frame.shape[0]
+        if lo > 0:
+            _hatch_rows(ax, 0, lo, colour="tab:green", label="sky rows")
+        if hi < ny:
+            _hatch_rows(ax, hi, ny, colour="tab:green", label=None if lo > 0 else "sky rows")
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(fontsize=7, loc="upper right", framealpha=0.7)
+    flag_image(fig, axes[0, 1], bits)
+    axes[0, 1].set_title("data-quality flags of the same exposure", fontsize=10)
     t = _hours(exposures["start_mjd_utc"])
-    axes[1, 0].plot(t, exposures["background_level"], ".", color="tab:blue")
+    axes[1, 0].plot(t, exposures["background_level"], ".", color="tab:blue", ms=3)
     axes[1, 0].set_xlabel("hours since the first exposure")
-    axes[1, 0].set_ylabel("background level (e- per pixel)")
-    for name in dq.FLAGS:
+    axes[1, 0].set_ylabel("sky level (electrons per pixel)")
+    axes[1, 0].set_title("sky background subtracted from each exposure", fontsize=10)
+    for name, value in dq.FLAGS.items():
         col = f"n_{name.lower()}"
         if col in exposures.colnames and np.any(exposures[col]):
-            axes[1, 1].plot(t, exposures[col], ".", label=name)
-    axes[1, 1].set_yscale("symlog")
+            axes[1, 1].plot(t, np.asarray(exposures[col], float), ".", ms=3, label=f"{value} {name}",
+                            color=_FLAG_COLOURS[list(dq.FLAGS).index(name) % len(_FLAG_COLOURS)])
+    axes[1, 1].set_yscale("log")
     axes[1, 1].set_xlabel("hours since the first exposure")
     axes[1, 1].set_ylabel("flagged pixels per exposure")
+    axes[1, 1].set_title("flagged pixels by flag (value and name)", fontsize=10)
     if axes[1, 1].get_legend_handles_labels()[0]:
-        axes[1, 1].legend(fontsize=8)
+        axes[1, 1].legend(fontsize=7, ncol=2)
     return save_figure(fig, path)
 
 
-def extract_figure(path, wavelength, flux, exposures, profile_image):
-    """Waterfall of normalised spectra, shifts against time, the spatial profile image."""
-    fig, axes = plt.subplots(2, 2, figsize=(11, 7), constrained_layout=True)
+def extract_figure(path, wavelength, flux, exposures, profile_image, *, median_frame=None,
+                   aperture=None, band=None, trace_rows=None, sky_rows=None, method="optimal",
+                   profile_row=0):
+    """The extraction region on the median frame, the profile, the spectra and the drifts.
+
+    Parameters
+    ----------
+    path : path-like
+        PNG to write.
+    wavelength : ndarray (n_pixels,)
+        Wavelength of each pixel of the spectra, um.
+    flux : ndarray (n_exposures, n_pixels)
+        Spectra, electrons per pixel, NaN where masked.
+    exposures : astropy.table.Table
+        Per-exposure table with ``start_mjd_utc``, ``dx``, ``dy``, ``width``.
+    profile_image : ndarray (n_rows, n_columns)
+        Spatial profile of the first exposure (weights of the extraction).
+    median_frame : ndarray (n_rows, n_columns), optional
+        The median calibrated frame, electrons.
+    aperture : (int, int), optional
+        Rows ``[lo, hi)`` of the extraction.
+    band : (float, float), optional
+        Edges of the scanned band, rows.
+    trace_rows : ndarray (n_columns,), optional
+        Trace centre per column, rows.
+    sky_rows : (int, int), optional
+        Rows kept out of the sky model (the rest are sky rows).
+    method : str
+        ``"optimal"`` or ``"box"``, for the profile's label.
+    profile_row : int
+        Frame row of the profile image's first row.
+    """
+    fig, axes = _figure(3, 2, (12, 11), hspace=0.5)
     n_exposures = len(flux)
-    flux, _ = decimate_rows(flux)               # means of consecutive exposures, at most 600 rows
-    med = np.nanmedian(flux, axis=0)
-    bright = med > 0.2 * np.nanmax(med)           # the faint ends would swamp the colour scale
-    ratio = flux / np.where(bright, med, np.nan)
-    ratio = ratio / np.nanmedian(ratio, axis=1, keepdims=True)
-    lo, hi = np.nanpercentile(ratio[:, bright], [1, 99]) if np.any(bright) else (0.99, 1.01)
-    axes[0, 0].imshow(ratio, origin="lower", aspect="auto", cmap="viridis", vmin=lo, vmax=hi,
-                      extent=[wavelength[0], wavelength[-1], 0, n_exposures])
-    axes[0, 0].set_xlabel("wavelength (um)")
-    axes[0, 0].set_ylabel("exposure")
-    axes[0, 0].set_title("spectra / median spectrum")
-    axes[0, 1].plot(wavelength, med, color="k")
-    axes[0, 1].set_xlabel("wavelength (um)")
-    axes[0, 1].set_ylabel("median spectrum (e- per pixel)")
     t = _hours(exposures["start_mjd_utc"])
-    for name, color in (("dx", "tab:blue"), ("dy", "tab:orange")):
-        axes[1, 0].plot(t, exposures[name], ".", color=color, label=name)
-    axes[1, 0].set_xlabel("hours since the first exposure")
-    axes[1, 0].set_ylabel("shift (pixels)")
-    axes[1, 0].legend(fontsize=8)
-    im = axes[1, 1].imshow(profile_image, origin="lower", aspect="auto", cmap="magma")
-    fig.colorbar(im, ax=axes[1, 1])
-    axes[1, 1].set_title("spatial profile (first exposure)")
+    ax = axes[0, 0]
+    if median_frame is not None:
+        _image(fig, ax, median_frame, label="electrons per pixel")
+        ny, nx = median_frame.shape
+        if sky_rows is not None:
+            lo, hi = sky_rows
+            if lo > 0:
+                _hatch_rows(ax, 0, lo, colour="tab:green", label="sky rows")
+            if hi < ny:
+                _hatch_rows(ax, hi, ny, colour="tab:green", label=None if lo > 0 else "sky rows")
+        if aperture is not None:
+            ax.axhline(aperture[0] - 0.5, color="white", lw=1.2, ls="--", label="extraction rows")
+            ax.axhline(aperture[1] - 0.5, color="white", lw=1.2, ls="--")
+        if band is not None:
+            ax.axhline(band[0], color="cyan", lw=1.2, label="scanned band")
+            ax.axhline(band[1], color="cyan", lw=1.2)
+        if trace_rows is not None:
+            ax.plot(np.arange(nx), trace_rows, color="cyan", lw=1.0, label="trace centre")
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(fontsize=7, loc="upper right", framealpha=0.7)
+    _pixel_axes(ax)
+    ax.set_title("median calibrated frame and the extraction region", fontsize=10)
+
+    ax = axes[0, 1]
+    prof = np.asarray(profile_image, float)
+    rows = profile_row + np.arange(prof.shape[0] + 1) - 0.5
+    label = ("profile that patches masked pixels" if method == "box"
+             else "profile: fraction of the column's flux")
+    _image(fig, ax, prof, label=label, cmap="viridis", percentiles=(0, 100),
+           extent=[-0.5, prof.shape[1] - 0.5, rows[0], rows[-1]])
+    _pixel_axes(ax)
+    ax.set_title(f"spatial profile of the first exposure ({method} extraction)", fontsize=10)
+
+    ax = axes[1, 0]
+    shown, step = decimate_rows(flux)           # means of consecutive exposures, at most 600 rows
+    med = np.nanmedian(shown, axis=0)
+    top = np.nanmax(med) if np.any(np.isfinite(med)) else 0.0
+    bright = np.isfinite(med) & (med > 0.2 * top)   # the faint ends would swamp the colour scale
+    ratio = shown / np.where(bright, med, np.nan)
+    scale = np.nanmedian(ratio[:, bright], axis=1, keepdims=True) if np.any(bright) else 1.0
+    ratio = ratio / scale
+    finite = np.isfinite(ratio)
+    lo, hi = np.percentile(ratio[finite], [1, 99]) if finite.any() else (0.99, 1.01)
+    im = ax.imshow(ratio, origin="lower", aspect="auto", cmap="viridis", vmin=lo, vmax=hi,
+                   interpolation="nearest",
+                   extent=[wavelength[0], wavelength[-1], -0.5, n_exposures - 0.5])
+    fig.colorbar(im, ax=ax, label="flux / median spectrum", fraction=0.05, pad=0.02)
+    ax.set_xlabel("wavelength (um)")
+    ax.set_ylabel("exposure" + (f" (means of {step})" if step > 1 else ""))
+    ax.set_title("spectra relative to the median spectrum (white = masked)", fontsize=10)
+
+    ax = axes[1, 1]
+    ax.plot(wavelength, np.nanmedian(flux, axis=0), color="k", lw=1)
+    ax.set_xlabel("wavelength (um)")
+    ax.set_ylabel("median spectrum (electrons per pixel)")
+    ax.set_title("median spectrum", fontsize=10)
+
+    for name, colour in (("dx", "tab:blue"), ("dy", "tab:orange")):
+        axes[2, 0].plot(t, exposures[name], ".", ms=3, color=colour,
+                        label={"dx": "dx, along the dispersion", "dy": "dy, across it"}[name])
+    axes[2, 0].set_xlabel("hours since the first exposure")
+    axes[2, 0].set_ylabel("shift from the reference (pixels)")
+    axes[2, 0].legend(fontsize=7)
+    axes[2, 0].set_title("spectrum drifts", fontsize=10)
+    axes[2, 1].plot(t, exposures["width"], ".", ms=3, color="tab:purple")
+    axes[2, 1].set_xlabel("hours since the first exposure")
+    axes[2, 1].set_ylabel("trace sigma or band length (pixels)")
+    axes[2, 1].set_title("width of the trace or length of the scanned band", fontsize=10)
     return save_figure(fig, path)
 
 
-def bin_figure(path, lc, channels):
-    """Waterfall of normalised channel light curves and the white light curve."""
-    fig, axes = plt.subplots(1, 2, figsize=(11, 6), constrained_layout=True)
+def binned_points(t, y, n_bins):
+    """Means of ``y`` in ``n_bins`` consecutive groups of (sorted) ``t``; NaN ignored.
+
+    Returns ``(t_mean, y_mean, y_error)``; the error is the scatter of the group
+    over the square root of its size (groups of one have NaN error).
+    """
+    t = np.asarray(t, float)
+    y = np.asarray(y, float)
+    ok = np.isfinite(t) & np.isfinite(y)
+    t, y = t[ok], y[ok]
+    order = np.argsort(t)
+    t, y = t[order], y[order]
+    n_bins = int(max(1, min(n_bins, t.size)))
+    groups = np.array_split(np.arange(t.size), n_bins)
+    tm = np.array([t[g].mean() for g in groups if g.size])
+    ym = np.array([y[g].mean() for g in groups if g.size])
+    ye = np.array([y[g].std(ddof=1) / np.sqrt(g.size) if g.size > 1 else np.nan
+                   for g in groups if g.size])
+    return tm, ym, ye
+
+
+#: Exposures above which light curves are drawn as faint points with binned points on top.
+LONG_VISIT = 300
+
+
+def bin_figure(path, lc, channels, spectrum=None, lit=None):
+    """Channel light curves, the white light curve and the channels on the median spectrum.
+
+    Parameters
+    ----------
+    path : path-like
+        PNG to write.
+    lc : astropy.table.Table
+        LIGHTCURVES of the bin stage.
+    channels : astropy.table.Table
+        CHANNELS (with ``dim``, ``light`` when known).
+    spectrum : astropy.table.Table, optional
+        SPECTRUM (``wave_lo``, ``wave_hi``, ``flux``) for the channel panel.
+    lit : (float, float), optional
+        The lit part of the spectrum, um.
+    """
+    fig, axes = _figure(1, 3, (16, 6), wspace=0.3, left=0.05, right=0.98, bottom=0.1, top=0.9)
     t = _hours(lc["time_bjd_tdb"])
     flux = np.asarray(lc["flux"], float)
-    norm = flux / np.nanmedian(flux, axis=0)
-    spread = 4 * np.nanstd(norm - 1) if np.isfinite(np.nanstd(norm)) else 0.01
+    mask = np.asarray(lc["mask"], bool)
+    with np.errstate(all="ignore"):
+        med = np.nanmedian(np.where(mask, np.nan, flux), axis=0)
+        norm = np.where(mask, np.nan, flux) / np.where(med > 0, med, np.nan)
+    spread = 4 * np.nanstd(norm - 1) if np.any(np.isfinite(norm)) else 0.01
+    spread = spread if np.isfinite(spread) and spread > 0 else 0.01
+    dim = np.asarray(channels["dim"], bool) if "dim" in channels.colnames else np.zeros(len(channels), bool)
     cmap = plt.get_cmap("viridis")
     n = norm.shape[1]
+    long_visit = len(t) > LONG_VISIT
     for j in range(n):
-        axes[0].plot(t, norm[:, j] - j * spread, ".", ms=3, color=cmap(j / max(n - 1, 1)))
-        axes[0].text(t[-1], 1 - j * spread, f" {channels['wave_mid'][j]:.3f}", fontsize=7, va="center")
-    axes[0].set_xlabel("hours since the first exposure")
-    axes[0].set_ylabel("normalised flux (offset per channel; label: um)")
+        colour = "0.6" if dim[j] else cmap(j / max(n - 1, 1))
+        offset = 1 - j * spread
+        axes[0, 0].plot(t, norm[:, j] - j * spread, ".", ms=1 if long_visit else 3, color=colour,
+                        alpha=0.4 if long_visit else 1.0)
+        if long_visit:
+            tb, yb, _ = binned_points(t, norm[:, j] - j * spread, 100)
+            axes[0, 0].plot(tb, yb, "o", ms=3, color=colour)
+        axes[0, 0].text(t[-1], offset, f" {channels['wave_mid'][j]:.3f}" + (" dim" if dim[j] else ""),
+                        fontsize=7, va="center", color="0.4" if dim[j] else "k")
+    axes[0, 0].set_xlabel("hours since the first exposure")
+    axes[0, 0].set_ylabel("flux / channel median, offset per channel")
+    axes[0, 0].set_title("channel light curves (labels: centre, um)", fontsize=10)
+
+    ax = axes[0, 1]
     w = np.asarray(lc["white_flux"], float)
     e = np.asarray(lc["white_error"], float)
-    med = np.nanmedian(w)
+    wmask = np.asarray(lc["white_mask"], bool)
+    wmed = np.nanmedian(w[~wmask]) if np.any(~wmask) else np.nan
     direction = np.asarray(lc["scan_direction"])
-    for d, label, color in ((1, "forward", "tab:blue"), (-1, "reverse", "tab:red"), (0, "stare", "k")):
-        sel = direction == d
+    for d, label, colour in ((1, "forward scans", "tab:blue"), (-1, "reverse scans", "tab:red"),
+                             (0, "exposures", "k")):
+        sel = (direction == d) & ~wmask
         if np.any(sel):
-            axes[1].errorbar(t[sel], w[sel] / med, e[sel] / med, fmt=".", color=color, label=label)
-    axes[1].set_xlabel("hours since the first exposure")
-    axes[1].set_ylabel("white flux / median")
-    axes[1].legend(fontsize=8)
+            if long_visit:
+                ax.plot(t[sel], w[sel] / wmed, ".", ms=1, color=colour, alpha=0.3, label=label)
+            else:
+                ax.errorbar(t[sel], w[sel] / wmed, e[sel] / wmed, fmt=".", ms=3, color=colour,
+                            label=label)
+    if long_visit:
+        tb, yb, yeb = binned_points(t[~wmask], w[~wmask] / wmed, 100)
+        ax.errorbar(tb, yb, yeb, fmt="o", ms=3, color="k", label="binned (100 bins)")
+    ax.set_xlabel("hours since the first exposure")
+    ax.set_ylabel("white flux / median")
+    ax.set_title("white light curve", fontsize=10)
+    ax.legend(fontsize=7)
+
+    ax = axes[0, 2]
+    if spectrum is not None:
+        mid = 0.5 * (np.asarray(spectrum["wave_lo"], float) + np.asarray(spectrum["wave_hi"], float))
+        ax.plot(mid, spectrum["flux"], color="k", lw=1, label="median spectrum")
+    for j in range(len(channels)):
+        ax.axvspan(channels["wave_lo"][j], channels["wave_hi"][j],
+                   color="0.6" if dim[j] else cmap(j / max(n - 1, 1)), alpha=0.25, lw=0,
+                   label=("dim channel" if dim[j] and not np.any(dim[:j]) else
+                          "channel" if j == int(np.argmin(dim)) and not dim[j] else None))
+    for j in range(len(channels)):
+        ax.axvline(channels["wave_lo"][j], color="0.5", lw=0.5)
+        ax.text(channels["wave_mid"][j], 1.0, str(j), transform=ax.get_xaxis_transform(),
+                ha="center", va="bottom", fontsize=7, color="0.4" if dim[j] else "k")
+    if len(channels):
+        ax.axvline(channels["wave_hi"][len(channels) - 1], color="0.5", lw=0.5)
+    if lit is not None:
+        for x in lit:
+            ax.axvline(x, color="tab:red", ls=":", lw=1)
+        ax.plot([], [], color="tab:red", ls=":", label="lit part of the spectrum")
+    ax.set_xlabel("wavelength (um)")
+    ax.set_ylabel("electrons per pixel")
+    ax.set_title("channels (numbered) on the median spectrum", fontsize=10, pad=14)
+    ax.legend(fontsize=7)
     return save_figure(fig, path)
 
 

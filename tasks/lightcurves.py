@@ -289,7 +289,7 @@ class Bin(VisitTask):
             outputs.append(folder / name)
         from .figures import bin_figure
         fig = folder / "lightcurves.png"
-        bin_figure(fig, lc, channels)
+        bin_figure(fig, lc, channels, spectrum, (lit.lo, lit.hi))
         white_flux = lc["white_flux"][~lc["white_mask"]]
         metrics = {"channels": n_ch, "white band (um)": [float(white_range[0]), float(white_range[1])],
                    "lit part of the spectrum (um)": [round(lit.lo, 4), round(lit.hi, 4)],

@@ -49,21 +49,18 @@ class ReducedVisit(NamedTuple):
         return self.outdir / "notebook"
 
     def stage_folder(self, stage):
-        """Folder of ``stage`` in the default reduction (later runs with other settings
-        add folders beside it: the calibrate stage is found through the
-        provenance of the extract stage's reference.fits)."""
-        from lightledger.tasks.products import read_provenance
+        """Folder of ``stage`` in the default reduction: the final product's folder and
+        the folders it was made from (entry.json ``made_from``), so that later runs
+        with other settings can add folders beside them."""
+        import json
 
-        if stage == "calibrate":
-            ref = self.stage_folder("extract") / "reference.fits"
-            inputs = [Path(str(p)) for p in read_provenance(ref)["inputs"]]
-            inputs = [(p if p.is_absolute() else ref.parent / p).resolve() for p in inputs]
-            found = {p.parent for p in inputs if p.parent.name.startswith("calibrate-")}
-        else:
-            found = {p.resolve() for p in self.notebook.glob(f"{stage}-*")
-                     if p.is_dir() and ".superseded-" not in p.name}
-        assert len(found) == 1, f"{stage}: found {sorted(found)}"
-        return found.pop()
+        folder = Path(self.result.final).parent.resolve()
+        while True:
+            entry = json.loads((folder / "entry.json").read_text())
+            if entry["stage"] == stage:
+                return folder
+            assert entry["made_from"] != "raw", f"{stage}: not in the default reduction"
+            folder = self.notebook.resolve() / entry["made_from"]
 
     def product(self, stage, name):
         """Path of the product ``name`` of ``stage`` in the default reduction."""
@@ -99,6 +96,35 @@ def scan_visit(tmp_path_factory):
 def stare_visit(tmp_path_factory):
     """The stare-eclipse scenario, 150 exposures, seed 1, reduced with the defaults."""
     return _reduce(tmp_path_factory, "stare-eclipse", STARE_EXPOSURES, STARE_SEED)
+
+
+def _reduce_again(visit, settings, until=None):
+    """Reduce a rendered visit again with other settings (RuntimeWarning as an error)."""
+    from lightledger.tasks.run import reduce_visit
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", RuntimeWarning)
+        result = reduce_visit(visit.visit, settings=settings, until=until, workers=1)
+    assert result.ok, "\n".join(result.messages)
+    return result
+
+
+@pytest.fixture(scope="session")
+def scan_box(scan_visit):
+    """Detrend folder of the scan visit reduced again with extract.method=box."""
+    return Path(_reduce_again(scan_visit, [("extract", "method", "box")]).final).parent.resolve()
+
+
+@pytest.fixture(scope="session")
+def stare_box(stare_visit):
+    """Detrend folder of the stare visit reduced again with extract.method=box."""
+    return Path(_reduce_again(stare_visit, [("extract", "method", "box")]).final).parent.resolve()
+
+
+@pytest.fixture(scope="session")
+def rebin():
+    """``rebin(visit, settings)``: the bin folder of a reduced visit binned again."""
+    return lambda visit, settings: Path(_reduce_again(visit, settings, until="bin").final).parent
 
 
 @pytest.fixture(scope="session")

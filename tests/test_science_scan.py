@@ -261,3 +261,21 @@ def test_independent_fit_is_noise_limited(independent_depths, which):
     # practice); 2.0 is 4 sigma above.
     depth, error, chi2 = independent_depths[which]
     assert chi2 < 2.0, f"{which}: reduced chi2 {chi2:.2f}"
+
+
+@pytest.mark.slow
+def test_box_extraction_scatter_is_within_ten_percent_of_optimal(scan_visit, scan_box):
+    # Common practice: with bad pixels patched through the profile, a box sum
+    # over each exposure's own band loses little to optimal extraction on a
+    # photon-limited scan (Horne 1986: the optimal variance is never larger, and
+    # close to the box's when the source fills the aperture).  Issue tolerance 1.1.
+    from lightledger.tasks.detrend import read_depths
+
+    optimal = read_depths(scan_visit.product("detrend", "detrended.fits"))
+    box = read_depths(scan_box / "detrended.fits")
+    ratio = float(box["rms_ppm"][0] / optimal["rms_ppm"][0])
+    print(f"white rms: box {box['rms_ppm'][0]:.1f} ppm, optimal {optimal['rms_ppm'][0]:.1f} ppm, "
+          f"ratio {ratio:.3f}")
+    assert box["channel"][0] == -1 and optimal["channel"][0] == -1
+    assert ratio < 1.1
+    assert np.all(box["rms_ppm"][1:] < 1.1 * optimal["rms_ppm"][1:])

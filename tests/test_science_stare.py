@@ -167,3 +167,19 @@ def test_destriping_lowers_striping_tenfold(stare_visit, stare_destripe_off, whe
                f"on {np.round(floor_on, 2)}; rows used {rows.tolist()}")
     assert off_rows + off_cols > 1.0, "no stripes without destriping: " + message
     assert on_rows + on_cols <= (off_rows + off_cols) / 10, message
+
+
+@pytest.mark.slow
+def test_box_extraction_scatter_is_within_ten_percent_of_optimal(stare_visit, stare_box):
+    # As for the scan (tests/test_science_scan.py): the profile-patched box sum
+    # stays within 10 % of the optimal extraction's white rms (issue tolerance);
+    # on a stare the box adds the read noise of the trace's empty wing rows.
+    from lightledger.tasks.detrend import read_depths
+
+    optimal = read_depths(stare_visit.product("detrend", "detrended.fits"))
+    box = read_depths(stare_box / "detrended.fits")
+    ratio = float(box["rms_ppm"][0] / optimal["rms_ppm"][0])
+    print(f"white rms: box {box['rms_ppm'][0]:.1f} ppm, optimal {optimal['rms_ppm'][0]:.1f} ppm, "
+          f"ratio {ratio:.3f}")
+    assert ratio < 1.1
+    assert float(np.median(box["rms_ppm"][1:] / optimal["rms_ppm"][1:])) < 1.1

@@ -1,0 +1,85 @@
+"""Every stage's figures are made, for both scenarios and for box extraction, without warnings.
+
+The reductions behind these fixtures run with RuntimeWarning turned into an
+error (tests/conftest.py), so a figure (or a stage) that divides by zero or
+takes the median of an empty slice fails them.
+"""
+
+import json
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.image as mpimg  # noqa: E402
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+import pytest  # noqa: E402
+
+from lightledger.pipeline import mask as dq  # noqa: E402
+from lightledger.tasks.figures import binned_points, flag_image  # noqa: E402
+
+STAGE_FIGURES = {"calibrate": "calibrate.png", "extract": "extract.png", "bin": "lightcurves.png"}
+
+
+def _chain(notebook, last):
+    """Stage folders from ``last`` back to calibrate, through each entry's made_from."""
+    folders = {}
+    folder = Path(last)
+    while True:
+        entry = json.loads((folder / "entry.json").read_text())
+        folders[entry["stage"]] = folder
+        if entry["stage"] == "calibrate":
+            return folders
+        folder = Path(notebook) / entry["made_from"]
+
+
+def _check_figures(folders):
+    for stage, folder in folders.items():
+        entry = json.loads((folder / "entry.json").read_text())
+        assert entry["figures"], f"{stage}: no figure in the entry"
+        for name in entry["figures"]:
+            image = mpimg.imread(folder / name)
+            # a real drawing: larger than a thumbnail and not one flat colour
+            assert image.shape[0] > 300 and image.shape[1] > 500, (stage, name, image.shape)
+            assert np.std(image[..., :3]) > 0.05, (stage, name)
+        if stage in STAGE_FIGURES:
+            assert STAGE_FIGURES[stage] in entry["figures"]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("which", ["scan_visit", "stare_visit"])
+def test_every_stage_draws_its_figures(which, request):
+    visit = request.getfixturevalue(which)
+    _check_figures(_chain(visit.notebook, visit.stage_folder("detrend")))
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("which", ["scan", "stare"])
+def test_box_extraction_draws_its_figures(which, request):
+    visit = request.getfixturevalue(f"{which}_visit")
+    folders = _chain(visit.notebook, request.getfixturevalue(f"{which}_box"))
+    assert json.loads((folders["extract"] / "entry.json").read_text())["params"]["method"] == "box"
+    _check_figures(folders)
+
+
+def test_flag_image_labels_each_flag_by_value_and_name():
+    bits = np.zeros((6, 8), dq.MASK_DTYPE)
+    bits[1, 2] = dq.RAMP_BREAK
+    bits[3, 4] = dq.LISTED_BAD | dq.SKY_CLIPPED     # shown as its gravest flag
+    fig, ax = plt.subplots()
+    names = flag_image(fig, ax, bits)
+    labels = [t.get_text() for t in fig.axes[-1].get_yticklabels()]
+    plt.close(fig)
+    assert names == ["SKY_CLIPPED", "RAMP_BREAK", "LISTED_BAD"]
+    assert labels == ["0 clean", "2 SKY_CLIPPED (1)", "4 RAMP_BREAK (1)", "256 LISTED_BAD (1)"]
+
+
+def test_binned_points_are_group_means_with_their_standard_errors():
+    # definition: mean of each consecutive group and scatter / sqrt(size)
+    t = np.arange(12.0)
+    y = np.array([1, 3, 5, 7, 0, 0, 0, 0, 2, 2, 2, 2], float)
+    tb, yb, eb = binned_points(t[::-1], y[::-1], 3)        # order of the input does not matter
+    np.testing.assert_allclose(tb, [1.5, 5.5, 9.5])
+    np.testing.assert_allclose(yb, [4, 0, 2])
+    np.testing.assert_allclose(eb, [np.std([1, 3, 5, 7], ddof=1) / 2, 0, 0])
