@@ -25,7 +25,7 @@ from typing import Callable
 import numpy as np
 from astropy.io import fits
 
-__all__ = ["Damage", "DAMAGES", "copy_visit", "damage_names"]
+__all__ = ["Damage", "DAMAGES", "copy_visit", "damage_names", "apply_to_file"]
 
 BLOCK = 2880
 
@@ -92,9 +92,23 @@ def _raw(d, k=0):
     return sorted((Path(d) / "raw").glob("*.fits"))[k]
 
 
+#: Raw file (index in name order) that raw-file damages hit, per visit folder; default the middle.
+_TARGET = {}
+
+
 def _middle_raw(d):
     files = sorted((Path(d) / "raw").glob("*.fits"))
-    return files[len(files) // 2]
+    return files[_TARGET.get(str(Path(d).resolve()), len(files) // 2)]
+
+
+def apply_to_file(damage, visit_dir, k):
+    """Apply a raw-file ``damage`` to the ``k``-th raw file (name order) of ``visit_dir``."""
+    key = str(Path(visit_dir).resolve())
+    _TARGET[key] = k
+    try:
+        return damage.apply(visit_dir)
+    finally:
+        _TARGET.pop(key, None)
 
 
 def _rewrite(path, edit):

@@ -680,11 +680,14 @@ class VisitTask(luigi.Task):
         except Exception:
             return f"{self.visit} ({where})"
 
-    def write_entry(self, path, inputs, outputs, metrics, figures, started, *, extra_seconds=0.0):
+    def write_entry(self, path, inputs, outputs, metrics, figures, started, *, extra_seconds=0.0,
+                    warnings=()):
         """Write the stage's entry.json (the completion marker), atomically.
 
         ``seconds`` is this task's own time since ``started`` plus ``extra_seconds``
-        spent in the stage's other tasks (its chunks).
+        spent in the stage's other tasks (its chunks).  ``warnings`` are one-line
+        strings about results that cannot be trusted (shown on the page and the
+        console).
         """
         index = STAGE_ORDER.index(self.stage)
         ids = self.identities
@@ -714,6 +717,7 @@ class VisitTask(luigi.Task):
             "outputs": {Path(p).name: product_digest(p) for p in [*outputs, *figures]},
             "metrics": metrics,
             "figures": [Path(f).name for f in figures],
+            "warnings": [str(w) for w in warnings],
         }
         if index == 0:
             entry["raw"] = self._raw_record()

@@ -218,6 +218,8 @@ def _cmd_reduce(args):
     _close_progress()
     for line in result.messages:
         print(line, file=sys.stderr)
+    for line in result.flags:                  # results that cannot be trusted
+        print(line, file=sys.stderr)
     if result.set_aside:
         print(f"set aside: {len(result.set_aside)} exposures (listed in the calibrate stage's "
               f"inventory.ecsv):", file=sys.stderr)

@@ -18,7 +18,11 @@ Products in ``NOTEBOOK/detrend-IDENT/``:
     systematics and full models, residuals) and DEPTHS (per channel and the
     white band, as row ``channel = -1``: depth, error, residual rms, the
     expected rms from the errors, their ratio, the time-averaging beta
-    factor, reduced chi-square, BIC);
+    factor, reduced chi-square, BIC; ``fitted`` False for a channel left
+    out, with its ``note``; ``unphysical`` for a depth negative beyond three
+    errors or hiding the whole flux, ``noisy`` for residuals above five
+    times the expected rms, each also a warning in the entry and on the
+    console);
 ``detrended.ecsv``, ``depths.ecsv``
     the same as ECSV;
 ``detrend.png``
@@ -26,6 +30,7 @@ Products in ``NOTEBOOK/detrend-IDENT/``:
     spectrum.
 """
 
+import dataclasses
 import time
 from functools import partial
 
@@ -37,6 +42,7 @@ from astropy.table import Table
 from lightledger.pipeline.detrend import fit_channels, fit_light_curve, tied_phase_curve
 from lightledger.pipeline.diagnostics import residual_quality
 from lightledger.pipeline.errors import LightledgerError
+from lightledger.pipeline.plausibility import assess_fits
 from lightledger.pipeline.systematics import SystematicsInputs, standard_model
 from lightledger.pipeline.transit import eclipse_flux, transit_flux
 
@@ -104,6 +110,37 @@ def systematics_setup(lc, event, params):
     return inputs, model, options, left_out
 
 
+def channel_exclusions(visit, n_channels):
+    """{channel: note} of the channels the visit description excludes (``[exclude] channels``)."""
+    notes = {}
+    for first, last, reason in (getattr(visit, "exclude", None) or {}).get("channels", ()):
+        for j in range(first, min(last, n_channels - 1) + 1):
+            notes[j] = ("not fitted: excluded by the visit description (exclude.channels)"
+                        + (f": {reason}" if reason else ""))
+    return notes
+
+
+def white_like_unfitted(result):
+    """A fit result of the white light curve's shape holding NaN: a channel not fitted."""
+    values = {}
+    for f in dataclasses.fields(result):
+        v = getattr(result, f.name)
+        if isinstance(v, np.ndarray) and v.dtype.kind == "f":
+            values[f.name] = np.full_like(v, np.nan)
+        elif isinstance(v, np.ndarray) and v.dtype.kind == "b":
+            values[f.name] = np.ones_like(v)
+        elif isinstance(v, float):
+            values[f.name] = float("nan")
+    return dataclasses.replace(result, **values)
+
+
+def fit_unless_masked(fit, unfitted, flux, variance, template, *, mask):
+    """``fit(...)``, or ``unfitted`` for a light curve whose every exposure is masked."""
+    if np.all(mask):
+        return unfitted
+    return fit(flux, variance, template, mask=mask)
+
+
 def read_depths(path):
     """The DEPTHS table of a detrend product."""
     with fits.open(path, memmap=False) as hdul:
@@ -146,9 +183,16 @@ class Detrend(VisitTask):
         flux = np.asarray(lc["flux"], float)
         err = np.asarray(lc["error"], float)
         mask = np.asarray(lc["mask"], bool) | (bad | left_out)[:, None]
+        notes = channel_exclusions(visit, len(channels))
+        for j in notes:                     # the observer's excluded channels are not fitted
+            mask[:, j] = True
+        unfitted = white_like_unfitted(white)
         chans = fit_channels(t, flux, err ** 2, template, mask=mask,
                              divide_white=white.systematics if params["common_mode"] else None,
-                             fit=fit)
+                             fit=partial(fit_unless_masked, fit, unfitted))
+        for j in range(len(channels)):
+            if j not in notes and np.all(mask[:, j]):
+                notes[j] = "not fitted: every exposure of the channel is masked"
         used = ~np.asarray(white.fit_mask, bool)   # fit_mask is True where left out
 
         det = Table()
@@ -189,6 +233,19 @@ class Detrend(VisitTask):
                          "n_params": fit_j.n_params, "n_used": q.n_used, "tau_min": fit_j.tau * 1440
                          if fit_j.tau is not None and np.isfinite(fit_j.tau) else np.nan})
         depths = Table(rows=rows, names=list(rows[0]))
+        # can the results be trusted? (pipeline/plausibility.py)
+        quality = assess_fits(depths["depth"], depths["depth_error"],
+                              np.asarray(depths["rms_dof_ppm"], float) * 1e-6,
+                              np.asarray(depths["expected_ppm"], float) * 1e-6)
+        depths["fitted"] = [int(c) not in notes for c in depths["channel"]]
+        depths["unphysical"] = quality.unphysical
+        depths["noisy"] = quality.noisy
+        depths["note"] = [notes.get(int(c), "") for c in depths["channel"]]
+        warnings = []
+        for c, reason in zip(depths["channel"], quality.reasons):
+            if reason:
+                label = "white light curve" if c < 0 else f"channel {int(c)}"
+                warnings.append(f"{self.folder / 'detrended.fits'}: {label}: {reason}")
         for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),
                            ("tau_min", "min")):
             depths[name].unit = unit
@@ -202,6 +259,10 @@ class Detrend(VisitTask):
         hdus = [table_hdu(det, "DETRENDED"), table_hdu(depths, "DEPTHS")]
         hdus[1].header["EVENT"] = (visit.event["kind"], "event whose depth was fitted")
         hdus[1].header["DEPTHIS"] = (depths.meta["depth_meaning"], "meaning of the depth column")
+        hdus[1].header["NUNPHYS"] = (int(np.sum(depths["unphysical"])),
+                                     "curves with an unphysical depth")
+        hdus[1].header["NNOISY"] = (int(np.sum(depths["noisy"])),
+                                    "curves with residual rms above 5x expected")
         write_fits(fits_path, hdus, prov)
         outputs = [fits_path]
         for name, table in (("detrended.ecsv", wide_table(det, len(channels))), ("depths.ecsv", depths)):
@@ -221,6 +282,9 @@ class Detrend(VisitTask):
                    "white beta": round(float(w["beta"]), 3) if np.isfinite(w["beta"]) else None,
                    "median channel rms / expected":
                        round(float(np.nanmedian(depths["rms_over_expected"][1:])), 3),
-                   "exposures fitted": int(used.sum())}
+                   "exposures fitted": int(used.sum()),
+                   **({"channels not fitted": {str(j): note for j, note in sorted(notes.items())}}
+                      if notes else {})}
         self.progress(2, 2, "light curves fitted")
-        self.write_entry(self.output().path, [lc_path], outputs, metrics, [fig], started)
+        self.write_entry(self.output().path, [lc_path], outputs, metrics, [fig], started,
+                         warnings=warnings)

@@ -147,6 +147,7 @@ tr.changed td { background: #fff2a8; font-weight: 600; }
 .cols { display: flex; gap: 2em; flex-wrap: wrap; }
 nav ul { margin: 0.2em 0 0.6em; } nav li { font-size: 0.9em; }
 .warn { color: #a33; }
+.warnings { color: #a40000; font-weight: bold; }
 """
 
 
@@ -190,6 +191,9 @@ def _entry_html(entry, notebook, current):
                 if entry.get("previous") else "")
              + ("; its input differs from the previous entry's" if entry.get("input_changed") else "")
              + ("; superseded by a forced re-run" if entry.get("superseded") else "") + "</div>",
+             *([f'<ul class="warnings">'
+                + "".join(f"<li>warning: {html.escape(str(w))}</li>" for w in entry["warnings"])
+                + "</ul>"] if entry.get("warnings") else []),
              '<div class="cols"><div><table><tr><th>parameter</th><th>value</th></tr>']
     changed = entry.get("changed", {})
     for name, value in entry.get("params", {}).items():

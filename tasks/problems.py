@@ -20,7 +20,7 @@ from dataclasses import dataclass
 from lightledger.pipeline.errors import (AllMaskedError, EnvironmentFailure, LightledgerError,
                                          ParameterError)
 
-__all__ = ["Problem", "Problems", "environment_message", "describe_failure",
+__all__ = ["Problem", "Problems", "environment_message", "describe_failure", "diagnose_write",
            "ENVIRONMENT_ERRNOS"]
 
 #: errno values that mean "the machine refused", not "the input is wrong".
@@ -118,9 +118,25 @@ def _names_a_file(line):
     return "/" in head or head.endswith((".toml", ".fits", ".ecsv", ".json"))
 
 
+def _machine_error(exc):
+    """The OSError with an environment errno in ``exc``'s chain (libraries re-raise without it)."""
+    seen = set()
+    while exc is not None and id(exc) not in seen:
+        seen.add(id(exc))
+        if isinstance(exc, OSError) and exc.errno in ENVIRONMENT_ERRNOS:
+            return exc
+        exc = exc.__cause__ or exc.__context__
+    return None
+
+
 def environment_message(exc, path=None):
-    """``PATH: condition (what to do)`` for an OSError the machine raised, else None."""
-    if not isinstance(exc, OSError) or exc.errno not in ENVIRONMENT_ERRNOS:
+    """``PATH: condition (what to do)`` for an OSError the machine raised, else None.
+
+    The chain of causes is searched: a library may re-raise the system's
+    error as a new OSError without its errno (astropy's FITS writer does).
+    """
+    exc = _machine_error(exc)
+    if exc is None:
         return None
     where = path or exc.filename or "lightledger"
     condition = ENVIRONMENT_ERRNOS[exc.errno]
@@ -130,6 +146,48 @@ def environment_message(exc, path=None):
               errno.EROFS: "set visit.notebook to a writable folder"}.get(
                   exc.errno, "check the file's permissions and run again")
     return f"{where}: {condition} ({advice}; complete products are kept)"
+
+
+def diagnose_write(exc, path, partial=None):
+    """An OSError naming ``path`` and the machine's condition, for a failed write; else None.
+
+    Writers that lose the system's errno (numpy's ``tofile`` reports a short
+    write as ``N requested and M written``) are diagnosed from the machine:
+    a partial file that reached the file-size limit (RLIMIT_FSIZE) is EFBIG,
+    a file system with less than a megabyte free is ENOSPC.
+
+    Parameters
+    ----------
+    exc : BaseException
+        What the write raised.
+    path : str or Path
+        The file being written (its final name).
+    partial : str or Path, optional
+        The partial file, while it still exists.
+    """
+    import os
+    import shutil
+
+    found = _machine_error(exc)
+    if found is not None:
+        return OSError(found.errno, found.strerror or os.strerror(found.errno), str(path))
+    if not isinstance(exc, OSError) or exc.errno is not None:
+        return None
+    try:
+        import resource
+
+        soft = resource.getrlimit(resource.RLIMIT_FSIZE)[0]
+        if partial is not None and soft != resource.RLIM_INFINITY \
+                and os.path.getsize(partial) >= soft:
+            return OSError(errno.EFBIG, os.strerror(errno.EFBIG), str(path))
+    except (ImportError, OSError, ValueError):
+        pass
+    try:
+        if shutil.disk_usage(os.path.dirname(os.path.abspath(path))).free < 1 << 20:
+            return OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+    except OSError:
+        pass
+    return None
 
 
 def describe_failure(exc, context=None):

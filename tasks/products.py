@@ -185,9 +185,16 @@ def atomic_path(path):
             os.fsync(fh.fileno())
         os.chmod(tmp, 0o666 & ~current_umask())
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
+        # a full disk or a file-size limit: say so with the product's name
+        # (some writers lose the system's errno)
+        from .problems import diagnose_write
+
+        machine = diagnose_write(exc, path, tmp) if isinstance(exc, OSError) else None
         if os.path.exists(tmp):
             os.unlink(tmp)
+        if machine is not None:
+            raise machine from exc
         raise
 
 

@@ -29,7 +29,8 @@ class RunResult:
     page: Path | None
     ran: list = field(default_factory=list)      # task families that ran, in no order
     messages: list = field(default_factory=list)  # one line per failure
-    warnings: list = field(default_factory=list)  # lines: validation warnings, result flags
+    warnings: list = field(default_factory=list)  # lines: the validation pass's warnings
+    flags: list = field(default_factory=list)     # lines: results that cannot be trusted
     set_aside: list = field(default_factory=list)  # "FILE[index]: reason" per set-aside exposure
     status: int = 0                               # exit status of the command line
     notes: list = field(default_factory=list)     # things the user should know (not failures)
@@ -230,6 +231,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     lines = headlines([plan.folder(s) / ENTRY_NAME for s in stages]) if ok else []
     return RunResult(ok=ok, final=final, page=page, ran=sorted(ran), messages=messages,
                      warnings=[p.line for p in report.warnings],
+                     flags=_entry_warnings(plan, until),
                      set_aside=[f"{r.label}: {r.reason}" for r in report.set_aside], status=status,
                      notes=notes, headlines=lines)
 
@@ -258,6 +260,21 @@ def _headline_value(value):
     if isinstance(value, list):
         return "[" + ", ".join(_headline_value(v) for v in value) + "]"
     return str(value)
+
+
+def _entry_warnings(plan, until):
+    """``lightledger: warning: ...`` lines the chain's entries hold (results not to be trusted)."""
+    import json
+
+    lines = []
+    for stage in STAGE_ORDER[:STAGE_ORDER.index(until) + 1]:
+        entry = plan.folder(stage) / "entry.json"
+        try:
+            found = json.loads(entry.read_text(encoding="utf-8")).get("warnings", [])
+        except (OSError, ValueError):
+            continue
+        lines += [f"lightledger: warning: {w}" for w in found]
+    return lines
 
 
 def _status(statuses):

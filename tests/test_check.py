@@ -147,3 +147,134 @@ def test_headers_only_pass_reads_no_data(raw_stare, tmp_path):
     aside = check_visit(visit, until="bin").set_aside
     assert [r.index for r in aside] == [0]
     assert aside[0].reason == "every pixel is NaN or infinite in every read"
+
+
+# --------------------------------------------------------------------------------------------
+# a whole reduction with exposures set aside, a free-text name, an excluded channel and a
+# wrong ephemeris whose results cannot be trusted
+# --------------------------------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def troubled_visit(tmp_path_factory):
+    """A 24-exposure scan visit with three unusable exposures and a free-text name, reduced.
+
+    The ephemeris is moved by 1.2 event durations, so the model's transit misses the real
+    one and the residuals stay far above the noise (the detrend must say so).
+    """
+    import tomllib
+
+    from lightledger.synthetic_data.damage import apply_to_file
+    from lightledger.synthetic_data.render import render
+
+    root = tmp_path_factory.mktemp("troubled")
+    visit = render("scan-transit", root / "source", seed=2, n_exposures=24)
+    visit = copy_visit(visit.parent, root / "visit")
+    d = visit.parent
+    raw = sorted((d / "raw").glob("*.fits"))
+    damaged = {}
+    by_name = {x.name: x for x in DAMAGES}
+    for k, name in ((5, "raw-truncated-block"), (11, "exposure-all-nan"), (17, "reads-zero-reads")):
+        damaged[raw[k].name] = apply_to_file(by_name[name], d, k)
+    text = visit.read_text()
+    doc = tomllib.loads(text)
+    t0, duration = doc["event"]["t0"], doc["event"]["duration"]
+    text = text.replace(f"t0 = {t0!r}", f"t0 = {t0 + 1.2 * duration!r}")
+    text = text.replace(f'name = "{doc["visit"]["name"]}"', 'name = "Éclipse –\\tdamaged"', 1)
+    text += '\n[exclude]\nchannels = [{channel = 2, reason = "a column of dead pixels"}]\n'
+    visit.write_text(text)
+    return visit, damaged
+
+
+@pytest.mark.slow
+def test_reduction_sets_aside_flags_and_goes_on(troubled_visit, capsys, science):
+    from astropy.table import Table
+
+    visit, damaged = troubled_visit
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        status, lines, text = _run(["reduce", visit], capsys)
+    assert status == 0, text
+    assert "Traceback" not in text
+    # the run's summary lists the three exposures set aside, with their reasons
+    summary = text[text.index("set aside: 3 exposures"):].splitlines()[1:4]
+    assert sorted(Path(l.split(": ")[0].strip()).name for l in summary) == sorted(damaged)
+    assert any("truncated" in l for l in summary) and any("NaN" in l for l in summary)
+    notebook = visit.parent / "notebook"
+    inventory = Table.read(next(notebook.glob("calibrate-*/inventory.ecsv")), format="ascii.ecsv")
+    assert len(inventory) == 24 and sorted(inventory["file"][inventory["excluded"]]) == sorted(damaged)
+    assert all(inventory["reason"][inventory["excluded"]])
+    lc = Table.read(next(notebook.glob("bin-*/lightcurves.fits")), hdu="LIGHTCURVES")
+    kept = inventory["exposure"][~inventory["excluded"]]
+    assert list(lc["exposure"]) == list(kept)          # numbers kept, gaps where set aside
+    # the free-text name: ASCII in FITS headers, the original in JSON
+    detrended = next(notebook.glob("detrend-*/detrended.fits"))
+    assert fits.getheader(detrended)["LLVISIT"] == "Eclipse - damaged"
+    import json
+    entry = json.loads((detrended.parent / "entry.json").read_text(encoding="utf-8"))
+    assert entry["visit"] == "Éclipse –\tdamaged"
+    # the excluded channel keeps its row, not fitted, with the observer's reason
+    depths = Table.read(detrended, hdu="DEPTHS")
+    row = depths[depths["channel"] == 2][0]
+    assert not row["fitted"] and np.isnan(np.ma.filled(row["depth"], np.nan))
+    assert "dead pixels" in row["note"]
+    # residuals far above the noise are flagged in the product, the entry, the page, the console
+    white = depths[depths["channel"] == -1][0]
+    assert white["noisy"] and white["rms_dof_ppm"] > 5 * white["expected_ppm"]
+    assert fits.getheader(detrended, "DEPTHS")["NNOISY"] == int(np.sum(depths["noisy"])) > 0
+    flagged = [l for l in lines if l.startswith("lightledger: warning: ") and "detrended.fits: "
+               "white light curve: residual rms" in l]
+    assert len(flagged) == 1 and any("white light curve" in w for w in entry["warnings"])
+    page = (notebook / "index.html").read_text(encoding="utf-8")
+    assert "warning: " in page and "set aside" in page
+    assert science.check_products(notebook) == []
+
+
+# --------------------------------------------------------------------------------------------
+# the machine refuses: disk full, file-size limit, permission denied
+# --------------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("code, words", [("ENOSPC", "no space left on the device"),
+                                         ("EACCES", "permission denied")])
+def test_environment_failure_inside_a_task(code, words, raw_scan, tmp_path, capsys, monkeypatch):
+    """An OSError of the machine inside a task: one line naming the file, exit status 3."""
+    import errno
+    import os
+
+    from lightledger.tasks import calibrate
+
+    visit = copy_visit(raw_scan.parent, tmp_path / "visit")
+    number = getattr(errno, code)
+
+    def refuse(path, *args, **kwargs):
+        raise OSError(number, os.strerror(number), str(path))
+
+    monkeypatch.setattr(calibrate, "write_ecsv", refuse)
+    status, lines, text = _run(["reduce", visit, "--until", "calibrate"], capsys)
+    assert status == 3, text
+    assert "Traceback" not in text
+    assert len(lines) == 1 and lines[0].startswith("lightledger: error: ")
+    assert "inventory.ecsv: " + words in lines[0]
+
+
+@pytest.mark.slow
+def test_file_size_limit(raw_scan, tmp_path):
+    """A real file-size limit (RLIMIT_FSIZE): one line, exit status 3, no partial product."""
+    import resource
+    import subprocess
+    import sys
+
+    visit = copy_visit(raw_scan.parent, tmp_path / "visit")
+
+    def limit():
+        resource.setrlimit(resource.RLIMIT_FSIZE, (200_000, 200_000))
+
+    run = subprocess.run([sys.executable, "-m", "lightledger.tasks.cli", "reduce", str(visit),
+                          "--until", "calibrate"], capture_output=True, text=True, timeout=600,
+                         preexec_fn=limit)
+    lines = [l for l in run.stderr.splitlines() if l.startswith("lightledger")]
+    assert run.returncode == 3, run.stderr
+    assert "Traceback" not in run.stderr
+    assert len(lines) == 1 and "file-size limit" in lines[0] and "frames-000.fits" in lines[0]
+    notebook = tmp_path / "visit" / "notebook"
+    assert not list(notebook.glob("calibrate-*/frames-*.fits"))
+    assert not list(notebook.rglob("*.part"))
