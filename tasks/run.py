@@ -189,8 +189,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     else:
         kwargs.update(local_scheduler=True)
     if workers > 1 and not task.complete():
-        # forked workers inherit what is loaded: matplotlib once here, not in every task
-        from . import figures  # noqa: F401
+        _preload(visit)
     try:
         summary = luigi.build([*repairs, task], **kwargs)
         ran = _ran_families(summary)
@@ -289,6 +288,23 @@ def _check_progress(progress):
     if progress is None:
         return None
     return lambda done, total: progress("check", "exposures read", done, total)
+
+
+def _preload(visit):
+    """Load here what the tasks import on first use, before Luigi forks a process per task.
+
+    A forked worker inherits every loaded module; a module first imported inside a task would
+    be imported again in every task's process (about a second each for matplotlib or
+    astropy.nddata), which made two workers slower than one.
+    """
+    import importlib
+
+    names = ["lightledger.tasks.figures", "astropy.nddata.bitmask", "scipy.ndimage",
+             "scipy.interpolate", "erfa"]
+    if visit.stages["calibrate"]["background_method"] == "2d":
+        names += ["astropy.stats", "photutils.background", "photutils.segmentation"]
+    for name in names:
+        importlib.import_module(name)
 
 
 def _others_running(summary):
