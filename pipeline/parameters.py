@@ -211,7 +211,7 @@ STAGES = {
         Param("align", True, "bool",
               "resample each spectrum onto the reference grid with its own measured shift"),
     )),
-    "bin": StageSpec("bin", "4", "spectra to channel light curves", (
+    "bin": StageSpec("bin", "5", "spectra to channel light curves", (
         Param("edges", (), "floats", "channel edges in micrometres (takes precedence when given)",
               minimum=0.0),
         Param("width", 0.0, "float",

@@ -193,8 +193,9 @@ def raw_identity(visit, digests=None):
 def stage_facts(visit, stage):
     """The visit facts a stage uses besides its parameters (part of its identity)."""
     exclude = getattr(visit, "exclude", None) or {}
-    if stage == "bin":
-        return [visit.target["ra"], visit.target["dec"]]
+    if stage == "bin":   # coordinates for the times; name and event for the products' metadata
+        return [visit.target["ra"], visit.target["dec"], visit.target.get("name") or "",
+                sorted(visit.event.items())]
     if stage == "detrend":
         facts = sorted(visit.event.items())
         return facts + [["exclude.channels", exclude["channels"]]] if exclude.get("channels") \

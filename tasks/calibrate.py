@@ -143,10 +143,10 @@ class CalibrateChunk(VisitTask):
             rows.append(row)
         self.progress(len(refs), n_visit, "calibrating exposures", part=self.chunk)
         exposures = Table(rows=rows, names=list(rows[0]))
-        for col, unit in (("start_mjd_utc", "d"), ("mid_offset", "s"), ("integration_time", "s"),
-                          ("exposure_time", "s"), ("scan_velocity", "pix / s"),
-                          ("background_level", "electron"), ("obsgeo", "m")):
-            exposures[col].unit = unit
+        for col in exposures.colnames:
+            unit, text = EXPOSURE_COLUMNS.get(col, ("", None))
+            exposures[col].unit = unit or None
+            exposures[col].description = text or _flag_count_text(col)
         hdus = [fits.ImageHDU(flux, name="FLUX"), fits.ImageHDU(var, name="VARIANCE"),
                 fits.ImageHDU(bits, name="FLAGS", uint=True),
                 table_hdu(exposures, "EXPOSURES")]
@@ -159,6 +159,28 @@ class CalibrateChunk(VisitTask):
                   *[f for f in visit.profile.files.values() if f is not None]]
         write_fits(self.output().path, hdus, self.provenance(inputs),
                    header={"CHUNK": self.chunk, "EXPFIRST": start, "EXPLAST": stop - 1})
+
+
+#: Units and descriptions of the EXPOSURES table of calibrated frames.
+EXPOSURE_COLUMNS = {
+    "exposure": ("", "exposure number in the visit's start-time order"),
+    "start_mjd_utc": ("d", "zero read of the exposure, MJD in UTC"),
+    "mid_offset": ("s", "mid-exposure (mean time of the reads used) after the zero read"),
+    "integration_time": ("s", "time between the first and last reads used"),
+    "exposure_time": ("s", "exposure duration: zero read to last read (XPOSURE)"),
+    "scan_velocity": ("pix / s", "scan speed in rows per second, signed; 0 = staring"),
+    "scan_direction": ("", "+1 forward scan, -1 reverse scan, 0 staring"),
+    "background_level": ("electron", "median sky level subtracted, per pixel"),
+    "origin_x": ("", "full-detector column of the subarray's first column"),
+    "origin_y": ("", "full-detector row of the subarray's first row"),
+    "obsgeo": ("m", "observer's geocentric x, y, z (NaN: the geocentre)"),
+}
+
+
+def _flag_count_text(column):
+    name = column[2:].upper()
+    value = dq.FLAGS.get(name)
+    return f"pixels flagged {value} {name}" if value else column
 
 
 def read_chunk(path, *, exposures_only=False):

@@ -225,8 +225,13 @@ class ExtractChunk(VisitTask):
         drifts["dy"] = np.asarray(dy, float)
         drifts["width"] = np.asarray(width, float)
         drifts["n_rejected"] = np.asarray(spec.n_rejected).reshape(n, -1).sum(axis=1)
-        for name in ("dx", "dx_error", "dy", "width"):
+        for name, text in (("dx", "spectrum shift along the dispersion from the reference"),
+                           ("dx_error", "1-sigma error of dx"),
+                           ("dy", "shift of the trace or scanned band across the dispersion"),
+                           ("width", "trace Gaussian sigma or scanned band length")):
             drifts[name].unit = "pix"
+            drifts[name].description = text
+        drifts["n_rejected"].description = "pixels rejected as outliers by the extraction"
         table = hstack([exposures, drifts])
         first_profile = np.asarray(spec.profile[0], np.float32)
         # float32 keeps 7 significant digits, far below the photon noise of any pixel
@@ -294,6 +299,8 @@ class Extract(VisitTask):
                 table_hdu(exposures, "EXPOSURES")]
         hdus[0].header["BUNIT"] = ("electron", "electrons per pixel of the reference grid")
         hdus[1].header["BUNIT"] = ("electron2", "variance of FLUX")
+        hdus[2].header["COMMENT"] = ("1 = the pixel's flux is unusable, 0 = usable (a boolean mask, "
+                                     "not the frames' FLAGS bitfield)")
         inputs = [t.output().path for t in chunks] + [self.input().path]
         write_fits(path, hdus, self.provenance(inputs))
         from .figures import extract_figure

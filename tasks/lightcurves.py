@@ -29,6 +29,7 @@ from lightledger.pipeline.lit import channel_light, lit_range
 from lightledger.pipeline.timing import interpolated_barycentric_times
 
 from .base import ENTRY_NAME, VisitTask
+from .metadata import channel_text, ecsv_meta, fits_cards, set_time_keywords
 from .products import table_hdu, write_ecsv, write_fits
 
 __all__ = ["Bin", "read_spectra", "read_lightcurves", "wide_table"]
@@ -127,16 +128,22 @@ def _channel_edges(params, pixel_edges, mean_spectrum, lit):
     return edges
 
 
-def wide_table(lc, n_channels):
-    """The LIGHTCURVES table with one column per channel (for ECSV readers)."""
+def wide_table(lc, n_channels, channels=None):
+    """The LIGHTCURVES table with one column per channel (for ECSV readers).
+
+    With ``channels`` (the CHANNELS table) each channel column's description
+    ends with the channel's wavelength range.
+    """
     out = Table()
     for name in lc.colnames:
         col = lc[name]
         if col.ndim == 2:
+            base = (col.description or name).split("; vector over")[0]
             for j in range(n_channels):
+                where = channel_text(channels, j) if channels is not None else f"channel {j}"
                 out[f"{name}_{j:02d}"] = col[:, j]
                 out[f"{name}_{j:02d}"].unit = col.unit
-                out[f"{name}_{j:02d}"].description = f"{col.description or name}, channel {j}"
+                out[f"{name}_{j:02d}"].description = f"{base}, {where}"
         else:
             out[name] = col
     return out
@@ -145,15 +152,16 @@ def wide_table(lc, n_channels):
 # Column descriptions of LIGHTCURVES; the README's table is written from this.
 COLUMNS = {
     "exposure": ("", "exposure number in start-time order"),
-    "time_bjd_tdb": ("d", "mid-exposure time, BJD in the TDB scale"),
-    "time_mjd_utc": ("d", "mid-exposure time, MJD in UTC"),
+    "time_bjd_tdb": ("d", "mid-exposure time, BJD_TDB (barycentric JD, TDB scale)"),
+    "time_mjd_utc": ("d", "same instant, MJD (JD - 2400000.5) in UTC at the observer"),
+    "exposure_time": ("s", "exposure duration: zero read to last read"),
     "white_flux": ("electron", "white-band flux"),
     "white_error": ("electron", "1-sigma error of white_flux"),
     "white_mask": ("", "True where white_flux is unusable"),
-    "flux": ("electron", "channel flux"),
-    "error": ("electron", "1-sigma error of flux"),
-    "mask": ("", "True where the channel flux is unusable"),
-    "n_filled": ("", "pixels of the channel filled from the scaled mean spectrum"),
+    "flux": ("electron", "channel flux; vector over the CHANNELS rows"),
+    "error": ("electron", "1-sigma error of flux; vector over the CHANNELS rows"),
+    "mask": ("", "True where flux is unusable; vector over the CHANNELS rows"),
+    "n_filled": ("", "pixels filled from the median spectrum; vector over CHANNELS"),
     "orbit": ("", "orbit number, 0 = first (one orbit for a stare)"),
     "orbit_time": ("d", "time since the orbit's first exposure started (orbit phase)"),
     "visit_time": ("d", "time since the visit's first exposure started"),
@@ -165,6 +173,25 @@ COLUMNS = {
     "first_orbit": ("", "True in the visit's first orbit"),
     "first_in_orbit": ("", "True for an orbit's first exposure"),
     "flux_outlier": ("", "True where the white flux departs from its running median"),
+}
+
+
+# Column descriptions of CHANNELS and SPECTRUM.
+CHANNEL_COLUMNS = {
+    "channel": ("", "channel number: element of the LIGHTCURVES vectors, NN of flux_NN"),
+    "wave_lo": ("um", "lower wavelength edge of the channel"),
+    "wave_hi": ("um", "upper wavelength edge of the channel"),
+    "wave_mid": ("um", "centre of the channel, (wave_lo + wave_hi) / 2"),
+    "n_pixels": ("pix", "spectral pixels in the channel, weighted by their overlap"),
+    "mean_counts": ("electron", "mean channel flux over the exposures"),
+    "light": ("", "mean light per pixel / peak of the median spectrum"),
+    "dim": ("", "True where light < LITTHR: the channel holds little light"),
+}
+SPECTRUM_COLUMNS = {
+    "wave_lo": ("um", "lower wavelength edge of the pixel"),
+    "wave_hi": ("um", "upper wavelength edge of the pixel"),
+    "flux": ("electron", "median of the aligned spectra, per pixel"),
+    "error": ("electron", "1-sigma error of flux: median error / sqrt(exposures)"),
 }
 
 
@@ -229,6 +256,7 @@ class Bin(VisitTask):
         lc["exposure"] = np.asarray(exp["exposure"], int)
         lc["time_bjd_tdb"] = times.bjd_tdb
         lc["time_mjd_utc"] = times.mjd_utc
+        lc["exposure_time"] = np.asarray(exp["exposure_time"], float)
         lc["white_flux"] = white.flux[:, 0]
         lc["white_error"] = np.sqrt(white.variance[:, 0])
         lc["white_mask"] = white.mask[:, 0]
@@ -256,17 +284,17 @@ class Bin(VisitTask):
         channels["mean_counts"] = np.nanmean(binned.flux, axis=0)
         channels["light"] = light
         channels["dim"] = dim
-        for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),
-                           ("n_pixels", "pix"), ("mean_counts", "electron")):
-            channels[name].unit = unit
+        for name, (unit, text) in CHANNEL_COLUMNS.items():
+            channels[name].unit = unit or None
+            channels[name].description = text
         spectrum = Table()
         spectrum["wave_lo"] = pix_edges[:-1]
         spectrum["wave_hi"] = pix_edges[1:]
         spectrum["flux"] = median_spec
         spectrum["error"] = np.sqrt(median_var / max(len(flux), 1))
-        for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("flux", "electron"),
-                           ("error", "electron")):
+        for name, (unit, text) in SPECTRUM_COLUMNS.items():
             spectrum[name].unit = unit
+            spectrum[name].description = text
 
         self.progress(2, 3, "writing light curves")
         prov = self.provenance([spectra_path])
@@ -280,10 +308,21 @@ class Bin(VisitTask):
         hdus[1].header["LITLO"] = (lit.lo, "lit part of the median spectrum: from, um")
         hdus[1].header["LITHI"] = (lit.hi, "lit part of the median spectrum: to, um")
         hdus[1].header["LITTHR"] = (lit.threshold, "lit: smoothed spectrum >= LITTHR x peak")
-        write_fits(fits_path, hdus, prov, header={"TIMESYS": "TDB", "TIMEREF": "SOLARSYSTEM"})
         n_ch = len(edges) - 1
+        facts = fits_cards(visit, lc["time_bjd_tdb"], lc["exposure_time"], n_ch)
+        for key, value, comment in facts:
+            hdus[0].header[key] = (value, comment)
+        set_time_keywords(hdus[0])
+        write_fits(fits_path, hdus, prov, header={"TIMESYS": "TDB", "TIMEREF": "SOLARSYSTEM",
+                                                   **{k: (v, c) for k, v, c in facts[:4]}})
         outputs = [fits_path]
-        for name, table in (("lightcurves.ecsv", wide_table(lc, n_ch)), ("channels.ecsv", channels),
+        meta = ecsv_meta(visit, lc["time_bjd_tdb"], lc["exposure_time"], channels)
+        wide = wide_table(lc, n_ch, channels)
+        wide.meta.update(meta)
+        wide.meta["white_band_um"] = [float(white_range[0]), float(white_range[1])]
+        channels_ecsv = channels.copy(copy_data=False)
+        channels_ecsv.meta.update(meta)
+        for name, table in (("lightcurves.ecsv", wide), ("channels.ecsv", channels_ecsv),
                             ("spectrum.ecsv", spectrum)):
             write_ecsv(folder / name, table, prov)
             outputs.append(folder / name)

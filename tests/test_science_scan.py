@@ -6,7 +6,6 @@ session by the ``scan_visit`` fixture (tests/conftest.py).  The truth is
 reducer never reads it.
 """
 
-import tomllib
 
 import batman
 import numpy as np
@@ -162,7 +161,7 @@ class _IndependentFit:
     2013).  The first orbit is dropped (REFERENCES.md, common practice).
     """
 
-    def __init__(self, t, scan, event):
+    def __init__(self, t, scan, event, exposure_days=None):
         self.t = t
         orbit = _orbits_from_gaps(t)
         self.keep = orbit > 0
@@ -177,7 +176,10 @@ class _IndependentFit:
         p.t0, p.per, p.rp, p.a, p.inc = event["t0"], event["period"], event["rp_rs"], event["a_rs"], event["inclination"]
         p.ecc, p.w, p.limb_dark, p.u = 0.0, 90.0, "quadratic", [event["u1"], event["u2"]]
         self.params = p
-        self.batman = batman.TransitModel(p, t)
+        # the model averaged over each exposure (batman's supersampling), as a fitter does
+        # with the products' exposure duration
+        self.batman = (batman.TransitModel(p, t) if exposure_days is None else
+                       batman.TransitModel(p, t, supersample_factor=5, exp_time=exposure_days))
 
     def model(self, x):
         f0, rp, c1, p1, p2, delta, log_tau = x[:7]
@@ -216,15 +218,29 @@ class _IndependentFit:
         return rp ** 2, 2 * rp * rp_err, chi2
 
 
+def _event_from_products(meta):
+    """The ephemeris, geometry and limb darkening as a fitter reads them from the
+    light-curve product's metadata (ECSV keys; the same values as the FITS
+    LIGHTCURVES header, test_fitter_metadata_matches_the_truth)."""
+    return {"t0": meta["event"]["t0_bjd_tdb"], "period": meta["event"]["period_d"],
+            "rp_rs": meta["geometry"]["rp_rs"], "a_rs": meta["geometry"]["a_rs"],
+            "inclination": meta["geometry"]["inclination_deg"],
+            "u1": meta["limb_darkening"]["u1"], "u2": meta["limb_darkening"]["u2"]}
+
+
 @pytest.fixture(scope="module")
 def independent_depths(scan_visit):
-    """(depth, error, reduced chi2) per light curve, 'white' and channel indices."""
+    """(depth, error, reduced chi2) per light curve, 'white' and channel indices.
+
+    A fitter that has only the products: the light curves, and from their
+    metadata the ephemeris, geometry, limb darkening and exposure duration
+    (no visit description is read)."""
     path = scan_visit.product("bin", "lightcurves.ecsv")
     lc = Table.read(path, format="ascii.ecsv")
-    with open(scan_visit.visit, "rb") as fh:
-        event = tomllib.load(fh)["event"]          # the a priori ephemeris the observer has
+    event = _event_from_products(lc.meta)
     t = np.asarray(lc["time_bjd_tdb"], float)
-    fitter = _IndependentFit(t, lc["scan_direction"], event)
+    exposure = np.median(np.asarray(lc["exposure_time"], float)) / 86400.0
+    fitter = _IndependentFit(t, lc["scan_direction"], event, exposure_days=exposure)
     out = {"white": fitter.fit(np.asarray(lc["white_flux"], float), np.asarray(lc["white_error"], float),
                                np.asarray(lc["white_mask"], bool))}
     j = 0
@@ -261,6 +277,40 @@ def test_independent_fit_is_noise_limited(independent_depths, which):
     # practice); 2.0 is 4 sigma above.
     depth, error, chi2 = independent_depths[which]
     assert chi2 < 2.0, f"{which}: reduced chi2 {chi2:.2f}"
+
+
+def test_fitter_metadata_matches_the_truth(scan_visit, science):
+    # What a fitter reads from the products alone (FITS header and ECSV metadata)
+    # equals what the visit was rendered with (truth.fits header, CHANNELS), and
+    # the channels the fitter's depths refer to are the truth's channels.
+    _, channels, header = science.read_truth(scan_visit.outdir)
+    fits_lc = Table.read(scan_visit.product("bin", "lightcurves.fits"), hdu="LIGHTCURVES")
+    fits_ch = Table.read(scan_visit.product("bin", "lightcurves.fits"), hdu="CHANNELS")
+    ecsv = Table.read(scan_visit.product("bin", "lightcurves.ecsv"), format="ascii.ecsv")
+    m = fits_lc.meta
+    for key, truth in (("EPHT0", "T0"), ("EPHPER", "PERIOD"), ("GEORPRS", "RP_RS"), ("GEOARS", "A_RS"),
+                       ("GEOINCL", "INCL"), ("LDU1", "U1"), ("LDU2", "U2"), ("XPOSURE", "XPOSURE")):
+        assert m[key] == pytest.approx(header[truth], abs=1e-9), key
+    assert m["EVENT"] == header["KIND"] and m["LDLAW"] == "quadratic"
+    event = _event_from_products(ecsv.meta)
+    assert event["t0"] == m["EPHT0"] and event["u2"] == m["LDU2"]
+    assert ecsv.meta["exposure_time_s"] == pytest.approx(header["XPOSURE"])
+    np.testing.assert_allclose(ecsv["exposure_time"], header["XPOSURE"])
+    np.testing.assert_allclose(fits_ch["wave_lo"], channels["wave_min"], atol=1e-9)
+    np.testing.assert_allclose(fits_ch["wave_hi"], channels["wave_max"], atol=1e-9)
+    edges = [(c["wave_lo_um"], c["wave_hi_um"]) for c in ecsv.meta["channels"]]
+    np.testing.assert_allclose(edges, np.c_[channels["wave_min"], channels["wave_max"]], atol=1e-9)
+    assert "1.3000-1.3700 um" in ecsv["flux_00"].description
+    # the time scale of each time column is stated (FITS Standard 4.0 time keywords)
+    with fits.open(scan_visit.product("bin", "lightcurves.fits")) as hdul:
+        h = hdul["LIGHTCURVES"].header
+        n = [h[f"TTYPE{k}"] for k in range(1, h["TFIELDS"] + 1)].index("time_bjd_tdb") + 1
+        assert h[f"TCTYP{n}"] == "TDB" and h[f"TRPOS{n}"] == "BARYCENTER" and h["JDREF"] == 0
+    assert ecsv.meta["time_columns"]["time_mjd_utc"]["scale"] == "utc"
+    native = Table.read(scan_visit.product("bin", "lightcurves.fits"), hdu="LIGHTCURVES",
+                        astropy_native=True)
+    assert native["time_bjd_tdb"].scale == "tdb"
+    np.testing.assert_allclose(native["time_bjd_tdb"].jd, ecsv["time_bjd_tdb"], rtol=0, atol=1e-9)
 
 
 @pytest.mark.slow
