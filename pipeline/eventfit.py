@@ -118,6 +118,9 @@ class DetrendResult:
     shapes : tuple of (str, float)
         Shape parameters of the systematics model chosen from the data
         (qualified names such as ``"ramp.tau"``), empty when none.
+    star : ndarray of float, shape (n_exposures,) or None
+        With the planet's flux fitted (``planet_basis``), :math:`S_* = B a`:
+        the star alone times the systematics; None otherwise.
     """
 
     depth: float
@@ -141,6 +144,7 @@ class DetrendResult:
     tau: float
     mode: str
     shapes: tuple = ()
+    star: np.ndarray | None = None
 
 
 def _prepare(flux, variance, template, mask, n=None):
@@ -473,7 +477,7 @@ def _assemble(f, v, use, B, a, c, cov_ac, Q, P, p_mid, active, p_active, nb, n_p
         detrended_flux=detr, detrended_error=detr_err, residuals=detr - rel_model,
         coefficients=coef, coefficient_names=names, covariance=full_cov, chi2=chi2,
         bic=float(chi2 + n_params * np.log(n_fit)), n_params=int(n_params),
-        n_points=n_fit, fit_mask=~use, tau=float("nan"), mode=mode)
+        n_points=n_fit, fit_mask=~use, tau=float("nan"), mode=mode, star=S if tied else None)
 
 
 def with_shapes(result, shapes, tau=float("nan")):

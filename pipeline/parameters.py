@@ -167,6 +167,17 @@ def nearest(word, candidates):
     return found[0] if found else None
 
 
+#: Parameters of the full-orbit event model (phase-curve visits and programmes).
+_PHASE_CURVE = (
+    Param("harmonics", 1, "int", "harmonics of the planet's flux in orbital angle "
+          "(phase-curve events and programmes)", minimum=1, maximum=2),
+    Param("fit_radius", True, "bool", "fit the radius ratio through the limb-darkened transit "
+          "when a transit is in the data (phase-curve events and programmes)"),
+    Param("phase_bins", tuple(round(0.1 * k, 1) for k in range(11)), "floats",
+          "orbital-phase bin edges (cycles from mid-transit, within [0, 1]) of the "
+          "phase-resolved spectrum", minimum=0.0, maximum=1.0),
+)
+
 STAGES = {
     "calibrate": StageSpec("calibrate", "5", "raw ramps to calibrated frames", (
         Param("ramp_method", "fit", "str",
@@ -233,7 +244,7 @@ STAGES = {
               "masked pixels: 'profile' = fill from the scaled median spectrum, 'flag' = flag the channel-exposure",
               choices=("profile", "flag")),
     )),
-    "detrend": StageSpec("detrend", "2", "light curves divided by a systematics model", (
+    "detrend": StageSpec("detrend", "3", "light curves divided by a systematics model", (
         Param("visit_order", 1, "int", "order of the visit-long polynomial in time", minimum=0, maximum=4),
         Param("orbit_order", 2, "int",
               "order of the orbit-phase polynomial shared by all orbits (-1 = none)", minimum=-1, maximum=4),
@@ -253,7 +264,10 @@ STAGES = {
               "sinusoids multiplying the systematics", choices=("planet", "systematic")),
         Param("common_mode", False, "bool",
               "divide each channel by the white light curve's systematics model before fitting it"),
-    )),
+    ) + _PHASE_CURVE),
+    "joint": StageSpec("joint", "1", "the visits of a programme fitted together: each its own "
+                       "systematics (its [stages.detrend]), one planet per channel",
+                       _PHASE_CURVE),
 }
 
 #: Stages in the order the reduction runs them.

@@ -35,6 +35,7 @@ Mandel, K. & Agol, E. 2002, ApJ 580, L171.
 Kreidberg, L. 2015, PASP 127, 1161 (the analytic form the tests compare with).
 """
 
+from functools import lru_cache
 from typing import NamedTuple
 
 import numpy as np
@@ -239,9 +240,14 @@ def _overlap_area(z, p):
     return np.where(outside, 0.0, np.where(inside, full, lens))
 
 
+@lru_cache(maxsize=8)
 def _gauss_theta(n_nodes):
+    # Cached: the nodes come from an eigenvalue problem, costlier than a short light curve.
     x, w = np.polynomial.legendre.leggauss(n_nodes)
-    return 0.5 * np.pi * (x + 1.0), 0.5 * np.pi * w
+    theta, weight = 0.5 * np.pi * (x + 1.0), 0.5 * np.pi * w
+    theta.flags.writeable = False
+    weight.flags.writeable = False
+    return theta, weight
 
 
 def limb_darkened_blocked_fraction(z, p, u1, u2, *, n_nodes=_DEFAULT_NODES):

@@ -21,14 +21,14 @@ from dataclasses import dataclass
 import numpy as np
 from astropy.time import Time, TimeDelta
 
-from lightledger.pipeline import transit, traps
+from lightledger.pipeline import orbit, transit, traps
 from lightledger.pipeline.errors import ParameterError
 from . import detector, scene, spectra, timing
 from .scenarios import Scenario
 
 __all__ = ["VisitModel", "build_visit", "wavelength_of_column", "source_rate",
            "astrophysical_signal", "band_weights", "source_charge", "expected_charge",
-           "flat_at", "RAMPS", "trap_fractions"]
+           "flat_at", "RAMPS", "trap_fractions", "ephemeris_of", "planet_phase_flux"]
 
 
 @dataclass(frozen=True)
@@ -78,6 +78,8 @@ class VisitModel:
         column (:func:`lightledger.pipeline.traps.trap_history`, Zhou et al.
         2017), chromatic because the traps fill at each column's own rate;
         ``ramp_orbit`` is then 1.
+    stream : int or None
+        Index of the visit within a programme (its own random draws).
     """
 
     scenario: Scenario
@@ -103,6 +105,12 @@ class VisitModel:
     cosmics: detector.CosmicRays
     ramps: str = "exponential"
     trap_fraction: object = None
+    stream: int | None = None
+
+    @property
+    def entropy(self):
+        """Entropy of the visit's random streams (the seed, and the visit's index)."""
+        return seed_entropy(self.seed, self.stream)
 
     @property
     def n_exposures(self):
@@ -113,6 +121,11 @@ class VisitModel:
         sc = self.scenario
         x0, y0 = sc.sub_origin
         return (slice(y0, y0 + sc.sub_shape[0]), slice(x0, x0 + sc.sub_shape[1]))
+
+
+def seed_entropy(seed, stream=None):
+    """Entropy of a visit's random streams: the seed, or (seed, visit index)."""
+    return int(seed) if stream is None else [int(seed), int(stream)]
 
 
 def x_reference(sc):
@@ -175,8 +188,13 @@ def astrophysical_signal(sc, t0, bjd, wave):
         1 + fp_fs(lambda) g(t) v(t), star alone = 1, with v the visible
         fraction of the planet and g the phase-curve factor
         g = night + (1 - night) (1 - cos(2 pi phi + offset)) / 2
-        (phi the orbital phase from transit).
+        (phi the orbital phase from transit).  Phase curve (a visit of any
+        length, circular or eccentric orbit): 1 - lambda(t) + F_p(t) v(t)
+        with every transit and eclipse of the ephemeris (see
+        :func:`planet_phase_flux`).
     """
+    if sc.kind == "phase-curve":
+        return _full_orbit_signal(sc, t0, bjd, wave)
     bjd = np.asarray(bjd, dtype=float)[:, None]
     wave = np.asarray(wave, dtype=float)
     geo = dict(t0=t0, period=sc.period, a_rs=sc.a_rs, inclination=sc.inclination)
@@ -187,6 +205,62 @@ def astrophysical_signal(sc, t0, bjd, wave):
     fp = spectra.planet_star_flux_ratio(wave, rp_rs=sc.rp_rs, t_planet=sc.t_planet, t_star=sc.teff)
     visible = transit.eclipse_flux(bjd, rp_rs=sc.rp_rs, fp_fs=1.0, **geo) - 1.0
     return 1.0 + fp * phase_factor(sc, t0, bjd) * visible
+
+
+def ephemeris_of(sc, t0):
+    """The planet's orbit (pipeline's :class:`~lightledger.pipeline.orbit.Ephemeris`)."""
+    return orbit.Ephemeris(t0, sc.period, sc.a_rs, sc.inclination, sc.eccentricity, sc.omega_deg)
+
+
+def planet_phase_flux(sc, wave, angle):
+    """Planet-to-star flux ratio over the orbit, per wavelength.
+
+    The planet's flux goes from a night side of brightness temperature
+    ``t_night`` to a hot side of ``t_planet`` (plus ``emission_band`` K in
+    a Gaussian band at ``band_centre``: an emission feature of the hot side)
+    as F = F_night + (F_hot - F_night) (1 - cos(angle + offset)) / 2, with
+    ``angle`` the orbital angle from transit: a first-harmonic sinusoid in
+    flux whose maximum precedes mid-eclipse by ``phase_offset_deg``
+    (eastward), so the band weakens toward the night side.
+
+    Parameters
+    ----------
+    sc : Scenario
+    wave : array_like (n_wave,)
+        Wavelengths, um.
+    angle : array_like (n_times,)
+        Orbital angle from transit, radians.
+
+    Returns
+    -------
+    ndarray (n_times, n_wave)
+    """
+    wave = np.asarray(wave, dtype=float)
+    t_hot = sc.t_planet + sc.emission_band * np.exp(
+        -0.5 * ((wave - sc.band_centre) / sc.band_width) ** 2)
+    ratio = sc.rp_rs ** 2 / spectra.planck_lambda(wave, sc.teff)
+    f_hot = ratio * spectra.planck_lambda(wave, t_hot)
+    f_night = ratio * spectra.planck_lambda(wave, sc.t_night) if sc.t_night > 0 else 0.0 * wave
+    g = 0.5 * (1.0 - np.cos(np.asarray(angle, dtype=float) + np.deg2rad(sc.phase_offset_deg)))
+    return f_night[None, :] + (f_hot - f_night)[None, :] * g[:, None]
+
+
+def _full_orbit_signal(sc, t0, bjd, wave):
+    wave = np.asarray(wave, dtype=float)
+    times = np.asarray(bjd, dtype=float).ravel()
+    st = orbit.orbit_state(times, ephemeris_of(sc, t0))
+    rp = spectra.radius_ratio_spectrum(wave, rp_rs=sc.rp_rs, band_centre=sc.band_centre,
+                                       band_width=sc.band_width, band_depth=sc.band_depth)
+    z, front, p = np.broadcast_arrays(st.z[:, None], st.in_front[:, None], rp[None, :])
+    blocked = np.zeros(z.shape)
+    hidden = np.zeros(z.shape)
+    tr = front & (z < 1.0 + p)
+    if np.any(tr):
+        blocked[tr] = transit.limb_darkened_blocked_fraction(z[tr], p[tr], sc.u1, sc.u2)
+    ec = ~front & (z < 1.0 + p)
+    if np.any(ec):
+        hidden[ec] = transit.occulted_fraction_uniform(z[ec], p[ec])
+    return 1.0 - blocked + planet_phase_flux(sc, wave, st.angle) * (1.0 - hidden)
 
 
 def phase_factor(sc, t0, bjd):
@@ -230,12 +304,19 @@ def flat_at(sc, flat, wave):
 RAMPS = ("exponential", "traps")
 
 
-def build_visit(sc, *, seed=0, n_exposures=None, ramps="exponential"):
+def build_visit(sc, *, seed=0, n_exposures=None, ramps="exponential", t0=None, stream=None,
+                refs=None):
     """The noise-free plan of a visit (see :class:`VisitModel`).
 
     ``ramps`` is "exponential" (the scenario's per-orbit exponentials) or
     "traps" (charge trapping with the scenario's trap populations, see
     :func:`trap_fractions`).
+
+    The visits of a programme share one planet and one set of calibration
+    files: ``t0`` (BJD_TDB of a mid-transit) then fixes the ephemeris instead
+    of placing the event ``event_offset`` days after the visit's centre,
+    ``stream`` (the visit's index) gives each visit its own random draws for
+    the same ``seed``, and ``refs`` reuses reference files already drawn.
     """
     if ramps not in RAMPS:
         raise ParameterError(f"ramps must be one of {', '.join(RAMPS)}; got {ramps!r}")
@@ -243,7 +324,7 @@ def build_visit(sc, *, seed=0, n_exposures=None, ramps="exponential"):
         raise ParameterError(f"scenario {sc.name} has no trap populations; ramps='traps' needs one "
                              f"that does (the scan scenarios)")
     n_exp = int(n_exposures or sc.default_n_exposures)
-    streams = np.random.SeedSequence(seed).spawn(4)
+    streams = np.random.SeedSequence(seed_entropy(seed, stream)).spawn(4)
     rng_refs, rng_cr, rng_drift = (np.random.default_rng(s) for s in streams[:3])
 
     ny, nx = sc.sub_shape
@@ -252,7 +333,7 @@ def build_visit(sc, *, seed=0, n_exposures=None, ramps="exponential"):
     protect = (slice(y0 + int(sc.source_y - y0) - 3,
                      y0 + int(sc.source_y - y0 + sc.scan_length + abs(sc.reverse_rows)) + 4),
                slice(x0 + 40, x0 + nx - 40))
-    refs = detector.make_reference_files(
+    refs = refs if refs is not None else detector.make_reference_files(
         rng_refs, full_shape=sc.full_shape, bias_level=sc.bias_level, dark_rate=sc.dark_rate,
         flat_kind=sc.flat_kind, nonlin_c1=sc.nonlin_c1, nonlin_c2=sc.nonlin_c2,
         n_dead=sc.n_dead, n_hot=sc.n_hot, hot_rate_range=sc.hot_rate_range, protect=protect)
@@ -280,7 +361,8 @@ def build_visit(sc, *, seed=0, n_exposures=None, ramps="exponential"):
     t_centre = t_beg + TimeDelta(centre_s, format="sec")
     bjd_centre = float(timing.bjd_tdb(t_centre.reshape(1), ra=sc.ra, dec=sc.dec)[0])
     event = bjd_centre + sc.event_offset
-    t0 = round(event - (0.5 * sc.period if sc.kind == "eclipse" else 0.0), 6)
+    if t0 is None:
+        t0 = round(event - (0.5 * sc.period if sc.kind == "eclipse" else 0.0), 6)
 
     if sc.mode == "scan":
         direction = np.where(np.arange(n_exp) % 2 == 0, 1, -1)
@@ -328,7 +410,7 @@ def build_visit(sc, *, seed=0, n_exposures=None, ramps="exponential"):
                     * astrophysical_signal(sc, t0, bjd, wavelength_of_column(sc, columns))
                     * systematics["systematics"][:, None])
         trap_fraction = trap_fractions(sc, incident, start, xpos, sched.orbit)
-    return VisitModel(scenario=sc, seed=int(seed), refs=refs, columns=columns,
+    return VisitModel(scenario=sc, seed=int(seed), refs=refs, stream=stream, columns=columns,
                       wave=wavelength_of_column(sc, columns), read_times=read_times,
                       exposure_time=xpos, velocity=velocity, direction=direction,
                       date_beg=t_beg.isot, start=start, orbit=sched.orbit,

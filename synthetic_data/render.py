@@ -16,12 +16,15 @@ CHECKSUM and DATASUM comments carry no time stamp, see :func:`write_hdus`), so
 a visit rendered again keeps its identity in the reducer's notebook.
 """
 
+import dataclasses
 import pathlib
 
 import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 from astropy.time import Time, TimeDelta
+
+from lightledger.pipeline import orbit
 
 from . import detector, model as vm
 from .sizes import resolve_size
@@ -150,15 +153,19 @@ width = {float(sc.psf_sigma)!r}
     path.write_text(text)
 
 
-def _write_visit(model, path, wdepth):
+def _write_visit(model, path, wdepth, profile="instrument.toml"):
     sc = model.scenario
     edges = np.asarray(sc.channel_edges)
     duration = _event_duration(sc)
+    orbit_keys = (f"eccentricity = {sc.eccentricity!r}\nomega = {sc.omega_deg!r}\n"
+                  if sc.kind == "phase-curve" else "")
+    # A visit-long quadratic trend needs a quadratic in the detrending.
+    detrend = "visit_order = 2\n" if sc.kind == "phase-curve" and sc.visit_curve else ""
     text = f'''# Visit description of a fictional visit (rendered by the forward model)
 [visit]
 name = "{sc.visit_name}"
 raw = "raw"
-profile = "instrument.toml"
+profile = "{profile}"
 notebook = "notebook"
 
 [target]
@@ -179,27 +186,29 @@ a_rs = {sc.a_rs!r}
 inclination = {sc.inclination!r}
 u1 = {sc.u1!r}
 u2 = {sc.u2!r}
-
+{orbit_keys}
 [stages.calibrate]
 [stages.extract]
 [stages.bin]
 edges = {_toml_list(edges)}
 white_range = {_toml_list([edges[0], edges[-1]])}
 [stages.detrend]
-'''
+{detrend}'''
     path.write_text(text)
 
 
 def _event_duration(sc):
-    """First-to-fourth contact duration of a circular orbit, days."""
-    b = sc.a_rs * np.cos(np.deg2rad(sc.inclination))
+    """First-to-fourth contact duration of the transit, days (Winn 2010, eq. 14 and 16)."""
+    e, w = sc.eccentricity, np.deg2rad(sc.omega_deg)
+    scale = np.sqrt(1 - e * e) / (1 + e * np.sin(w))
+    b = sc.a_rs * np.cos(np.deg2rad(sc.inclination)) * (1 - e * e) / (1 + e * np.sin(w))
     arg = np.sqrt(max((1 + sc.rp_rs) ** 2 - b ** 2, 0.0)) / (sc.a_rs * np.sin(np.deg2rad(sc.inclination)))
-    return float(sc.period / np.pi * np.arcsin(min(arg, 1.0)))
+    return float(sc.period / np.pi * np.arcsin(min(arg, 1.0)) * scale)
 
 
 def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progress=None,
            ramps="exponential"):
-    """Render a scenario into a visit directory.
+    """Render a scenario into a visit directory (a programme: one folder per visit).
 
     Parameters
     ----------
@@ -212,9 +221,10 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
     seed : int, optional
         Seed of every random draw; the same seed gives the same files.
     n_exposures : int, optional
-        Exposures of the visit; default the scenario's (for a changed number
-        of orbits, its default exposures per orbit times the orbits).  The
-        allowed range is :func:`.sizes.exposure_range`.
+        Exposures of the visit (of each visit of a programme); default the
+        scenario's (for a changed number of orbits, its default exposures per
+        orbit times the orbits).  The allowed range is
+        :func:`.sizes.exposure_range`.
     n_orbits : int, optional
         Orbits of an orbiting (scan) scenario, 1 to
         :data:`.sizes.MAX_ORBITS`; default the scenario's.
@@ -229,7 +239,10 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
     Returns
     -------
     pathlib.Path
-        Path of the written ``visit.toml``.
+        Path of the written ``visit.toml``, or of ``programme.toml`` for a
+        programme of visits (``visits`` in the scenario): then ``outdir``
+        holds the shared ``calibration/`` and ``instrument.toml`` and one
+        folder per visit with its ``raw/``, ``visit.toml`` and ``truth.fits``.
 
     Raises
     ------
@@ -245,11 +258,23 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
     sc = scenario if isinstance(scenario, Scenario) else get_scenario(scenario)
     sc, n_exposures = resolve_size(sc, n_exposures=n_exposures,
                                    n_orbits=n_orbits)
-    model = vm.build_visit(sc, seed=seed, n_exposures=n_exposures, ramps=ramps)
     out = pathlib.Path(outdir)
-    (out / "raw").mkdir(parents=True, exist_ok=True)
-    (out / "calibration").mkdir(parents=True, exist_ok=True)
+    if sc.visits:
+        return _render_programme(sc, out, seed=seed, n_exposures=n_exposures, progress=progress,
+                                 ramps=ramps)
+    model = vm.build_visit(sc, seed=seed, n_exposures=n_exposures, ramps=ramps)
+    _write_calibration(model, out)
+    _write_exposures(model, out, progress)
+    tr = write_truth(model, out / "truth.fits")
+    _write_profile(model, out / "instrument.toml")
+    visit = out / "visit.toml"
+    _write_visit(model, visit, tr["wdepth"])
+    return visit
 
+
+def _write_calibration(model, out):
+    sc = model.scenario
+    (out / "calibration").mkdir(parents=True, exist_ok=True)
     refs = model.refs
     for name in ("bias", "dark", "flat", "nonlinearity", "bad_pixels"):
         _write_image(out / "calibration" / f"{name}.fits", getattr(refs, name))
@@ -262,14 +287,20 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
     table.meta["comment"] = [f"throughput of the fictional instrument {sc.profile_name}"]
     table.write(out / "calibration" / "throughput.ecsv", format="ascii.ecsv", overwrite=True)
 
+
+def _write_exposures(model, out, progress, done=0, total=None):
+    """Render and write every raw file of a visit; returns the exposures done so far."""
+    sc = model.scenario
+    (out / "raw").mkdir(parents=True, exist_ok=True)
+    refs = model.refs
     sub = model.sub_slices
     bias = refs.bias[sub].astype(float)
     nonlin = refs.nonlinearity[(slice(None),) + sub].astype(float)
-    noise_seeds = np.random.SeedSequence(seed).spawn(4)[3].spawn(model.n_exposures)
+    noise_seeds = np.random.SeedSequence(model.entropy).spawn(4)[3].spawn(model.n_exposures)
     cr = model.cosmics
     n = model.n_exposures
+    total = n if total is None else total
     per_file = sc.exposures_per_file
-    done = 0
     for first in range(0, n, per_file):
         idx = np.arange(first, min(first + per_file, n))
         cube = np.empty((idx.size, sc.n_reads) + sc.sub_shape, dtype=np.float32)
@@ -283,7 +314,7 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
                 cosmic_electrons=cr.electrons[hits])
             done += 1
             if progress is not None:
-                progress(done, n)
+                progress(done, total)
         obsgeo = None if model.obsgeo is None else model.obsgeo[idx].mean(axis=0)
         header = _primary_header(model, model.start[idx[0]], obsgeo)
         header["SCANVEL"] = (float(model.velocity[idx[0]]), "[rows/s] signed scan speed")
@@ -296,9 +327,95 @@ def render(scenario, outdir, *, seed=0, n_exposures=None, n_orbits=None, progres
         else:
             _write_raw(path, header, cube, model.read_times,
                        startoff=model.start[idx] - model.start[idx[0]])
+    return done
 
-    tr = write_truth(model, out / "truth.fits")
-    _write_profile(model, out / "instrument.toml")
-    visit = out / "visit.toml"
-    _write_visit(model, visit, tr["wdepth"])
-    return visit
+
+def _visit_scenarios(sc):
+    """Each visit's scenario: the programme's with the visit's overrides."""
+    return [(folder, centre, dataclasses.replace(sc, visits=(), **dict(overrides)))
+            for folder, centre, overrides in sc.visits]
+
+
+def _render_programme(sc, out, *, seed, n_exposures, progress):
+    """Render the visits of a programme sharing one planet and one set of calibration files.
+
+    The first visit is centred on its event (an eclipse or a transit) as a
+    single visit would be; the planet's ephemeris follows from it, and each
+    later visit starts so that the next event of its kind after the
+    previous visit falls at its centre.
+    """
+    visits = _visit_scenarios(sc)
+    models = []
+    t0 = None
+    anchor = None            # (UTC start, BJD_TDB centre) of the previous visit
+    for index, (folder, centre, vsc) in enumerate(visits):
+        if anchor is not None:
+            eph = vm.ephemeris_of(vsc, t0)
+            times = (orbit.transit_times_in if centre == "transit" else orbit.eclipse_times_in)(
+                eph, anchor[1] + 0.25 * vsc.period, anchor[1] + 1.25 * vsc.period)
+            begin = Time(anchor[0], scale="utc") + TimeDelta((times[0] - anchor[1]) * 86400.0,
+                                                             format="sec")
+            vsc = dataclasses.replace(vsc, date_beg=begin.isot)
+        probe = vm.build_visit(vsc, seed=seed, n_exposures=n_exposures, stream=index,
+                               refs=models[0].refs if models else None, t0=0.0)
+        centre_bjd = _centre_bjd(probe)
+        if t0 is None:
+            eph0 = vm.ephemeris_of(vsc, 0.0)
+            lag = orbit.eclipse_time(eph0) if centre == "eclipse" else 0.0
+            t0 = round(centre_bjd - lag, 6)
+        model = vm.build_visit(vsc, seed=seed, n_exposures=n_exposures, stream=index,
+                               refs=models[0].refs if models else None, t0=t0)
+        models.append(model)
+        anchor = (vsc.date_beg, centre_bjd)
+    total = sum(m.n_exposures for m in models)
+    _write_calibration(models[0], out)
+    _write_profile(models[0], out / "instrument.toml")
+    done = 0
+    paths = []
+    for (folder, _, _), model in zip(visits, models):
+        vdir = out / folder
+        done = _write_exposures(model, vdir, progress, done, total)
+        tr = write_truth(model, vdir / "truth.fits")
+        _write_visit(model, vdir / "visit.toml", tr["wdepth"], profile="../instrument.toml")
+        paths.append(f"{folder}/visit.toml")
+    programme = out / "programme.toml"
+    _write_programme(sc, models[0], programme, paths)
+    return programme
+
+
+def _centre_bjd(model):
+    """BJD_TDB of the middle of a visit (of its middle orbit's visibility window)."""
+    sc = model.scenario
+    t_beg = Time(model.date_beg, scale="utc", precision=6)
+    if sc.n_orbits:
+        centre_s = (sc.n_orbits // 2) * sc.orbit_period + 0.5 * sc.visibility
+    else:
+        centre_s = 0.5 * (model.start[0] + model.start[-1] + model.exposure_time)
+    t_centre = t_beg + TimeDelta(centre_s, format="sec")
+    from . import timing
+    return float(timing.bjd_tdb(t_centre.reshape(1), ra=sc.ra, dec=sc.dec)[0])
+
+
+def _write_programme(sc, model, path, visit_paths):
+    text = f'''# Programme of visits of a fictional planet (rendered by the forward model)
+[programme]
+name = "{sc.visit_name}"
+visits = [{", ".join(f'"{p}"' for p in visit_paths)}]
+notebook = "notebook"
+
+[planet]
+name = "{sc.target_name} b"
+t0 = {model.t0!r}
+period = {sc.period!r}
+rp_rs = {sc.rp_rs!r}
+a_rs = {sc.a_rs!r}
+inclination = {sc.inclination!r}
+eccentricity = {sc.eccentricity!r}
+omega = {sc.omega_deg!r}
+u1 = {sc.u1!r}
+u2 = {sc.u2!r}
+
+[stages.joint]
+phase_bins = {_toml_list(np.round(np.linspace(0.0, 1.0, 11), 4))}
+'''
+    path.write_text(text)

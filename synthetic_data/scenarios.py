@@ -10,6 +10,7 @@ parameter set, a frozen :class:`Scenario`.
 """
 
 import math
+import dataclasses
 from dataclasses import dataclass, field
 
 from lightledger.pipeline.errors import ParameterError
@@ -118,6 +119,12 @@ class Scenario:
     trap_refill: tuple = ()
     # rows by which the reverse scans' band sits above the forward scans' (0 = the same band)
     reverse_rows: float = 0.0           # e-/pixel added per population at each later orbit's start
+    # full-orbit phase curves ("phase-curve" kind) and programmes of visits
+    eccentricity: float = 0.0
+    omega_deg: float = 90.0           # argument of periastron, degrees
+    t_night: float = 0.0              # night-side brightness temperature, K
+    emission_band: float = 0.0        # hot-side brightness-temperature excess in the band, K
+    visits: tuple = ()                # programme: (folder, centred event, overrides) per visit
 
     @property
     def psf_sigma(self):
@@ -208,7 +215,46 @@ STARE = Scenario(
     channel_edges=tuple(round(1.50 + 0.065 * k, 4) for k in range(11)),
 )
 
-_ALL = {s.name: s for s in (SCAN, STARE)}
+PHASE_ORBIT = dataclasses.replace(
+    SCAN,
+    name="phase-orbit",
+    description=("Low-Earth-orbit scans of the fictional ultra-hot giant Cinder-7 b over more "
+                 "than a full planetary orbit: 21 orbits, a transit and two eclipses."),
+    visit_name="Cinder-7 b phase curve, scanned",
+    target_name="Cinder-7",
+    ra=88.7314, dec=-12.4406, teff=6600.0,
+    default_n_exposures=21 * 14, n_orbits=21,
+    kind="phase-curve", period=1.21, event_offset=0.0, rp_rs=0.105, a_rs=3.6,
+    inclination=83.0, u1=0.2, u2=0.22,
+    band_centre=1.40, band_width=0.045, band_depth=1.5e-4,
+    t_planet=2950.0, t_night=1250.0, phase_offset_deg=7.0, emission_band=250.0,
+    visit_slope=-1.2e-3, visit_curve=6.0e-4,
+    orbit_ramp=(4.0e-3, 1.3e-3, 1.0e-3), orbit_ramp_tau=420.0,
+)
+
+PHASE_PAIR = dataclasses.replace(
+    PHASE_ORBIT,
+    name="phase-pair",
+    description=("Two scanned visits of the fictional ultra-hot giant Cinder-7 b on a slightly "
+                 "eccentric orbit: one around an eclipse, one around the next transit."),
+    visit_name="Cinder-7 b programme",
+    default_n_exposures=5 * 14, n_orbits=5,
+    eccentricity=0.03, omega_deg=60.0,
+    visits=(
+        ("visit-eclipse", "eclipse", (("visit_name", "Cinder-7 b eclipse, scanned"),
+                                      ("visit_slope", -1.5e-3), ("visit_curve", 0.0),
+                                      ("orbit_ramp", (4.0e-3, 1.2e-3, 1.0e-3)),
+                                      ("reverse_offset", -2.5e-3))),
+        ("visit-transit", "transit", (("visit_name", "Cinder-7 b transit, scanned"),
+                                      ("visit_slope", 1.0e-3), ("visit_curve", 0.0),
+                                      ("orbit_ramp", (3.0e-3, 1.5e-3, 1.1e-3)),
+                                      ("orbit_ramp_tau", 520.0), ("reverse_offset", -2.0e-3),
+                                      ("drift_x", (-0.05, 0.03, 0.01)),
+                                      ("drift_y", (0.03, 0.025, 0.01)))),
+    ),
+)
+
+_ALL = {s.name: s for s in (SCAN, STARE, PHASE_ORBIT, PHASE_PAIR)}
 
 #: Scenario name -> one-line description.
 SCENARIOS = {name: s.description for name, s in _ALL.items()}

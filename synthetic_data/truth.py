@@ -48,8 +48,19 @@ channel_sigma       electron   vector (n_channels): as white_sigma per channel
 HDU ``CHANNELS``: wave_min, wave_max (um); depth = injected transit depth
 (rp/rs)^2 averaged over the channel weighted by the source electrons, or for
 an eclipse the planet-to-star flux ratio fp/fs times the phase-curve factor at
-mid-eclipse, averaged the same way (the flux that disappears at mid-eclipse).
+mid-eclipse, averaged the same way (the flux that disappears at mid-eclipse);
+for a phase curve the transit depth.
 Header: WDEPTH (the same for the white band), WLO, WHI (um).
+
+Phase curves (KIND = phase-curve) add the planet-to-star flux ratio: EXPOSURES
+columns ``white_planet_flux`` and ``planet_flux`` (n_channels) at each
+exposure's orbital angle (whether or not the star hides the planet then);
+CHANNELS columns ``eclipse_flux`` (at mid-eclipse, the day side),
+``night_flux`` (at mid-transit), ``max_flux``, ``min_flux``, and header
+WECLIPSE, WNIGHT, WMAX, WMIN (white band) and OFFSET (degrees of orbital
+angle by which the maximum precedes mid-eclipse, eastward positive); the
+primary header adds ECC, OMEGA and TECLIPSE (BJD_TDB of the mid-eclipse after
+T0), and VISITNO for a visit of a programme.
 
 HDU ``COSMICS``: exposure (index), read (first read holding the charge),
 y, x (subarray row, column), electrons.
@@ -141,7 +152,7 @@ def truth_columns(model):
     white_sigma = np.sqrt(var @ w_white ** 2)
     chan_sigma = np.sqrt(var @ (w_chan ** 2).T)
 
-    if sc.kind == "transit":
+    if sc.kind in ("transit", "phase-curve"):
         from .spectra import radius_ratio_spectrum
         depth_col = radius_ratio_spectrum(model.wave, rp_rs=sc.rp_rs, band_centre=sc.band_centre,
                                           band_width=sc.band_width, band_depth=sc.band_depth) ** 2
@@ -159,7 +170,35 @@ def truth_columns(model):
     out.update(dx=model.dx, dy=model.dy, white_sigma=white_sigma, channel_flux=chan,
                channel_sigma=chan_sigma, weights_white=w_white, weights_channels=w_chan,
                depth=depth, wdepth=wdepth)
+    if sc.kind == "phase-curve":
+        out.update(_planet_truth(model, rate, w_white, w_chan))
     return out
+
+
+def _planet_truth(model, rate, w_white, w_chan):
+    """The planet's flux per exposure and its landmarks, per channel and white band.
+
+    Channel values are source-weighted means over the channel's columns, as
+    the depths; the planet's flux has the same orbital shape at every
+    wavelength, so the landmarks of the mean are the means of the landmarks.
+    """
+    from lightledger.pipeline.orbit import eclipse_time, orbit_state
+
+    sc = model.scenario
+    eph = vm.ephemeris_of(sc, model.t0)
+    angle = orbit_state(model.bjd_tdb, eph).angle
+    off = np.deg2rad(sc.phase_offset_deg)
+    marks = np.array([np.pi, 0.0, np.pi - off, 2 * np.pi - off])   # day, night, max, min
+    per_col = vm.planet_phase_flux(sc, model.wave, np.concatenate([angle, marks]))
+    wc = w_chan * rate
+    ww = w_white * rate
+    chan = per_col @ wc.T / wc.sum(axis=1)
+    white = per_col @ ww / ww.sum()
+    n = angle.size
+    return dict(planet_flux=chan[:n], white_planet_flux=white[:n],
+                eclipse_flux=chan[n], night_flux=chan[n + 1], max_flux=chan[n + 2],
+                min_flux=chan[n + 3], white_marks=white[n:], offset_deg=float(sc.phase_offset_deg),
+                t_eclipse=eclipse_time(eph))
 
 
 def write_truth(model, path):
@@ -174,6 +213,8 @@ def write_truth(model, path):
     names = ["time_bjd_tdb", "time_mjd_utc", "orbit", "scan_direction", "white_flux",
              "white_astro", "ramp_visit", "ramp_orbit", "ramp_traps", "orbit_phase_poly",
              "scan_offset", "systematics", "dx", "dy", "white_sigma", "channel_flux", "channel_sigma"]
+    if sc.kind == "phase-curve":
+        names += ["white_planet_flux", "planet_flux"]
     cols = []
     for name in names:
         arr = np.asarray(tr[name])
@@ -189,10 +230,18 @@ def write_truth(model, path):
         fits.Column(name="wave_min", format="D", unit="um", array=edges[:-1]),
         fits.Column(name="wave_max", format="D", unit="um", array=edges[1:]),
         fits.Column(name="depth", format="D", array=tr["depth"]),
-    ], name="CHANNELS")
+    ] + ([fits.Column(name=name, format="D", array=tr[name])
+          for name in ("eclipse_flux", "night_flux", "max_flux", "min_flux")]
+         if sc.kind == "phase-curve" else []), name="CHANNELS")
     channels.header["WDEPTH"] = (tr["wdepth"], "injected white-band depth")
     channels.header["WLO"] = (float(edges[0]), "[um] white band lower edge")
     channels.header["WHI"] = (float(edges[-1]), "[um] white band upper edge")
+    if sc.kind == "phase-curve":
+        for key, value, text in zip(("WECLIPSE", "WNIGHT", "WMAX", "WMIN"), tr["white_marks"],
+                                    ("white planet flux at mid-eclipse", "white night side",
+                                     "white planet flux maximum", "white planet flux minimum")):
+            channels.header[key] = (float(value), text)
+        channels.header["OFFSET"] = (tr["offset_deg"], "[deg] eastward hotspot offset")
     cr = model.cosmics
     cosmics = fits.BinTableHDU.from_columns([
         fits.Column(name="exposure", format="J", array=cr.exposure.astype(np.int32)),
@@ -207,7 +256,7 @@ def write_truth(model, path):
     h["SEED"] = (model.seed, "random seed of the rendering")
     h["SWVERS"] = (__version__, "lightledger version")
     h["RAMPS"] = (model.ramps, "how the orbit ramps were rendered")
-    h["KIND"] = (sc.kind, "transit or eclipse")
+    h["KIND"] = (sc.kind, "transit, eclipse or phase-curve")
     h["T0"] = (model.t0, "[d] BJD_TDB of mid-transit")
     h["PERIOD"] = (sc.period, "[d] orbital period")
     h["RP_RS"] = (sc.rp_rs, "continuum planet-to-star radius ratio")
@@ -216,6 +265,12 @@ def write_truth(model, path):
     h["U1"] = (sc.u1, "quadratic limb darkening")
     h["U2"] = (sc.u2, "quadratic limb darkening")
     h["XPOSURE"] = (model.exposure_time, "[s] zero read to last read")
+    if sc.kind == "phase-curve":
+        h["ECC"] = (sc.eccentricity, "orbital eccentricity")
+        h["OMEGA"] = (sc.omega_deg, "[deg] argument of periastron")
+        h["TECLIPSE"] = (tr["t_eclipse"], "[d] BJD_TDB of the mid-eclipse after T0")
+    if model.stream is not None:
+        h["VISITNO"] = (model.stream, "visit index within the programme")
     from .render import write_hdus
     write_hdus([primary, exposures, channels, cosmics], path)
     return tr

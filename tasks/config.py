@@ -119,8 +119,10 @@ VISIT_SCHEMA = {
         "source_y": Key("float", "full-detector row of the source's direct-image position"),
     },
     "event": {
-        "kind": Key("str", "'transit' or 'eclipse'", choices=("transit", "eclipse")),
-        "t0": Key("float", "BJD_TDB of mid-transit (eclipse at t0 + period/2)"),
+        "kind": Key("str", "'transit', 'eclipse' or 'phase-curve' (every transit and eclipse "
+                           "in the visit, with the planet's flux over the orbit)",
+                    choices=("transit", "eclipse", "phase-curve")),
+        "t0": Key("float", "BJD_TDB of mid-transit (eclipse at t0 + period/2 on a circular orbit)"),
         "period": Key("float", "orbital period, days", positive=True),
         "duration": Key("float", "first to fourth contact of the observed event, days",
                         positive=True),
@@ -129,6 +131,10 @@ VISIT_SCHEMA = {
         "inclination": Key("float", "orbital inclination, degrees", bounds=(0.0, 180.0)),
         "u1": Key("float", "quadratic limb-darkening coefficient u1", required=False, default=0.0),
         "u2": Key("float", "quadratic limb-darkening coefficient u2", required=False, default=0.0),
+        "eccentricity": Key("float", "orbital eccentricity", required=False, default=0.0,
+                            bounds=(0.0, 0.95)),
+        "omega": Key("float", "argument of periastron, degrees", required=False, default=90.0,
+                     bounds=(-360.0, 360.0)),
     },
     "exclude": {
         "files": Key("exclude", "raw files to leave out: names, or {file = NAME, reason = TEXT}",

@@ -93,7 +93,7 @@ def systematics_setup(lc, event, params):
                                scan_direction=np.asarray(lc["scan_direction"], int) if scan else None)
     joint = params["fit"] == "joint"
     phase = (event["t0"], event["period"]) if _wants_phase_curve(params["phase_curve"], event, t) \
-        else None
+        and event["kind"] != "phase-curve" else None   # a phase-curve event models the planet itself
     # An eclipse hides the planet's flux at its phase: fit that flux as the phase
     # curve itself (joint fits only; pipeline/eventfit.py, planet_basis).
     tie = (phase is not None and event["kind"] == "eclipse" and joint
@@ -141,6 +141,21 @@ def fit_unless_masked(fit, unfitted, flux, variance, template, *, mask):
     return fit(flux, variance, template, mask=mask)
 
 
+def star_alone(result, kind):
+    """The star's flux alone times the systematics, from a single-event fit.
+
+    A transit's out-of-transit level is the star's (the night side's flux is
+    not modelled); an eclipse's star alone is the level in full eclipse:
+    ``S_*`` when the planet's flux was fitted, else the out-of-eclipse level
+    times ``1 - depth`` (the depth is the fraction of the total hidden).
+    """
+    if kind == "transit":
+        return result.systematics
+    if result.star is not None:
+        return result.star
+    return result.systematics * (1.0 - result.depth)
+
+
 def read_depths(path):
     """The DEPTHS table of a detrend product."""
     with fits.open(path, memmap=False) as hdul:
@@ -160,6 +175,8 @@ class Detrend(VisitTask):
         return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
 
     def final_product(self):
+        if self.config.event["kind"] == "phase-curve":
+            return self.folder / "planet.fits"
         return self.folder / "detrended.fits"
 
     def run(self):
@@ -167,6 +184,8 @@ class Detrend(VisitTask):
         visit, params = self.config, self.params
         lc_path = self.requires().final_product()
         lc, channels = read_lightcurves(lc_path)
+        if visit.event["kind"] == "phase-curve":
+            return self._run_phase_curve(started, lc_path, lc, channels)
         t = np.asarray(lc["time_bjd_tdb"], float)
         template = event_template(t, visit.event)
         if not np.any(template > 0):
@@ -194,22 +213,28 @@ class Detrend(VisitTask):
             if j not in notes and np.all(mask[:, j]):
                 notes[j] = "not fitted: every exposure of the channel is masked"
         used = ~np.asarray(white.fit_mask, bool)   # fit_mask is True where left out
+        # Detrended light curves keep the whole astrophysical signal: divided by the
+        # systematics alone and normalised to the star alone.
+        kind = visit.event["kind"]
+        w_star = star_alone(white, kind)
+        c_star = np.stack([star_alone(f, kind) for f in chans.fits], axis=1) \
+            * chans.white_shape[:, None]
 
         det = Table()
         det["exposure"] = lc["exposure"]
         det["time_bjd_tdb"] = t
         det["time_bjd_tdb"].unit = "d"
         det["used"] = used
-        det["white_detrended"] = white.detrended_flux
-        det["white_detrended_error"] = white.detrended_error
-        det["white_systematics"] = white.systematics
+        det["white_detrended"] = wf / w_star
+        det["white_detrended_error"] = we / np.abs(w_star)
+        det["white_systematics"] = w_star
         det["white_model"] = white.model
-        det["white_residual"] = white.residuals
-        det["detrended"] = chans.detrended_flux
-        det["detrended_error"] = chans.detrended_error
-        det["systematics"] = chans.systematics
+        det["white_residual"] = (wf - white.model) / w_star
+        det["detrended"] = flux / c_star
+        det["detrended_error"] = err / np.abs(c_star)
+        det["systematics"] = c_star
         det["model"] = chans.model
-        det["residual"] = chans.residuals
+        det["residual"] = (flux - chans.model) / c_star
         for name in ("white_systematics", "white_model", "systematics", "model"):
             det[name].unit = "electron"
 
@@ -288,3 +313,24 @@ class Detrend(VisitTask):
         self.progress(2, 2, "light curves fitted")
         self.write_entry(self.output().path, [lc_path], outputs, metrics, [fig], started,
                          warnings=warnings)
+
+    def _run_phase_curve(self, started, lc_path, lc, channels):
+        """A visit with every transit and eclipse and the planet's flux over the orbit."""
+        from lightledger.pipeline.programme import fit_programme
+
+        from .phasecurve import planet_model, visit_curves, write_phase_products
+
+        visit, params = self.config, self.params
+        planet = planet_model(visit.event, params)
+        curves = visit_curves(lc, visit.event, params, visit.name)
+        fit = fit_programme([curves], planet, progress=lambda done, total: self.progress(
+            done, total + 1, "white and channel light curves"))
+        band = (float(lc.meta.get("WLO", channels["wave_lo"][0])),
+                float(lc.meta.get("WHI", channels["wave_hi"][-1])))
+        outputs, figs, metrics = write_phase_products(
+            self.folder, self.provenance([lc_path]), fit, [lc], channels, band, planet, params,
+            names=[visit.name])
+        metrics["exposures fitted"] = int(np.sum(~fit.white.visits[0].fit_mask))
+        self.progress(len(channels) + 2, len(channels) + 2, "white and channel light curves")
+        self.write_entry(self.output().path, [lc_path], outputs, metrics, figs, started)
+

@@ -283,4 +283,4 @@ def test_stare_files_follow_layout(stare_dirs):
 def test_unknown_scenario_names_valid_ones(tmp_path):
     with pytest.raises(ParameterError, match="scan-transit"):
         render("no-such-scenario", tmp_path)
-    assert set(SCENARIOS) == {"scan-transit", "stare-eclipse"}
+    assert set(SCENARIOS) == {"scan-transit", "stare-eclipse", "phase-orbit", "phase-pair"}
