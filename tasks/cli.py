@@ -84,8 +84,8 @@ def _parser():
     parser.add_argument("--version", action="version", version=f"lightledger {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    red = sub.add_parser("reduce", help="reduce a visit described by a TOML file")
-    red.add_argument("visit", help="visit description (TOML)")
+    red = sub.add_parser("reduce", help="reduce a visit (or a programme of visits) described by a TOML file")
+    red.add_argument("visit", help="visit description, or programme description, (TOML)")
     red.add_argument("--workers", type=int, default=1, metavar="N",
                      help="run up to N Luigi tasks at once, in N processes (default: 1)")
     red.add_argument("--set", dest="settings", action="append", default=[], metavar="STAGE.KEY=VALUE",
@@ -208,13 +208,16 @@ def main(argv=None):
 
 
 def _cmd_reduce(args):
+    from .programme import is_programme, reduce_programme
     from .run import reduce_visit
 
-    result = reduce_visit(args.visit, settings=args.settings, workers=args.workers, until=args.until,
-                          force=args.force, progress=Progress(),
-                          scheduler=(args.scheduler_host, args.scheduler_port)
-                          if args.scheduler_host else None,
-                          warn=lambda line: (_close_progress(), print(line, file=sys.stderr)))
+    # a programme description ([programme]) reduces each of its visits and fits them jointly
+    reduce = reduce_programme if is_programme(args.visit) else reduce_visit
+    result = reduce(args.visit, settings=args.settings, workers=args.workers, until=args.until,
+                    force=args.force, progress=Progress(),
+                    scheduler=(args.scheduler_host, args.scheduler_port)
+                    if args.scheduler_host else None,
+                    warn=lambda line: (_close_progress(), print(line, file=sys.stderr)))
     _close_progress()
     for line in result.messages:
         print(line, file=sys.stderr)

@@ -1,0 +1,570 @@
+"""Programmes of visits: one planet, several visits, one joint fit.
+
+A programme description (TOML) lists visit descriptions and the planet they
+share::
+
+    [programme]
+    name = "..."
+    visits = ["visit-a/visit.toml", "visit-b/visit.toml"]
+    notebook = "notebook"        # optional, beside the programme file
+
+    [planet]
+    t0 = ...  period = ...  rp_rs = ...  a_rs = ...  inclination = ...
+    u1 = ...  u2 = ...  eccentricity = ...  omega = ...     # optional
+
+    [stages.joint]               # optional, see `lightledger params`
+    phase_bins = [0.0, 0.25, 0.5, 0.75, 1.0]
+
+``lightledger reduce PROGRAMME.toml`` runs every visit's calibrate, extract
+and bin stages as for a single visit (each in its visit's own notebook; one
+Luigi build, so chunks of every visit run in parallel across workers and
+machines) and then :class:`JointDetrend`: each visit's own systematics
+(chosen by its ``[stages.detrend]``), one planet per channel fitted jointly
+(:func:`lightledger.pipeline.programme.fit_programme`), and each visit fitted
+alone for comparison.  The joint entry lives in the programme's notebook as
+``joint-IDENT/``, where IDENT hashes the joint stage's version and
+parameters, the planet, and every visit's ``bin`` identity and systematics
+choices: a tweak to one visit re-runs that visit's later stages and the joint
+fit, nothing else.  The programme page (``programme.html``) links every
+visit's page and shows the joint fit beside each visit's own.
+"""
+
+import base64
+import getpass
+import hashlib
+import html
+import json
+import logging
+import shutil
+import socket
+import time
+import tomllib
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+
+import luigi
+import numpy as np
+
+from lightledger.pipeline import __version__
+from lightledger.pipeline.errors import ConfigError, LightledgerError, ParameterError
+from lightledger.pipeline.orbit import Ephemeris
+from lightledger.pipeline.parameters import STAGE_ORDER, STAGES, resolve
+
+from .base import ENTRY_NAME, PROGRESS, file_digest, settings_from_text, settings_to_text, \
+    stage_dir, stage_identity, visit_config
+from .config import Key, _check, _read_toml
+from .products import Provenance, atomic_path, relative_input, write_json
+
+__all__ = ["PROGRAMME_SCHEMA", "Programme", "load_programme", "is_programme", "JointDetrend",
+           "ProgrammeResult", "reduce_programme", "joint_dir"]
+
+PROGRAMME_SCHEMA = {
+    "programme": {
+        "name": Key("str", "name of the programme (free text)"),
+        "notebook": Key("path", "directory of the programme's notebook (default notebook/ "
+                                "beside the programme file)", required=False),
+    },
+    "planet": {
+        "name": Key("str", "name of the planet (free text)", required=False),
+        "t0": Key("float", "BJD_TDB of a mid-transit"),
+        "period": Key("float", "orbital period, days"),
+        "rp_rs": Key("float", "a priori planet-to-star radius ratio"),
+        "a_rs": Key("float", "semi-major axis in stellar radii"),
+        "inclination": Key("float", "orbital inclination, degrees"),
+        "u1": Key("float", "quadratic limb darkening u1 (default 0)", required=False),
+        "u2": Key("float", "quadratic limb darkening u2 (default 0)", required=False),
+        "eccentricity": Key("float", "orbital eccentricity (default 0)", required=False),
+        "omega": Key("float", "argument of periastron, degrees (default 90)", required=False),
+    },
+    "stages": Key("map", "settings of the joint stage: [stages.joint]", required=False,
+                  allowed_keys=("joint",)),
+}
+
+
+@dataclass(frozen=True)
+class Programme:
+    """A validated programme description."""
+
+    path: Path
+    name: str
+    notebook: Path
+    visits: tuple           # absolute paths of the visit descriptions
+    planet: dict
+    params: dict            # the joint stage's parameters
+    overrides: dict
+
+
+def is_programme(path):
+    """True when the TOML file at ``path`` is a programme description ([programme])."""
+    try:
+        with open(path, "rb") as fh:
+            return "programme" in tomllib.load(fh)
+    except (OSError, tomllib.TOMLDecodeError):
+        return False
+
+
+def load_programme(path, settings=None):
+    """Read and validate a programme description and every visit it lists.
+
+    Parameters
+    ----------
+    path : str or Path
+    settings : list of (stage, key, value), optional
+        ``--set`` overrides; ``joint.*`` ones apply to the joint stage (the
+        others reach every visit when its description is loaded).
+
+    Returns
+    -------
+    Programme
+
+    Raises
+    ------
+    ConfigError
+        One line naming the file and the key (or the visit) for any problem.
+    """
+    path = Path(path).resolve()
+    doc = dict(_read_toml(path, "programme description"))
+    table = doc.get("programme")
+    if not isinstance(table, dict):
+        raise ConfigError(f"{path}: missing table [programme]")
+    table = dict(table)
+    visits = table.pop("visits", None)
+    doc["programme"] = table
+    if not isinstance(visits, list) or not visits or not all(isinstance(v, str) and v
+                                                             for v in visits):
+        raise ConfigError(f"{path}: programme.visits must be a non-empty list of visit "
+                          "description paths")
+    doc = _check(doc, PROGRAMME_SCHEMA, path)
+    files = []
+    for rel in visits:
+        file = (path.parent / rel).resolve()
+        if not file.is_file():
+            raise ConfigError(f"{path}: programme.visits names {rel}, which does not exist")
+        if file in files:
+            raise ConfigError(f"{path}: programme.visits lists {rel} twice")
+        files.append(file)
+    for file in files:
+        visit_config(file, settings_to_text([s for s in settings or () if s[0] != "joint"]))
+    planet = dict(doc["planet"])
+    for key, default in (("u1", 0.0), ("u2", 0.0), ("eccentricity", 0.0), ("omega", 90.0)):
+        planet[key] = default if planet[key] is None else planet[key]
+    try:
+        Ephemeris(planet["t0"], planet["period"], planet["a_rs"], planet["inclination"],
+                  planet["eccentricity"], planet["omega"])
+        if planet["rp_rs"] <= 0:
+            raise ParameterError(f"rp_rs must be > 0; got {planet['rp_rs']}")
+    except ParameterError as exc:
+        raise ConfigError(f"{path}: planet.{exc}") from None
+    overrides = dict(doc["stages"].get("joint", {}) or {})
+    for stage, key, value in settings or ():
+        if stage == "joint":
+            overrides[key] = value
+    try:
+        params = resolve("joint", overrides, where=str(path))
+    except ParameterError as exc:
+        raise ConfigError(str(exc)) from None
+    edges = np.asarray(params["phase_bins"], float)
+    if edges.size < 2 or np.any(np.diff(edges) <= 0):
+        raise ConfigError(f"{path}: stages.joint.phase_bins must be at least two increasing "
+                          "phases within [0, 1]")
+    notebook = doc["programme"]["notebook"] or path.parent / "notebook"
+    return Programme(path=path, name=doc["programme"]["name"], notebook=Path(notebook),
+                     visits=tuple(files), planet=planet, params=params,
+                     overrides={"joint": overrides})
+
+
+def _split_settings(settings_text):
+    settings = settings_from_text(settings_text)
+    visit_text = settings_to_text([s for s in settings if s[0] != "joint"])
+    return settings, visit_text
+
+
+def joint_identity(programme, settings_text):
+    """Identity hash (hex) of the programme's joint stage."""
+    _, visit_text = _split_settings(settings_text)
+    parts = []
+    for file in programme.visits:
+        visit = visit_config(file, visit_text)
+        parts.append([stage_identity(visit, "bin"),
+                      sorted((k, list(v) if isinstance(v, tuple) else v)
+                             for k, v in visit.stages["detrend"].items())])
+    params = sorted((k, list(v) if isinstance(v, tuple) else v)
+                    for k, v in programme.params.items())
+    text = json.dumps(["joint", STAGES["joint"].version, params, sorted(programme.planet.items()),
+                       parts], sort_keys=True, default=str)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def joint_dir(programme, settings_text="[]"):
+    """``NOTEBOOK/joint-IDENT`` folder of a programme."""
+    return programme.notebook / f"joint-{joint_identity(programme, settings_text)[:10]}"
+
+
+class JointDetrend(luigi.Task):
+    """Fit every visit's systematics and one shared planet per channel."""
+
+    programme = luigi.Parameter(description="path of the programme description (TOML)")
+    settings = luigi.Parameter(default="[]",
+                               description="JSON list of [stage, key, value] overrides (--set)")
+
+    stage = "joint"
+
+    @property
+    def config(self):
+        return load_programme(self.programme, settings_from_text(self.settings))
+
+    @property
+    def folder(self):
+        return joint_dir(self.config, self.settings)
+
+    def requires(self):
+        from .lightcurves import Bin
+
+        _, visit_text = _split_settings(self.settings)
+        return [Bin(visit=str(v), settings=visit_text) for v in self.config.visits]
+
+    def output(self):
+        return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
+
+    def final_product(self):
+        return self.folder / "planet.fits"
+
+    def progress(self, done, total, what):
+        try:
+            self.set_status_message(f"{what}: {done}/{total}")
+            self.set_progress_percentage(round(100.0 * done / max(total, 1), 1))
+        except Exception:  # no scheduler attached
+            pass
+        reporter = PROGRESS.get("callback")
+        if reporter is not None:
+            reporter(self.stage, what, done, total)
+
+    def on_failure(self, exception):
+        import traceback
+
+        if isinstance(exception, LightledgerError):
+            text = f"lightledger: error: {exception}"
+        else:
+            text = (f"lightledger: {self.task_family} failed (a bug; please report it):\n"
+                    + "".join(traceback.format_exception(exception)).rstrip())
+        try:
+            folder = Path(self.config.notebook) / ".failures"
+            folder.mkdir(parents=True, exist_ok=True)
+            (folder / f"{self.task_id}.txt").write_text(text + "\n", encoding="utf-8")
+        except Exception:
+            pass
+        return super().on_failure(exception)
+
+    def run(self):
+        from lightledger.pipeline.programme import fit_programme
+
+        from .lightcurves import read_lightcurves
+        from .phasecurve import planet_model, visit_curves, write_phase_products
+
+        started = time.time()
+        prog = self.config
+        _, visit_text = _split_settings(self.settings)
+        visits = [visit_config(v, visit_text) for v in prog.visits]
+        inputs = [task.final_product() for task in self.requires()]
+        lcs, curves, channels = [], [], None
+        event = dict(prog.planet, kind="phase-curve")
+        for visit, path in zip(visits, inputs):
+            lc, ch = read_lightcurves(path)
+            if channels is None:
+                channels = ch
+            elif len(ch) != len(channels) or not np.allclose(ch["wave_lo"], channels["wave_lo"]):
+                raise LightledgerError(f"{visit.path}: its channels differ from those of "
+                                       f"{visits[0].path}; give the visits the same "
+                                       "[stages.bin] edges")
+            lcs.append(lc)
+            curves.append(visit_curves(lc, event, visit.stages["detrend"], visit.name))
+        planet = planet_model(event, prog.params)
+        n_fits = (len(channels) + 1) * (len(visits) + 1 if len(visits) > 1 else 1)
+        done = [0]
+
+        def step(what):
+            def report(d, total):
+                self.progress(done[0] + d, n_fits, what)
+            return report
+
+        fit = fit_programme(curves, planet, progress=step("joint fit"))
+        done[0] += len(channels) + 1
+        alone = None
+        if len(visits) > 1:
+            alone = []
+            for c in curves:
+                alone.append(fit_programme([c], planet, progress=step(f"{c.name} alone")))
+                done[0] += len(channels) + 1
+        band = (float(lcs[0].meta.get("WLO", channels["wave_lo"][0])),
+                float(lcs[0].meta.get("WHI", channels["wave_hi"][-1])))
+        ident = self.folder.name.split("-", 1)[1]
+        prov = Provenance("joint", STAGES["joint"].version, ident, prog.params,
+                          {relative_input(p, self.folder): file_digest(p) for p in inputs},
+                          visit=prog.name)
+        outputs, figs, metrics = write_phase_products(
+            self.folder, prov, fit, lcs, channels, band, planet, prog.params,
+            names=[v.name for v in visits], alone=alone)
+        if alone is not None:
+            w = [a.white for a in alone]
+            from lightledger.pipeline.programme import quantity
+            errs = [quantity(a, "eclipse_depth")[1] for a in w]
+            metrics["white eclipse depth error, best visit alone (ppm)"] = (
+                round(float(np.nanmin(errs)) * 1e6, 1) if np.any(np.isfinite(errs)) else None)
+        self._write_entry(prog, visits, inputs, outputs, metrics, figs, started)
+        write_programme_page(prog, self.folder)
+
+    def _write_entry(self, prog, visits, inputs, outputs, metrics, figs, started):
+        try:
+            user = getpass.getuser()
+        except Exception:
+            user = "unknown"
+        entry = {
+            "stage": "joint",
+            "identity": self.folder.name.split("-", 1)[1],
+            "folder": self.folder.name,
+            "visit": prog.name,
+            "visit_file": str(prog.path),
+            "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            "user": user,
+            "host": socket.gethostname(),
+            "software_version": __version__,
+            "stage_version": STAGES["joint"].version,
+            "seconds": round(time.time() - started, 2),
+            "params": {k: list(v) if isinstance(v, tuple) else v for k, v in prog.params.items()},
+            "overrides": prog.overrides.get("joint", {}),
+            "made_from": [str(stage_dir(v, "bin")) for v in visits],
+            "inputs": {relative_input(p, self.folder): file_digest(p) for p in inputs},
+            "outputs": {Path(p).name: file_digest(p) for p in outputs},
+            "metrics": metrics,
+            "figures": [Path(f).name for f in figs],
+        }
+        write_json(self.output().path, entry)
+
+
+# --------------------------------------------------------------------------
+# The programme page
+# --------------------------------------------------------------------------
+
+_STYLE = ("body{font-family:sans-serif;max-width:1100px;margin:1em auto;color:#222}"
+          "table{border-collapse:collapse;font-size:12px;margin:0.5em 0}"
+          "td,th{border:1px solid #ccc;padding:2px 6px;text-align:right}"
+          "th{background:#eee}img{max-width:100%;border:1px solid #ddd;margin:4px 0}"
+          "tr.joint td{font-weight:bold;background:#f4f8ff}")
+
+
+def _fmt(x, scale=1.0, digits=1):
+    try:
+        v = float(x) * scale
+    except (TypeError, ValueError):
+        return html.escape(str(x))
+    return "" if not np.isfinite(v) else f"{v:.{digits}f}"
+
+
+def write_programme_page(prog, folder):
+    """Write ``programme.html`` into the programme's notebook; returns its path.
+
+    The page links every visit's notebook page, shows the latest joint
+    entry's figures, the white-band and per-channel results, and the table
+    of each visit fitted alone beside the joint fit with the chi-square of
+    their consistency.  Self-contained: figures are embedded.
+    """
+    from astropy.table import Table
+
+    notebook = Path(prog.notebook)
+    notebook.mkdir(parents=True, exist_ok=True)
+    parts = [f"<h1>lightledger programme: {html.escape(prog.name)}</h1>",
+             f"<p>Programme description: {html.escape(str(prog.path))}</p><h2>Visits</h2><ul>"]
+    for file in prog.visits:
+        visit = visit_config(file)
+        page = Path(visit.notebook) / "index.html"
+        rel = Path(_relpath(page, notebook))
+        parts.append(f"<li><a href=\"{html.escape(str(rel))}\">{html.escape(visit.name)}</a> "
+                     f"({html.escape(str(file))})</li>")
+    parts.append("</ul>")
+    entry_file = Path(folder) / ENTRY_NAME
+    if entry_file.is_file():
+        entry = json.loads(entry_file.read_text(encoding="utf-8"))
+        parts.append(f"<h2>Joint fit <small>{html.escape(Path(folder).name)}, "
+                     f"{html.escape(entry['created'])}, {entry['seconds']} s</small></h2>")
+        parts.append("<table>" + "".join(
+            f"<tr><th style='text-align:left'>{html.escape(k)}</th><td>{html.escape(str(v))}</td></tr>"
+            for k, v in entry["metrics"].items()) + "</table>")
+        planet = Path(folder) / "planet.fits"
+        tab = Table.read(planet, hdu="PLANET")
+        cols = [("channel", 1, 0), ("wave_mid", 1, 3), ("transit_depth", 1e6, 0),
+                ("transit_depth_error", 1e6, 0), ("eclipse_depth", 1e6, 0),
+                ("eclipse_depth_error", 1e6, 0), ("night_flux", 1e6, 0),
+                ("night_flux_error", 1e6, 0), ("amplitude", 1e6, 0), ("amplitude_error", 1e6, 0),
+                ("offset_deg", 1, 1), ("offset_error_deg", 1, 1), ("rms_over_expected", 1, 3)]
+        parts.append("<h3>Planet per channel (ppm, degrees; channel -1 = white band)</h3>"
+                     + _html_table(tab, cols))
+        try:
+            alone = Table.read(planet, hdu="ALONE")
+            cons = Table.read(planet, hdu="CONSISTENCY")
+        except (KeyError, ValueError):
+            alone = cons = None
+        if alone is not None:
+            a_cols = [("name", None, 0), ("channel", 1, 0), ("transit_depth", 1e6, 0),
+                      ("transit_depth_error", 1e6, 0), ("eclipse_depth", 1e6, 0),
+                      ("eclipse_depth_error", 1e6, 0), ("night_flux", 1e6, 0),
+                      ("night_flux_error", 1e6, 0), ("amplitude", 1e6, 0),
+                      ("amplitude_error", 1e6, 0), ("offset_deg", 1, 1),
+                      ("offset_deg_error", 1, 1)]
+            white = alone[alone["channel"] == -1]
+            parts.append("<h3>Each visit alone beside the joint fit (white band; ppm)</h3>"
+                         + _html_table(white, a_cols, joint_row=True))
+            wc = cons[cons["channel"] == -1]
+            parts.append("<h3>Consistency of the visits with the joint fit (white band)</h3>"
+                         + _html_table(wc, [("quantity", None, 0), ("chi2", 1, 2),
+                                            ("n_visits", 1, 0)]))
+        for name in entry["figures"]:
+            png = Path(folder) / name
+            if png.is_file():
+                data = base64.b64encode(png.read_bytes()).decode("ascii")
+                parts.append(f"<h3>{html.escape(name)}</h3><img alt=\"{html.escape(name)}\" "
+                             f"src=\"data:image/png;base64,{data}\">")
+        links = ", ".join(f"<a href=\"{html.escape(Path(folder).name)}/{html.escape(n)}\">"
+                          f"{html.escape(n)}</a>" for n in entry["outputs"])
+        parts.append(f"<p>Products: {links}</p>")
+    page = (f"<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            f"<title>lightledger programme: {html.escape(prog.name)}</title>"
+            f"<style>{_STYLE}</style></head><body>" + "\n".join(parts) + "</body></html>\n")
+    path = notebook / "programme.html"
+    with atomic_path(path) as tmp:
+        tmp.write_text(page, encoding="utf-8")
+    return path
+
+
+def _relpath(target, start):
+    import os
+    return os.path.relpath(target, start)
+
+
+def _html_table(tab, cols, joint_row=False):
+    head = "".join(f"<th>{html.escape(c)}</th>" for c, _, _ in cols)
+    rows = []
+    for r in tab:
+        cls = " class='joint'" if joint_row and int(r["visit"]) == -1 else ""
+        cells = "".join(f"<td>{html.escape(str(r[c])) if s is None else _fmt(r[c], s, d)}</td>"
+                        for c, s, d in cols)
+        rows.append(f"<tr{cls}>{cells}</tr>")
+    return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
+
+
+# --------------------------------------------------------------------------
+# Running a programme
+# --------------------------------------------------------------------------
+
+@dataclass
+class ProgrammeResult:
+    """What a programme's reduction did."""
+
+    ok: bool
+    final: Path | None
+    page: Path | None
+    ran: list = field(default_factory=list)        # task families that ran
+    ran_tasks: list = field(default_factory=list)  # (family, visit or programme file)
+    messages: list = field(default_factory=list)
+
+
+def _supersede(folders, stamp):
+    for folder in folders:
+        if folder.exists():
+            folder.rename(folder.with_name(f"{folder.name}.superseded-{stamp}"))
+
+
+def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), progress=None,
+                     scheduler=None):
+    """Reduce every visit of a programme and fit them jointly.
+
+    Parameters
+    ----------
+    path : str or Path
+        Programme description.
+    settings : list of (stage, key, value)
+        ``--set`` overrides: ``joint.*`` for the joint stage, the others for
+        every visit.
+    workers : int
+        Luigi workers.
+    until : str, optional
+        ``calibrate``, ``extract`` or ``bin`` to stop every visit there
+        (``detrend`` or None: the joint fit).
+    force : list of str
+        Stages to run again in every visit (the joint fit is then run again
+        too).
+    progress : callable, optional
+        ``progress(stage, what, done, total)``.
+    scheduler : (host, port), optional
+        A central ``luigid`` scheduler.
+
+    Returns
+    -------
+    ProgrammeResult
+    """
+    from .rawio import inventory
+    from .run import stage_task
+
+    settings_text = settings_to_text(settings)
+    prog = load_programme(path, settings)
+    _, visit_text = _split_settings(settings_text)
+    visits = [visit_config(v, visit_text) for v in prog.visits]
+    for visit in visits:
+        if not inventory(visit.raw, visit.profile):
+            raise LightledgerError(f"{visit.raw}: the visit holds no exposures")
+    if workers < 1:
+        raise LightledgerError("--workers must be at least 1")
+    if force:
+        stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S")
+        first = min(STAGE_ORDER.index(s) for s in force)
+        _supersede([stage_dir(v, s) for v in visits for s in STAGE_ORDER[first:]], stamp)
+        _supersede([joint_dir(prog, settings_text)], stamp)
+    if until in ("calibrate", "extract", "bin"):
+        tasks = [stage_task(until, v.path, visit_text) for v in visits]
+    else:
+        tasks = [JointDetrend(programme=str(prog.path), settings=settings_text)]
+    failure_dirs = [Path(v.notebook) / ".failures" for v in visits] + [prog.notebook / ".failures"]
+    for folder in failure_dirs:
+        if folder.exists():
+            shutil.rmtree(folder)
+    PROGRESS["callback"] = progress
+    logging.getLogger("luigi-interface").setLevel(logging.CRITICAL)
+    kwargs = dict(workers=workers, detailed_summary=True, log_level="CRITICAL")
+    if scheduler:
+        config = luigi.configuration.get_config()
+        config.set("worker", "keep_alive", "true")
+        config.set("worker", "wait_interval", "1.0")
+        kwargs.update(scheduler_host=scheduler[0], scheduler_port=scheduler[1])
+    else:
+        kwargs.update(local_scheduler=True)
+    try:
+        summary = luigi.build(tasks, **kwargs)
+    finally:
+        PROGRESS.pop("callback", None)
+    from luigi.execution_summary import _partition_tasks
+
+    done = _partition_tasks(summary.worker)["completed"]
+    ran_tasks = sorted((t.task_family, str(getattr(t, "visit", getattr(t, "programme", ""))))
+                       for t in done)
+    messages = []
+    for folder in failure_dirs:
+        if folder.exists():
+            for file in sorted(folder.glob("*.txt")):
+                text = file.read_text().rstrip()
+                if text not in messages:
+                    messages.append(text)
+    ok = all(t.complete() for t in tasks)
+    if not ok and not messages:
+        messages.append(f"lightledger: error: the reduction did not complete ({summary.status})")
+    from .notebook import write_page
+    for visit in visits:
+        write_page(visit.notebook)
+    page = None
+    final = None
+    if isinstance(tasks[0], JointDetrend):
+        page = write_programme_page(prog, joint_dir(prog, settings_text))
+        final = tasks[0].final_product() if ok else None
+    elif ok:
+        final = tasks[-1].final_product()
+    return ProgrammeResult(ok=ok, final=final, page=page, ran=sorted(f for f, _ in ran_tasks),
+                           ran_tasks=ran_tasks, messages=messages)
