@@ -243,8 +243,14 @@ def _designs(prep, shapes_by_visit):
     return out
 
 
-def _solve(prep, des, planet, fit_rp, fit_pl, max_iter=60, derivatives=False):
-    """Gauss-Newton on (a_1..a_V, c, rp); returns a dict of the solution."""
+def _solve(prep, des, planet, fit_rp, fit_pl, max_iter=60, derivatives=False, cache=None,
+           start=None):
+    """Gauss-Newton on (a_1..a_V, c, rp); returns a dict of the solution.
+
+    ``cache`` maps a radius ratio to the visits' event shapes (shared between
+    the fits of a shape search); ``start`` is an earlier solution's (c, rp) to
+    start from.
+    """
     h = planet.harmonics
     n_c = 1 + 2 * h
     ks = [d["B"].shape[1] for d in des]
@@ -259,9 +265,19 @@ def _solve(prep, des, planet, fit_rp, fit_pl, max_iter=60, derivatives=False):
     eph = planet.ephemeris
     times = [p.data.inputs.time for p in prep]
 
-    def shapes(rp):
-        return [event_shapes(t, eph, rp, planet.u1, planet.u2, state=p.state)
-                for t, p in zip(times, prep)]
+    cache = {} if cache is None else cache
+
+    def shapes(rp, derivatives=False):
+        key = (rp, derivatives or not fit_rp)
+        full = (rp, True)
+        if full in cache:
+            return cache[full]
+        if key not in cache:
+            if len(cache) > 64:
+                cache.clear()
+            cache[key] = [event_shapes(t, eph, rp, planet.u1, planet.u2, state=p.state,
+                                       derivatives=key[1]) for t, p in zip(times, prep)]
+        return cache[key]
 
     def evaluate(a, c, sh):
         out = []
@@ -279,7 +295,7 @@ def _solve(prep, des, planet, fit_rp, fit_pl, max_iter=60, derivatives=False):
 
     # Linearised start: the star level and systematics with the planet's flux at 0,
     # then the planet's coefficients with the systematics held.
-    rp = float(planet.rp_rs)
+    rp = float(planet.rp_rs) if start is None or not fit_rp else float(start[1])
     sh = shapes(rp)
     a = np.zeros(n_a)
     for j in range(len(prep)):
@@ -288,7 +304,9 @@ def _solve(prep, des, planet, fit_rp, fit_pl, max_iter=60, derivatives=False):
         coef, _ = weighted_lstsq(Bu[j] * E0[:, None], fu[j], wu[j])
         a[offsets[j]:offsets[j + 1]] = coef
     c = np.zeros(n_c)
-    if fit_pl:
+    if fit_pl and start is not None:
+        c = np.array(start[0], dtype=float)
+    elif fit_pl:
         A = np.concatenate([(Bu[j] @ a[offsets[j]:offsets[j + 1]])[:, None] * Pu[j]
                             * sh[j].visible[rows[j]][:, None] for j in range(len(prep))])
         y = np.concatenate([fu[j] - (Bu[j] @ a[offsets[j]:offsets[j + 1]])
@@ -296,6 +314,8 @@ def _solve(prep, des, planet, fit_rp, fit_pl, max_iter=60, derivatives=False):
         c, _ = weighted_lstsq(A, y, np.concatenate(wu))
 
     def jacobian(a, c, rp, sh, with_shape_derivs=False):
+        if fit_rp:
+            sh = shapes(rp, derivatives=True)
         blocks = []
         for j, (S, E, Fp) in enumerate(evaluate(a, c, sh)):
             r = rows[j]
@@ -342,7 +362,7 @@ def _solve(prep, des, planet, fit_rp, fit_pl, max_iter=60, derivatives=False):
         gain = chi_now - chi_t
         chi_now = chi_t
         size = np.max(np.abs(lam * step) / np.maximum(np.abs(params_now), 1e-300))
-        if size < 1e-12 or gain < 1e-9 * max(chi_now, 1.0) and size < 1e-8:
+        if size < 1e-10 or gain < 1e-12 * max(chi_now, 1.0) and size < 1e-7:
             break
     J = jacobian(a, c, rp, sh, with_shape_derivs=derivatives)
     _, cov = weighted_lstsq(J, np.zeros(J.shape[0]), w_all)
@@ -427,9 +447,15 @@ def fit_joint(visits, planet, *, max_iter=60):
         def __init__(self, sol, des):
             self.sol, self.des, self.chi2 = sol, des, sol["chi2"]
 
+    cache = {}
+    last = []
+
     def evaluate(values, derivatives=False):
         des = _designs(prep, split(values))
-        return _Eval(_solve(prep, des, planet, fit_rp, fit_pl, max_iter, derivatives), des)
+        sol = _solve(prep, des, planet, fit_rp, fit_pl, max_iter, derivatives, cache,
+                     start=last[-1] if last else None)
+        last[:] = [(sol["c"], sol["rp"])]
+        return _Eval(sol, des)
 
     search = search_shapes(evaluate, params)
     best = search.result

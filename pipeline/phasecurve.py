@@ -98,8 +98,9 @@ class EventShapes:
         :math:`\\lambda`, fraction of the star's flux hidden (transits).
     visible : ndarray of float, shape (n,)
         :math:`v`, fraction of the planet's disk seen (eclipses).
-    d_blocked, d_visible : ndarray of float, shape (n,)
-        Their derivatives with respect to the radius ratio.
+    d_blocked, d_visible : ndarray of float, shape (n,) or None
+        Their derivatives with respect to the radius ratio (None when not
+        asked for).
     angle : ndarray of float, shape (n,)
         Orbital angle from transit, radians.
     """
@@ -111,7 +112,7 @@ class EventShapes:
     angle: np.ndarray
 
 
-def event_shapes(time, ephemeris, rp_rs, u1, u2, *, state=None):
+def event_shapes(time, ephemeris, rp_rs, u1, u2, *, state=None, derivatives=True):
     """Transit and eclipse shapes and their radius-ratio derivatives.
 
     Parameters
@@ -125,6 +126,8 @@ def event_shapes(time, ephemeris, rp_rs, u1, u2, *, state=None):
         Quadratic limb darkening of the star.
     state : OrbitState, optional
         The orbit at ``time`` when already computed.
+    derivatives : bool, optional
+        Compute the radius-ratio derivatives (else they are None).
 
     Returns
     -------
@@ -160,6 +163,9 @@ def event_shapes(time, ephemeris, rp_rs, u1, u2, *, state=None):
         return blocked, 1.0 - hidden
 
     b0, v0 = shapes(float(rp_rs))
+    if not derivatives:
+        return EventShapes(blocked=b0, visible=v0, d_blocked=None, d_visible=None,
+                           angle=st.angle)
     bp, vp = shapes(float(rp_rs) + h)
     bm, vm = shapes(max(float(rp_rs) - h, 0.0))
     step = float(rp_rs) + h - max(float(rp_rs) - h, 0.0)

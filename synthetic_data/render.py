@@ -31,7 +31,7 @@ from .sizes import resolve_size
 from .scenarios import SCENARIOS, Scenario, get_scenario
 from .truth import write_truth
 
-__all__ = ["render", "simulate_reads", "SCENARIOS"]
+__all__ = ["render", "simulate_reads", "programme_models", "SCENARIOS"]
 
 
 def simulate_reads(expected, *, rng, bias, nonlinearity, gain, read_noise, full_well,
@@ -336,19 +336,23 @@ def _visit_scenarios(sc):
             for folder, centre, overrides in sc.visits]
 
 
-def _render_programme(sc, out, *, seed, n_exposures, progress):
-    """Render the visits of a programme sharing one planet and one set of calibration files.
+def programme_models(sc, *, seed=0, n_exposures=None):
+    """The noise-free plans of a programme's visits: one planet, shared reference files.
 
     The first visit is centred on its event (an eclipse or a transit) as a
     single visit would be; the planet's ephemeris follows from it, and each
     later visit starts so that the next event of its kind after the
     previous visit falls at its centre.
+
+    Returns
+    -------
+    list of (str, VisitModel)
+        Each visit's folder name and model, in order.
     """
-    visits = _visit_scenarios(sc)
     models = []
     t0 = None
     anchor = None            # (UTC start, BJD_TDB centre) of the previous visit
-    for index, (folder, centre, vsc) in enumerate(visits):
+    for index, (folder, centre, vsc) in enumerate(_visit_scenarios(sc)):
         if anchor is not None:
             eph = vm.ephemeris_of(vsc, t0)
             times = (orbit.transit_times_in if centre == "transit" else orbit.eclipse_times_in)(
@@ -356,30 +360,36 @@ def _render_programme(sc, out, *, seed, n_exposures, progress):
             begin = Time(anchor[0], scale="utc") + TimeDelta((times[0] - anchor[1]) * 86400.0,
                                                              format="sec")
             vsc = dataclasses.replace(vsc, date_beg=begin.isot)
-        probe = vm.build_visit(vsc, seed=seed, n_exposures=n_exposures, stream=index,
-                               refs=models[0].refs if models else None, t0=0.0)
+        refs = models[0][1].refs if models else None
+        probe = vm.build_visit(vsc, seed=seed, n_exposures=n_exposures, stream=index, refs=refs,
+                               t0=0.0)
         centre_bjd = _centre_bjd(probe)
         if t0 is None:
-            eph0 = vm.ephemeris_of(vsc, 0.0)
-            lag = orbit.eclipse_time(eph0) if centre == "eclipse" else 0.0
+            lag = orbit.eclipse_time(vm.ephemeris_of(vsc, 0.0)) if centre == "eclipse" else 0.0
             t0 = round(centre_bjd - lag, 6)
         model = vm.build_visit(vsc, seed=seed, n_exposures=n_exposures, stream=index,
-                               refs=models[0].refs if models else None, t0=t0)
-        models.append(model)
+                               refs=probe.refs, t0=t0)
+        models.append((folder, model))
         anchor = (vsc.date_beg, centre_bjd)
-    total = sum(m.n_exposures for m in models)
-    _write_calibration(models[0], out)
-    _write_profile(models[0], out / "instrument.toml")
+    return models
+
+
+def _render_programme(sc, out, *, seed, n_exposures, progress):
+    """Render the visits of a programme sharing one planet and one set of calibration files."""
+    models = programme_models(sc, seed=seed, n_exposures=n_exposures)
+    total = sum(m.n_exposures for _, m in models)
+    _write_calibration(models[0][1], out)
+    _write_profile(models[0][1], out / "instrument.toml")
     done = 0
     paths = []
-    for (folder, _, _), model in zip(visits, models):
+    for folder, model in models:
         vdir = out / folder
         done = _write_exposures(model, vdir, progress, done, total)
         tr = write_truth(model, vdir / "truth.fits")
         _write_visit(model, vdir / "visit.toml", tr["wdepth"], profile="../instrument.toml")
         paths.append(f"{folder}/visit.toml")
     programme = out / "programme.toml"
-    _write_programme(sc, models[0], programme, paths)
+    _write_programme(sc, models[0][1], programme, paths)
     return programme
 
 
