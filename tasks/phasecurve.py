@@ -130,13 +130,17 @@ DAYNIGHT_COLUMNS = {
     "night_error": ("", "1-sigma error of night_flux"),
 }
 
+def _err_name(name):
+    return "offset_error_deg" if name == "offset_deg" else f"{name}_error"
+
+
 #: ALONE: every visit fitted by itself, and the joint fit (visit = -1).
 ALONE_COLUMNS = {
     "visit": ("", "visit number; -1 = the joint fit"),
     "name": ("", "visit name"),
     "channel": ("", "channel number; -1 = the white band"),
     **{name: ("deg" if name == "offset_deg" else "", text) for name, text in QUANTITIES},
-    **{f"{name}_error": ("deg" if name == "offset_deg" else "", f"1-sigma error of {name}")
+    **{_err_name(name): ("deg" if name == "offset_deg" else "", f"1-sigma error of {name}")
        for name, _ in QUANTITIES},
 }
 
@@ -330,7 +334,7 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
                 for qname, _ in QUANTITIES:
                     row[qname] = quantity(fa, qname)[0]
                 for qname, _ in QUANTITIES:
-                    row[f"{qname}_error"] = quantity(fa, qname)[1]
+                    row[_err_name(qname)] = quantity(fa, qname)[1]
                 rows.append(row)
             for qname, (chi2, n) in consistency(fits_alone, jf).items():
                 crow.append({"channel": j, "quantity": qname, "chi2": chi2, "n_visits": n})

@@ -354,6 +354,8 @@ _STYLE = ("body{font-family:sans-serif;max-width:1100px;margin:1em auto;color:#2
 
 
 def _fmt(x, scale=1.0, digits=1):
+    if np.ma.is_masked(x):
+        return ""
     try:
         v = float(x) * scale
     except (TypeError, ValueError):
@@ -410,7 +412,7 @@ def write_programme_page(prog, folder):
                       ("eclipse_depth_error", 1e6, 0), ("night_flux", 1e6, 0),
                       ("night_flux_error", 1e6, 0), ("amplitude", 1e6, 0),
                       ("amplitude_error", 1e6, 0), ("offset_deg", 1, 1),
-                      ("offset_deg_error", 1, 1)]
+                      ("offset_error_deg", 1, 1)]
             white = alone[alone["channel"] == -1]
             parts.append("<h3>Each visit alone beside the joint fit (white band; ppm)</h3>"
                          + _html_table(white, a_cols, joint_row=True))

@@ -1,0 +1,160 @@
+"""End to end: a programme of two visits (phase-pair) rendered, reduced and fitted jointly.
+
+A small render (4 orbits of 6 exposures per visit, four channels) keeps the suite
+fast; the scenarios at their default sizes are the benchmark's
+(tests/benchmarks/bench_phase.py).  Sources: the forward model's truth (never read
+by the reducer), the FITS standard and checksum convention (check_products in
+conftest.py), Luigi's own record of the tasks it ran.
+"""
+
+import re
+import shutil
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+from astropy.io import fits
+from astropy.table import Table
+
+pytestmark = pytest.mark.slow
+
+EDGES = [1.15, 1.3, 1.4, 1.5, 1.65]
+SETTINGS = [("bin", "edges", tuple(EDGES))]
+
+
+@pytest.fixture(scope="module")
+def pair(tmp_path_factory):
+    from lightledger.synthetic_data.render import render
+    from lightledger.tasks.programme import reduce_programme
+
+    out = tmp_path_factory.mktemp("phase-pair")
+    programme = render("phase-pair", out, seed=2, n_orbits=4, n_exposures=4 * 6)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        result = reduce_programme(programme, settings=SETTINGS, workers=1)
+    assert result.ok, "\n".join(result.messages)
+    return out, programme, result
+
+
+def test_programme_products_pages_and_truth(pair, science):
+    # Products: valid FITS with checksums (check_products: FITS Standard 4.0, checksum
+    # convention, fitsverify), every phase-curve column documented in the README, the
+    # programme page linking each visit's page.  Science against the truth (truth.py):
+    # the white day side and night side within 3 sigma, and the detrended eclipse visit
+    # (flux over the systematics alone, star alone = 1) keeping the injected
+    # astrophysical signal: it follows the truth with a correlation above 0.9 and an rms
+    # difference below 2.5 times the noise (the fitted trend shares the phase curve's
+    # uncertainty; a curve with the planet's variation divided out misses by the 1300 ppm
+    # signal itself), with a mean offset within 3 times the noise (the star alone is 1).
+    from lightledger.tasks import phasecurve
+
+    out, programme, result = pair
+    families = {f for f, _ in result.ran_tasks}
+    assert {"Calibrate", "Extract", "Bin", "JointDetrend"} <= families
+    assert "Detrend" not in families            # the joint fit replaces the visits' detrend
+    folder = Path(result.final).parent
+    names = [h.name for h in fits.open(result.final)]
+    for ext in ("PLANET", "DAYNIGHT", "PHASEBINS", "ALONE", "CONSISTENCY", "PHASE_WHITE",
+                "PHASE_00", "PHASE_03"):
+        assert ext in names
+    for stem in ("detrended-1", "detrended-2", "planet", "daynight", "phasebins", "alone",
+                 "consistency", "phasecurve-white", "phasecurve-03"):
+        assert (folder / f"{stem}.fits").is_file() or (folder / f"{stem}.ecsv").is_file()
+    for fig in ("phasecurve.png", "phasecurve-channels.png", "phasespectra.png", "residuals.png"):
+        assert (folder / fig).stat().st_size > 10_000
+    problems = science.check_products(out / "notebook")
+    for visit in ("visit-eclipse", "visit-transit"):
+        problems += science.check_products(out / visit / "notebook")
+    assert not problems, "\n".join(problems[:20])
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    for table in (phasecurve.DETRENDED_COLUMNS, phasecurve.PLANET_COLUMNS,
+                  phasecurve.PHASE_COLUMNS, phasecurve.BIN_COLUMNS, phasecurve.DAYNIGHT_COLUMNS,
+                  phasecurve.ALONE_COLUMNS, phasecurve.CONSISTENCY_COLUMNS):
+        assert [c for c in table if f"`{c}`" not in readme] == []
+
+    page = result.page.read_text(encoding="utf-8")
+    for link in re.findall(r'href="([^"]+index\.html)"', page):
+        assert (result.page.parent / link).is_file()
+    assert page.count("index.html") == 2 and "Consistency" in page
+
+    planet = Table.read(result.final, hdu="PLANET")
+    white = planet[planet["channel"] == -1][0]
+    head = fits.getheader(out / "visit-eclipse" / "truth.fits", "CHANNELS")
+    for col, key in (("eclipse_depth", "WECLIPSE"), ("night_flux", "WNIGHT")):
+        pull = (white[col] - head[key]) / white[f"{col}_error"]
+        assert abs(pull) < 3, (col, white[col], head[key], white[f"{col}_error"])
+
+    det = Table.read(folder / "detrended-1.fits", hdu="DETRENDED")
+    truth = Table.read(out / "visit-eclipse" / "truth.fits", hdu="EXPOSURES")
+    used = np.asarray(det["used"], bool)
+    d = np.asarray(det["white_detrended"])[used]
+    a = np.asarray(truth["white_astro"])[used]
+    noise = np.sqrt(np.mean(np.asarray(det["white_detrended_error"])[used] ** 2))
+    assert np.corrcoef(d, a)[0, 1] > 0.9
+    assert np.sqrt(np.mean((d - a) ** 2)) < 2.5 * noise
+    assert abs(np.mean(d - a)) < 3 * noise
+
+
+def test_single_phase_curve_visit(pair):
+    # A visit of kind phase-curve reduced alone runs the detrend stage's full-orbit fit on
+    # the products the programme made (Luigi ran only Detrend), with the same products.
+    from lightledger.tasks.run import reduce_visit
+
+    out, _, _ = pair
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        result = reduce_visit(out / "visit-eclipse" / "visit.toml", settings=SETTINGS)
+    assert result.ok, "\n".join(result.messages)
+    assert result.ran == ["Detrend"]
+    assert Path(result.final).name == "planet.fits"
+    planet = Table.read(result.final, hdu="PLANET")
+    assert len(planet) == len(EDGES)        # the white band and four channels
+    assert np.isnan(np.ma.filled(planet["transit_depth_error"][0], np.nan))   # no transit in it
+    assert (Path(result.final).parent / "detrended.fits").is_file()
+
+
+def test_programme_errors_are_one_line(pair, tmp_path, capsys):
+    # A user's mistake: one line naming the file and what is wrong, exit status 2
+    # (the project's rule for bad input).
+    from lightledger.tasks.cli import main
+
+    out, programme, _ = pair
+    bad = tmp_path / "programme.toml"
+    text = programme.read_text()
+    bad.write_text(text.replace('"visit-eclipse/visit.toml"', f'"{out}/no-such/visit.toml"'))
+    assert main(["reduce", str(bad)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "programme.visits names" in err[0] and str(bad) in err[0]
+    bad.write_text(text.replace("eccentricity =", "eccentricty ="))
+    assert main(["reduce", str(bad)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "planet.eccentricty" in err and "did you mean" in err
+
+
+def test_tweak_of_one_visit_reruns_its_later_stages_and_the_joint_fit(pair):
+    # Luigi's record of the tasks it ran: after a change to one visit's extraction, that
+    # visit's extraction (reference, chunks, join), its binning and the joint fit run,
+    # and nothing of the other visit or of either calibration.
+    from lightledger.tasks.programme import reduce_programme
+
+    out, programme, _ = pair
+    visit = out / "visit-transit" / "visit.toml"
+    text = visit.read_text()
+    visit.write_text(text.replace("[stages.extract]\n", "[stages.extract]\nclip_threshold = 4.5\n"))
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            result = reduce_programme(programme, settings=SETTINGS, workers=1)
+        assert result.ok, "\n".join(result.messages)
+        ran = result.ran_tasks
+        assert {f for f, _ in ran} == {"ExtractReference", "ExtractChunk", "Extract", "Bin",
+                                        "JointDetrend"}
+        assert all(v == str(visit.resolve()) for f, v in ran if f != "JointDetrend")
+        assert [v for f, v in ran if f == "JointDetrend"] == [str(programme.resolve())]
+        again = reduce_programme(programme, settings=SETTINGS, workers=1)
+        assert again.ok and again.ran_tasks == []
+    finally:
+        visit.write_text(text)
+    shutil.rmtree(out / "visit-transit" / "notebook" / ".failures", ignore_errors=True)
