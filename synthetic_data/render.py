@@ -336,7 +336,7 @@ def _visit_scenarios(sc):
             for folder, centre, overrides in sc.visits]
 
 
-def programme_models(sc, *, seed=0, n_exposures=None):
+def programme_models(sc, *, seed=0, n_exposures=None, ramps="exponential"):
     """The noise-free plans of a programme's visits: one planet, shared reference files.
 
     The first visit is centred on its event (an eclipse or a transit) as a
@@ -368,15 +368,15 @@ def programme_models(sc, *, seed=0, n_exposures=None):
             lag = orbit.eclipse_time(vm.ephemeris_of(vsc, 0.0)) if centre == "eclipse" else 0.0
             t0 = round(centre_bjd - lag, 6)
         model = vm.build_visit(vsc, seed=seed, n_exposures=n_exposures, stream=index,
-                               refs=probe.refs, t0=t0)
+                               refs=probe.refs, t0=t0, ramps=ramps)
         models.append((folder, model))
         anchor = (vsc.date_beg, centre_bjd)
     return models
 
 
-def _render_programme(sc, out, *, seed, n_exposures, progress):
+def _render_programme(sc, out, *, seed, n_exposures, progress, ramps="exponential"):
     """Render the visits of a programme sharing one planet and one set of calibration files."""
-    models = programme_models(sc, seed=seed, n_exposures=n_exposures)
+    models = programme_models(sc, seed=seed, n_exposures=n_exposures, ramps=ramps)
     total = sum(m.n_exposures for _, m in models)
     _write_calibration(models[0][1], out)
     _write_profile(models[0][1], out / "instrument.toml")

@@ -227,6 +227,8 @@ def event_coverage(visit, refs):
     from .detrend import event_template
 
     event, target = visit.event, visit.target
+    if event.get("kind") == "phase-curve":
+        return None      # the full-orbit fit takes whatever transits and eclipses the visit holds
     if any(event.get(k) is None for k in ("kind", "t0", "period", "duration", "rp_rs", "a_rs",
                                           "inclination")) \
             or target.get("ra") is None or target.get("dec") is None or not refs:

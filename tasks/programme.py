@@ -52,8 +52,9 @@ from lightledger.pipeline.orbit import Ephemeris
 from lightledger.pipeline.parameters import STAGE_ORDER, STAGES, resolve
 
 from .base import ENTRY_NAME, PROGRESS, file_digest, settings_from_text, settings_to_text, \
-    stage_dir, stage_identity, visit_config
-from .config import Key, _check, _read_toml
+    visit_config
+from .config import Key, _check, read_toml
+from .problems import Problems
 from .products import Provenance, atomic_path, relative_input, write_json
 
 __all__ = ["PROGRAMME_SCHEMA", "Programme", "load_programme", "is_programme", "JointDetrend",
@@ -121,53 +122,63 @@ def load_programme(path, settings=None):
     Raises
     ------
     ConfigError
-        One line naming the file and the key (or the visit) for any problem.
+        Every problem of the description, one line each naming the file and
+        the key (or the visit).
     """
     path = Path(path).resolve()
-    doc = dict(_read_toml(path, "programme description"))
+    problems = Problems()
+    doc = read_toml(path, "programme description", problems)
+    problems.raise_errors(ConfigError)
+    doc = dict(doc)
     table = doc.get("programme")
-    if not isinstance(table, dict):
-        raise ConfigError(f"{path}: missing table [programme]")
-    table = dict(table)
-    visits = table.pop("visits", None)
-    doc["programme"] = table
+    visits = None
+    if isinstance(table, dict):
+        table = dict(table)
+        visits = table.pop("visits", None)
+        doc["programme"] = table
+    doc = _check(doc, PROGRAMME_SCHEMA, path, problems)
+    files = []
     if not isinstance(visits, list) or not visits or not all(isinstance(v, str) and v
                                                              for v in visits):
-        raise ConfigError(f"{path}: programme.visits must be a non-empty list of visit "
-                          "description paths")
-    doc = _check(doc, PROGRAMME_SCHEMA, path)
-    files = []
+        problems.error(path, "programme.visits must be a non-empty list of visit description "
+                             "paths")
+        visits = []
     for rel in visits:
         file = (path.parent / rel).resolve()
         if not file.is_file():
-            raise ConfigError(f"{path}: programme.visits names {rel}, which does not exist")
-        if file in files:
-            raise ConfigError(f"{path}: programme.visits lists {rel} twice")
-        files.append(file)
-    for file in files:
-        visit_config(file, settings_to_text([s for s in settings or () if s[0] != "joint"]))
-    planet = dict(doc["planet"])
+            problems.error(path, f"programme.visits names {rel}, which does not exist")
+        elif file in files:
+            problems.error(path, f"programme.visits lists {rel} twice")
+        else:
+            files.append(file)
+    planet = dict(doc.get("planet") or {})
     for key, default in (("u1", 0.0), ("u2", 0.0), ("eccentricity", 0.0), ("omega", 90.0)):
-        planet[key] = default if planet[key] is None else planet[key]
-    try:
-        Ephemeris(planet["t0"], planet["period"], planet["a_rs"], planet["inclination"],
-                  planet["eccentricity"], planet["omega"])
-        if planet["rp_rs"] <= 0:
-            raise ParameterError(f"rp_rs must be > 0; got {planet['rp_rs']}")
-    except ParameterError as exc:
-        raise ConfigError(f"{path}: planet.{exc}") from None
-    overrides = dict(doc["stages"].get("joint", {}) or {})
+        planet[key] = default if planet.get(key) is None else planet[key]
+    if all(planet.get(k) is not None for k in ("t0", "period", "a_rs", "inclination", "rp_rs")):
+        try:
+            Ephemeris(planet["t0"], planet["period"], planet["a_rs"], planet["inclination"],
+                      planet["eccentricity"], planet["omega"])
+            if planet["rp_rs"] <= 0:
+                raise ParameterError(f"rp_rs must be > 0; got {planet['rp_rs']}")
+        except ParameterError as exc:
+            problems.error(path, f"planet.{exc}")
+    overrides = dict((doc.get("stages") or {}).get("joint", {}) or {})
     for stage, key, value in settings or ():
         if stage == "joint":
             overrides[key] = value
+    params = None
     try:
         params = resolve("joint", overrides, where=str(path))
+        edges = np.asarray(params["phase_bins"], float)
+        if edges.size < 2 or np.any(np.diff(edges) <= 0):
+            problems.error(path, "stages.joint.phase_bins must be at least two increasing "
+                                 "phases within [0, 1]")
     except ParameterError as exc:
-        raise ConfigError(str(exc)) from None
-    edges = np.asarray(params["phase_bins"], float)
-    if edges.size < 2 or np.any(np.diff(edges) <= 0):
-        raise ConfigError(f"{path}: stages.joint.phase_bins must be at least two increasing "
-                          "phases within [0, 1]")
+        problems.error(path, str(exc))
+    problems.raise_errors(ConfigError)
+    visit_text = settings_to_text([s for s in settings or () if s[0] != "joint"])
+    for file in files:
+        visit_config(file, visit_text)       # each visit's own problems, one error
     notebook = doc["programme"]["notebook"] or path.parent / "notebook"
     return Programme(path=path, name=doc["programme"]["name"], notebook=Path(notebook),
                      visits=tuple(files), planet=planet, params=params,
@@ -180,15 +191,17 @@ def _split_settings(settings_text):
     return settings, visit_text
 
 
-def joint_identity(programme, settings_text):
-    """Identity hash (hex) of the programme's joint stage."""
-    _, visit_text = _split_settings(settings_text)
+def joint_identity(programme, visit_text, bin_identities):
+    """Identity hash (hex) of the programme's joint stage.
+
+    Over the joint stage's version and parameters, the planet, and each visit's
+    ``bin`` identity and detrend parameters (its systematics model).
+    """
     parts = []
-    for file in programme.visits:
+    for file, ident in zip(programme.visits, bin_identities):
         visit = visit_config(file, visit_text)
-        parts.append([stage_identity(visit, "bin"),
-                      sorted((k, list(v) if isinstance(v, tuple) else v)
-                             for k, v in visit.stages["detrend"].items())])
+        parts.append([ident, sorted((k, list(v) if isinstance(v, tuple) else v)
+                                    for k, v in visit.stages["detrend"].items())])
     params = sorted((k, list(v) if isinstance(v, tuple) else v)
                     for k, v in programme.params.items())
     text = json.dumps(["joint", STAGES["joint"].version, params, sorted(programme.planet.items()),
@@ -196,9 +209,9 @@ def joint_identity(programme, settings_text):
     return hashlib.sha256(text.encode()).hexdigest()
 
 
-def joint_dir(programme, settings_text="[]"):
+def joint_dir(programme, visit_text, bin_identities):
     """``NOTEBOOK/joint-IDENT`` folder of a programme."""
-    return programme.notebook / f"joint-{joint_identity(programme, settings_text)[:10]}"
+    return programme.notebook / f"joint-{joint_identity(programme, visit_text, bin_identities)[:10]}"
 
 
 class JointDetrend(luigi.Task):
@@ -207,6 +220,12 @@ class JointDetrend(luigi.Task):
     programme = luigi.Parameter(description="path of the programme description (TOML)")
     settings = luigi.Parameter(default="[]",
                                description="JSON list of [stage, key, value] overrides (--set)")
+    chains = luigi.Parameter(description="JSON list of each visit's bin-stage chain (identities)")
+    force_from = luigi.Parameter(default="", description="first forced stage (--force), or empty")
+    force_after = luigi.FloatParameter(default=0.0,
+                                       description="forced stages older than this are made again")
+    run_id = luigi.Parameter(default="", significant=False,
+                             description="identifier of the reduction that scheduled this task")
 
     stage = "joint"
 
@@ -215,14 +234,21 @@ class JointDetrend(luigi.Task):
         return load_programme(self.programme, settings_from_text(self.settings))
 
     @property
+    def bin_chains(self):
+        return json.loads(self.chains)
+
+    @property
     def folder(self):
-        return joint_dir(self.config, self.settings)
+        _, visit_text = _split_settings(self.settings)
+        return joint_dir(self.config, visit_text, [c.split(":")[-1] for c in self.bin_chains])
 
     def requires(self):
         from .lightcurves import Bin
 
         _, visit_text = _split_settings(self.settings)
-        return [Bin(visit=str(v), settings=visit_text) for v in self.config.visits]
+        return [Bin(visit=str(v), settings=visit_text, chain=c, force_from=self.force_from,
+                    force_after=self.force_after if self.force_from else 0.0, run_id=self.run_id)
+                for v, c in zip(self.config.visits, self.bin_chains)]
 
     def output(self):
         return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
@@ -241,17 +267,14 @@ class JointDetrend(luigi.Task):
             reporter(self.stage, what, done, total)
 
     def on_failure(self, exception):
-        import traceback
+        """Record the reason and exit status for the command line (as the visits' tasks do)."""
+        from .problems import describe_failure
 
-        if isinstance(exception, LightledgerError):
-            text = f"lightledger: error: {exception}"
-        else:
-            text = (f"lightledger: {self.task_family} failed (a bug; please report it):\n"
-                    + "".join(traceback.format_exception(exception)).rstrip())
+        status, text = describe_failure(exception, context=f"{self.programme} (joint stage)")
         try:
-            folder = Path(self.config.notebook) / ".failures"
+            folder = Path(self.config.notebook) / ".failures" / (self.run_id or "by-hand")
             folder.mkdir(parents=True, exist_ok=True)
-            (folder / f"{self.task_id}.txt").write_text(text + "\n", encoding="utf-8")
+            (folder / f"{self.task_id}.txt").write_text(f"{status}\n{text}\n", encoding="utf-8")
         except Exception:
             pass
         return super().on_failure(exception)
@@ -267,6 +290,7 @@ class JointDetrend(luigi.Task):
         _, visit_text = _split_settings(self.settings)
         visits = [visit_config(v, visit_text) for v in prog.visits]
         inputs = [task.final_product() for task in self.requires()]
+        self.folder.mkdir(parents=True, exist_ok=True)
         lcs, curves, channels = [], [], None
         event = dict(prog.planet, kind="phase-curve")
         for visit, path in zip(visits, inputs):
@@ -311,10 +335,10 @@ class JointDetrend(luigi.Task):
             errs = [quantity(a, "eclipse_depth")[1] for a in w]
             metrics["white eclipse depth error, best visit alone (ppm)"] = (
                 round(float(np.nanmin(errs)) * 1e6, 1) if np.any(np.isfinite(errs)) else None)
-        self._write_entry(prog, visits, inputs, outputs, metrics, figs, started)
+        self._write_entry(prog, inputs, outputs, metrics, figs, started)
         write_programme_page(prog, self.folder)
 
-    def _write_entry(self, prog, visits, inputs, outputs, metrics, figs, started):
+    def _write_entry(self, prog, inputs, outputs, metrics, figs, started):
         try:
             user = getpass.getuser()
         except Exception:
@@ -333,7 +357,7 @@ class JointDetrend(luigi.Task):
             "seconds": round(time.time() - started, 2),
             "params": {k: list(v) if isinstance(v, tuple) else v for k, v in prog.params.items()},
             "overrides": prog.overrides.get("joint", {}),
-            "made_from": [str(stage_dir(v, "bin")) for v in visits],
+            "made_from": [str(Path(p).parent) for p in inputs],
             "inputs": {relative_input(p, self.folder): file_digest(p) for p in inputs},
             "outputs": {Path(p).name: file_digest(p) for p in outputs},
             "metrics": metrics,
@@ -460,7 +484,7 @@ def _html_table(tab, cols, joint_row=False):
 
 @dataclass
 class ProgrammeResult:
-    """What a programme's reduction did."""
+    """What a programme's reduction did (the fields of a visit's RunResult, and the tasks)."""
 
     ok: bool
     final: Path | None
@@ -468,23 +492,20 @@ class ProgrammeResult:
     ran: list = field(default_factory=list)        # task families that ran
     ran_tasks: list = field(default_factory=list)  # (family, visit or programme file)
     messages: list = field(default_factory=list)
-
-
-def _supersede(folders, stamp):
-    for folder in folders:
-        if folder.exists():
-            folder.rename(folder.with_name(f"{folder.name}.superseded-{stamp}"))
+    warnings: list = field(default_factory=list)
+    set_aside: list = field(default_factory=list)
+    status: int = 0
 
 
 def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), progress=None,
-                     scheduler=None):
+                     scheduler=None, warn=None):
     """Reduce every visit of a programme and fit them jointly.
 
     Parameters
     ----------
     path : str or Path
         Programme description.
-    settings : list of (stage, key, value)
+    settings : list of (stage, key, value) or of "STAGE.KEY=VALUE" texts
         ``--set`` overrides: ``joint.*`` for the joint stage, the others for
         every visit.
     workers : int
@@ -493,42 +514,81 @@ def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), prog
         ``calibrate``, ``extract`` or ``bin`` to stop every visit there
         (``detrend`` or None: the joint fit).
     force : list of str
-        Stages to run again in every visit (the joint fit is then run again
+        Stages to make again in every visit (the joint fit is then made again
         too).
     progress : callable, optional
         ``progress(stage, what, done, total)``.
     scheduler : (host, port), optional
         A central ``luigid`` scheduler.
+    warn : callable, optional
+        ``warn(line)`` for each warning of the visits' validation passes.
 
     Returns
     -------
     ProgrammeResult
-    """
-    from .rawio import inventory
-    from .run import stage_task
 
+    Raises
+    ------
+    LightledgerError
+        The programme description's problems, or every problem of the first
+        visit that has any (:func:`lightledger.tasks.check.check_visit`),
+        before any task runs.
+    """
+    import uuid
+
+    from luigi.execution_summary import _partition_tasks
+
+    from .base import VisitTask, make_plan, register_plan
+    from .check import check_visit, parse_settings
+    from .run import _check_force, _status, stage_task, sweep
+
+    started = time.time()
+    settings = parse_settings(settings)
     settings_text = settings_to_text(settings)
     prog = load_programme(path, settings)
     _, visit_text = _split_settings(settings_text)
-    visits = [visit_config(v, visit_text) for v in prog.visits]
-    for visit in visits:
-        if not inventory(visit.raw, visit.profile):
-            raise LightledgerError(f"{visit.raw}: the visit holds no exposures")
+    visit_settings = [s for s in settings if s[0] != "joint"]
+    until = until or STAGE_ORDER[-1]
+    if until not in STAGE_ORDER:
+        raise LightledgerError(f"--until {until}: not a stage; stages are {', '.join(STAGE_ORDER)}")
+    last = "bin" if until == "detrend" else until
+    force_from = _check_force(list(force or ()), until)
     if workers < 1:
         raise LightledgerError("--workers must be at least 1")
-    if force:
-        stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S")
-        first = min(STAGE_ORDER.index(s) for s in force)
-        _supersede([stage_dir(v, s) for v in visits for s in STAGE_ORDER[first:]], stamp)
-        _supersede([joint_dir(prog, settings_text)], stamp)
-    if until in ("calibrate", "extract", "bin"):
-        tasks = [stage_task(until, v.path, visit_text) for v in visits]
+    plans, warnings_, set_aside = [], [], []
+    for file in prog.visits:
+        # each visit's validation pass up to bin: the joint fit replaces its detrend stage
+        report = check_visit(file, visit_settings, until="bin",
+                             progress=None if progress is None else
+                             lambda d, t: progress("check", "exposures read", d, t))
+        for problem in report.warnings:
+            warnings_.append(problem.line)
+            if warn is not None:
+                warn(problem.line)
+        report.raise_errors()
+        visit = visit_config(file, visit_text)
+        plans.append(register_plan(make_plan(visit, visit_text, report.usable,
+                                             inventory=report.refs)))
+        set_aside += [f"{r.label}: {r.reason}" for r in report.set_aside]
+    run_id = uuid.uuid4().hex
+    for plan in plans:
+        Path(plan.visit.notebook).mkdir(parents=True, exist_ok=True)
+        sweep(plan.visit.notebook)
+    prog.notebook.mkdir(parents=True, exist_ok=True)
+    force_after = started if force_from else 0.0
+    if until == "detrend":
+        task = JointDetrend(programme=str(prog.path), settings=settings_text,
+                            chains=json.dumps([p.chain("bin") for p in plans]),
+                            force_from=force_from, force_after=force_after, run_id=run_id)
+        if force_from and task.folder.exists():
+            from .base import supersede
+            supersede(task.folder)
+        tasks = [task]
     else:
-        tasks = [JointDetrend(programme=str(prog.path), settings=settings_text)]
-    failure_dirs = [Path(v.notebook) / ".failures" for v in visits] + [prog.notebook / ".failures"]
-    for folder in failure_dirs:
-        if folder.exists():
-            shutil.rmtree(folder)
+        tasks = [stage_task(last, p, force_from=force_from, force_after=force_after,
+                            run_id=run_id) for p in plans]
+    failure_dirs = [Path(p.visit.notebook) / ".failures" / run_id for p in plans] \
+        + [prog.notebook / ".failures" / run_id]
     PROGRESS["callback"] = progress
     logging.getLogger("luigi-interface").setLevel(logging.CRITICAL)
     kwargs = dict(workers=workers, detailed_summary=True, log_level="CRITICAL")
@@ -543,30 +603,37 @@ def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), prog
         summary = luigi.build(tasks, **kwargs)
     finally:
         PROGRESS.pop("callback", None)
-    from luigi.execution_summary import _partition_tasks
-
-    done = _partition_tasks(summary.worker)["completed"]
+    done = [t for t in _partition_tasks(summary.worker)["completed"]
+            if not isinstance(t, VisitTask) or t.made_by_this_run()]
     ran_tasks = sorted((t.task_family, str(getattr(t, "visit", getattr(t, "programme", ""))))
                        for t in done)
-    messages = []
+    messages, statuses = [], []
     for folder in failure_dirs:
-        if folder.exists():
-            for file in sorted(folder.glob("*.txt")):
-                text = file.read_text().rstrip()
-                if text not in messages:
-                    messages.append(text)
+        if not folder.exists():
+            continue
+        for file in sorted(folder.glob("*.txt")):
+            text = file.read_text(encoding="utf-8").rstrip()
+            status, _, rest = text.partition("\n")
+            if status.isdigit():
+                text = rest
+                statuses.append(int(status))
+            else:
+                statuses.append(2 if text.startswith("lightledger: error:") else 1)
+            if text not in messages:
+                messages.append(text)
+        shutil.rmtree(folder, ignore_errors=True)
     ok = all(t.complete() for t in tasks)
     if not ok and not messages:
         messages.append(f"lightledger: error: the reduction did not complete ({summary.status})")
     from .notebook import write_page
-    for visit in visits:
-        write_page(visit.notebook)
-    page = None
-    final = None
-    if isinstance(tasks[0], JointDetrend):
-        page = write_programme_page(prog, joint_dir(prog, settings_text))
+    for plan in plans:
+        write_page(plan.visit.notebook)
+    page = final = None
+    if until == "detrend":
+        page = write_programme_page(prog, tasks[0].folder)
         final = tasks[0].final_product() if ok else None
     elif ok:
         final = tasks[-1].final_product()
     return ProgrammeResult(ok=ok, final=final, page=page, ran=sorted(f for f, _ in ran_tasks),
-                           ran_tasks=ran_tasks, messages=messages)
+                           ran_tasks=ran_tasks, messages=messages, warnings=warnings_,
+                           set_aside=set_aside, status=0 if ok else _status(statuses))

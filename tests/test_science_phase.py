@@ -1,6 +1,6 @@
 """End to end: a programme of two visits (phase-pair) rendered, reduced and fitted jointly.
 
-A small render (4 orbits of 6 exposures per visit, four channels) keeps the suite
+A small render (3 orbits of 9 exposures per visit, four channels) keeps the suite
 fast; the scenarios at their default sizes are the benchmark's
 (tests/benchmarks/bench_phase.py).  Sources: the forward model's truth (never read
 by the reducer), the FITS standard and checksum convention (check_products in
@@ -19,7 +19,7 @@ from astropy.table import Table
 
 pytestmark = pytest.mark.slow
 
-EDGES = [1.15, 1.3, 1.4, 1.5, 1.65]
+EDGES = [1.31, 1.45, 1.6, 1.78, 1.99]
 SETTINGS = [("bin", "edges", tuple(EDGES))]
 
 
@@ -29,7 +29,7 @@ def pair(tmp_path_factory):
     from lightledger.tasks.programme import reduce_programme
 
     out = tmp_path_factory.mktemp("phase-pair")
-    programme = render("phase-pair", out, seed=2, n_orbits=4, n_exposures=4 * 6)
+    programme = render("phase-pair", out, seed=2, n_orbits=3, n_exposures=3 * 9)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         result = reduce_programme(programme, settings=SETTINGS, workers=1)
@@ -43,10 +43,11 @@ def test_programme_products_pages_and_truth(pair, science):
     # programme page linking each visit's page.  Science against the truth (truth.py):
     # the white day side and night side within 3 sigma, and the detrended eclipse visit
     # (flux over the systematics alone, star alone = 1) keeping the injected
-    # astrophysical signal: it follows the truth with a correlation above 0.9 and an rms
-    # difference below 2.5 times the noise (the fitted trend shares the phase curve's
-    # uncertainty; a curve with the planet's variation divided out misses by the 1300 ppm
-    # signal itself), with a mean offset within 3 times the noise (the star alone is 1).
+    # astrophysical signal: its mean level within 3 times the noise of the truth's (a
+    # curve normalised out of eclipse, with the planet's variation divided out, sits about
+    # 1000 ppm = 12 times the noise away), an rms difference below 4 times the noise (the
+    # fitted systematics of two short orbits carry the phase curve's uncertainty) and a
+    # correlation above 0.9.
     from lightledger.tasks import phasecurve
 
     out, programme, result = pair
@@ -93,7 +94,7 @@ def test_programme_products_pages_and_truth(pair, science):
     a = np.asarray(truth["white_astro"])[used]
     noise = np.sqrt(np.mean(np.asarray(det["white_detrended_error"])[used] ** 2))
     assert np.corrcoef(d, a)[0, 1] > 0.9
-    assert np.sqrt(np.mean((d - a) ** 2)) < 2.5 * noise
+    assert np.sqrt(np.mean((d - a) ** 2)) < 4 * noise
     assert abs(np.mean(d - a)) < 3 * noise
 
 
@@ -115,13 +116,13 @@ def test_single_phase_curve_visit(pair):
     assert (Path(result.final).parent / "detrended.fits").is_file()
 
 
-def test_programme_errors_are_one_line(pair, tmp_path, capsys):
-    # A user's mistake: one line naming the file and what is wrong, exit status 2
-    # (the project's rule for bad input).
+def test_programme_errors_are_one_line(pair, capsys):
+    # A user's mistake: one line per problem naming the file and what is wrong, exit
+    # status 2 (the project's rule for bad input).
     from lightledger.tasks.cli import main
 
     out, programme, _ = pair
-    bad = tmp_path / "programme.toml"
+    bad = out / "bad-programme.toml"
     text = programme.read_text()
     bad.write_text(text.replace('"visit-eclipse/visit.toml"', f'"{out}/no-such/visit.toml"'))
     assert main(["reduce", str(bad)]) == 2
