@@ -682,13 +682,14 @@ class VisitTask(luigi.Task):
             return f"{self.visit} ({where})"
 
     def write_entry(self, path, inputs, outputs, metrics, figures, started, *, extra_seconds=0.0,
-                    warnings=()):
+                    warnings=(), not_applying=None):
         """Write the stage's entry.json (the completion marker), atomically.
 
         ``seconds`` is this task's own time since ``started`` plus ``extra_seconds``
         spent in the stage's other tasks (its chunks).  ``warnings`` are one-line
         strings about results that cannot be trusted (shown on the page and the
-        console).
+        console); ``not_applying`` maps parameters that do not apply to this
+        visit to the reason (the page greys them).
         """
         index = STAGE_ORDER.index(self.stage)
         ids = self.identities
@@ -717,6 +718,7 @@ class VisitTask(luigi.Task):
             "inputs": {relative_input(p, self.folder): self.input_digest(p) for p in inputs},
             "outputs": {Path(p).name: product_digest(p) for p in [*outputs, *figures]},
             "metrics": metrics,
+            "not_applying": {str(k): str(v) for k, v in (not_applying or {}).items()},
             "figures": [Path(f).name for f in figures],
             "warnings": [str(w) for w in warnings],
         }

@@ -1,32 +1,47 @@
 """Comparing two notebook entries or two products.
 
-``compare(A, B)`` takes two stage folders (entries) or two product files of
-the same kind and returns printable lines: the parameter differences, then
-the numerical differences that matter for the light curves:
+``compare(A, B)`` takes two stage folders (entries) or two product files
+(FITS or ECSV) and returns printable lines:
 
-* white-light rms (ppm) of each (point-to-point scatter for a bin product,
-  fit residuals for a detrend product);
-* depths per channel and their difference in units of the combined error
-  (detrend products);
-* light-curve differences, per channel, in units of their errors: the
-  median and the largest ``|a - b| / sqrt(err_a**2 + err_b**2)`` over the
-  exposures (bin and detrend products).
+1. **what they are**: stage, visit, target and event of each; a warning when
+   A and B come from different visits, targets or events (or different raw
+   data of one visit);
+2. **their lineages**: both are walked back to the raw files through the
+   entries they were made from, and every parameter that differs in any
+   stage (and every visit fact a stage used) is listed as
+   ``stage.key: A -> B``;
+3. **the numbers** of every table the two products share:
+
+   * depths: per channel and the white band, A, B and their difference in
+     units of the combined error;
+   * light curves (raw or detrended): per channel and the white band, the
+     out-of-event scatter and the point-to-point scatter (ppm, from the
+     median absolute deviation of successive differences) of each, and
+     the differences between A and B in units of their errors (median,
+     largest) when they have the same exposures; the event comes from the
+     visit's ephemeris as the stages recorded it;
+   * spectra: the per-pixel differences in units of their errors, over all
+     exposures and in ten wavelength ranges;
+   * any other table: the largest difference of each numeric column.
+
+The scatter out of the event, not the rms of the whole light curve, is what
+a tweak of the reduction should be judged by (the event itself, orbit ramps
+and other systematics dominate a raw rms); the point-to-point scatter is
+insensitive to slow trends altogether.
 """
 
 import json
+import warnings
 from pathlib import Path
 
 import numpy as np
-from astropy.io import fits
-from astropy.table import Table
 
 from lightledger.pipeline.errors import InputFileError
 
-from .base import ENTRY_NAME
-from .notebook import parameter_changes
-from .products import read_provenance
+from .base import ENTRY_NAME, read_entry
+from .notebook import collect_entries, entry_sources, parameter_changes
 
-__all__ = ["compare", "main_product"]
+__all__ = ["compare", "main_product", "lineage"]
 
 _MAIN = ("detrended.fits", "lightcurves.fits", "spectra.fits", "exposures.ecsv")
 
@@ -39,94 +54,444 @@ def main_product(folder):
     raise InputFileError(f"{folder}: no product to compare in this folder")
 
 
-def _entry(folder):
+# ---------------------------------------------------------------------------
+# what A and B are, and where they come from
+# ---------------------------------------------------------------------------
+
+class _Side:
+    """One side of a comparison: its entry (if any), product, lineage and label."""
+
+    def __init__(self, path):
+        path = Path(path)
+        if not path.exists():
+            raise InputFileError(f"{path}: no such entry or product")
+        if path.is_dir():
+            entry = read_entry(path / ENTRY_NAME)
+            if entry is None:
+                if (path / ENTRY_NAME).exists():
+                    raise InputFileError(f"{path / ENTRY_NAME}: not a valid notebook entry")
+                raise InputFileError(f"{path}: not a complete notebook entry (no {ENTRY_NAME})")
+            self.folder, self.product = path.resolve(), main_product(path).resolve()
+            self.label = path.name
+        else:
+            self.product = path.resolve()
+            self.folder = self.product.parent
+            entry = read_entry(self.folder / ENTRY_NAME)
+            self.label = f"{self.folder.name}/{self.product.name}"
+            if entry is None:
+                entry = _entry_from_provenance(self.product)
+        self.entry = entry
+        self.lineage = lineage(self.folder) if (self.folder / ENTRY_NAME).exists() else {}
+        if not self.lineage and entry is not None:
+            self.lineage = {entry["stage"]: entry}
+
+    @property
+    def stage(self):
+        return self.entry["stage"] if self.entry else "?"
+
+    def describe(self):
+        e = self.entry or {}
+        event = self.event()
+        what = [f"{self.label} ({self.stage})"]
+        if e.get("visit"):
+            what.append(f"visit \"{e['visit']}\"")
+        target = self.target()
+        if target:
+            what.append(f"target {target}")
+        if event:
+            what.append(f"{event.get('kind', '?')} at t0 {event.get('t0')}")
+        return ", ".join(what)
+
+    def visit(self):
+        return next((e.get("visit") for e in self.lineage.values() if e.get("visit")),
+                    (self.entry or {}).get("visit"))
+
+    def target(self):
+        for e in self.lineage.values():
+            if e.get("target"):
+                return e["target"]
+        return None
+
+    def raw_identity(self):
+        first = self.lineage.get("calibrate")
+        return first.get("upstream") if first else None
+
+    def event(self):
+        """The event ephemeris the stages used (detrend facts), else the visit description's."""
+        for e in self.lineage.values():
+            if e.get("stage") == "detrend" and isinstance(e.get("facts"), list):
+                try:
+                    return {k: v for k, v in e["facts"]}
+                except (TypeError, ValueError):
+                    pass
+        notebook = self.folder.parent
+        for e in _notebook_entries(notebook):
+            if e.get("stage") == "detrend" and e.get("visit") == self.visit() \
+                    and isinstance(e.get("facts"), list):
+                try:
+                    return {k: v for k, v in e["facts"]}
+                except (TypeError, ValueError):
+                    pass
+        for candidate in [(self.entry or {}).get("visit_file"), notebook.parent / "visit.toml"]:
+            if not candidate:
+                continue
+            try:
+                from .config import load_visit
+                return dict(load_visit(candidate).event)
+            except Exception:
+                continue
+        return None
+
+
+def _entry_from_provenance(product):
+    from .products import read_provenance
     try:
-        return json.loads((Path(folder) / ENTRY_NAME).read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise InputFileError(f"{folder}: not a complete notebook entry (no {ENTRY_NAME})") from None
-    except json.JSONDecodeError as exc:
-        raise InputFileError(f"{folder}/{ENTRY_NAME}: not valid JSON ({exc})") from None
-
-
-def _describe(path):
-    path = Path(path)
-    if not path.exists():
-        raise InputFileError(f"{path}: no such entry or product")
-    if path.is_dir():
-        entry = _entry(path)
-        return entry["stage"], entry["params"], main_product(path), path.name
-    prov = read_provenance(path)
+        prov = read_provenance(product)
+    except Exception as exc:
+        raise InputFileError(f"{product}: not a readable lightledger product ({exc})") from None
     if not prov:
-        raise InputFileError(f"{path}: not a lightledger product (no provenance)")
-    return prov["stage"], prov["params"], path, f"{path.parent.name}/{path.name}"
+        raise InputFileError(f"{product}: not a lightledger product (no provenance)")
+    return {"stage": prov.get("stage", "?"), "params": dict(prov.get("params", {})),
+            "visit": prov.get("visit", ""), "outputs": {}}
 
 
-def _white_rms(table, kind):
-    if kind == "DETRENDED":
-        use = np.asarray(table["used"], bool)
-        r = np.asarray(table["white_residual"], float)[use]
-        return float(np.sqrt(np.mean(r ** 2)) * 1e6)
-    f = np.asarray(table["white_flux"], float)
-    f = f[np.isfinite(f)] / np.nanmedian(f)
-    return float(np.std(np.diff(f)) / np.sqrt(2) * 1e6)
+_ENTRIES = {}
 
 
-def _series(table, kind):
-    if kind == "DETRENDED":
-        return (np.asarray(table["detrended"], float), np.asarray(table["detrended_error"], float),
-                np.asarray(table["white_detrended"], float),
-                np.asarray(table["white_detrended_error"], float))
-    return (np.asarray(table["flux"], float), np.asarray(table["error"], float),
-            np.asarray(table["white_flux"], float), np.asarray(table["white_error"], float))
+def _notebook_entries(notebook):
+    key = str(notebook)
+    if key not in _ENTRIES:
+        _ENTRIES.clear()
+        _ENTRIES[key] = collect_entries(notebook) if Path(notebook).is_dir() else []
+    return _ENTRIES[key]
 
+
+def lineage(folder):
+    """{stage: entry} of a stage folder and of every entry it was made from."""
+    folder = Path(folder).resolve()
+    entries = collect_entries(folder.parent)
+    by_path = {e["path"]: e for e in entries}
+    start = by_path.get(folder.name)
+    if start is None:
+        return {}
+    found, stack, seen = {}, [start], set()
+    while stack:
+        entry = stack.pop()
+        if entry["path"] in seen:
+            continue
+        seen.add(entry["path"])
+        found.setdefault(entry["stage"], entry)
+        stack += [by_path[p] for p in entry_sources(entry, entries) if p in by_path]
+    return found
+
+
+# ---------------------------------------------------------------------------
+# the comparison
+# ---------------------------------------------------------------------------
 
 def compare(a, b):
     """Lines describing how entry or product ``b`` differs from ``a``."""
-    stage_a, params_a, prod_a, label_a = _describe(a)
-    stage_b, params_b, prod_b, label_b = _describe(b)
-    lines = [f"A: {label_a} ({stage_a})", f"B: {label_b} ({stage_b})"]
-    if stage_a != stage_b:
-        lines.append("the two come from different stages; only their parameters are compared")
-    changes = parameter_changes(params_a, params_b)
-    if changes:
-        lines.append("parameters that differ:")
-        lines += [f"  {k}: {_fmt(v[0])} -> {_fmt(v[1])}" for k, v in changes.items()]
-    else:
-        lines.append("parameters: identical")
-    if stage_a != stage_b or prod_a.suffix != ".fits" or prod_b.suffix != ".fits":
-        return lines
-    with fits.open(prod_a) as ha, fits.open(prod_b) as hb:
-        kind = "DETRENDED" if "DETRENDED" in ha else "LIGHTCURVES" if "LIGHTCURVES" in ha else None
-        if kind is None or kind not in hb:
-            return lines
-        ta, tb = Table(ha[kind].data), Table(hb[kind].data)
-        da = Table(ha["DEPTHS"].data) if "DEPTHS" in ha else None
-        db = Table(hb["DEPTHS"].data) if "DEPTHS" in hb else None
-    lines.append(f"white-light rms: {_white_rms(ta, kind):.1f} ppm -> {_white_rms(tb, kind):.1f} ppm")
-    if da is not None and db is not None and len(da) == len(db):
-        lines.append("depths (ppm): channel, wavelength, A, B, difference / combined error")
-        for ra, rb in zip(da, db):
-            err = np.hypot(ra["depth_error"], rb["depth_error"])
-            label = "white" if ra["channel"] < 0 else f"{ra['channel']:>5d}"
-            lines.append(f"  {label:>5}  {ra['wave_mid']:.4f} um  {ra['depth'] * 1e6:9.1f} "
-                         f"{rb['depth'] * 1e6:9.1f}  {(rb['depth'] - ra['depth']) / err:+.2f}")
-    if len(ta) == len(tb):
-        fa, ea, wa, wea = _series(ta, kind)
-        fb, eb, wb, web = _series(tb, kind)
-        if fa.shape == fb.shape:
-            with np.errstate(invalid="ignore", divide="ignore"):
-                z = np.abs(fb - fa) / np.hypot(ea, eb)
-                zw = np.abs(wb - wa) / np.hypot(wea, web)
-            lines.append("light-curve differences in units of their errors (median, largest):")
-            lines.append(f"  white  {np.nanmedian(zw):.3f}  {np.nanmax(zw):.3f}")
-            for j in range(fa.shape[1]):
-                lines.append(f"  {j:>5d}  {np.nanmedian(z[:, j]):.3f}  {np.nanmax(z[:, j]):.3f}")
-    else:
-        lines.append(f"the light curves have different lengths ({len(ta)} and {len(tb)} exposures)")
+    _ENTRIES.clear()
+    side_a, side_b = _Side(a), _Side(b)
+    lines = [f"A: {side_a.describe()}", f"B: {side_b.describe()}"]
+    lines += _warnings(side_a, side_b)
+    lines += _lineage_differences(side_a, side_b)
+    lines += _numbers(side_a, side_b)
     return lines
+
+
+def _warnings(a, b):
+    out = []
+    if a.visit() and b.visit() and a.visit() != b.visit():
+        out.append(f"warning: A and B come from different visits (\"{a.visit()}\" and \"{b.visit()}\")")
+    if a.target() and b.target() and a.target() != b.target():
+        out.append(f"warning: A and B come from different targets ({a.target()} and {b.target()})")
+    ea, eb = a.event(), b.event()
+    if ea and eb and any(ea.get(k) != eb.get(k) for k in ("kind", "t0", "period")):
+        out.append(f"warning: A and B come from different events ({ea.get('kind')} at t0 "
+                   f"{ea.get('t0')}, {eb.get('kind')} at t0 {eb.get('t0')})")
+    ra, rb = a.raw_identity(), b.raw_identity()
+    if ra and rb and ra != rb:
+        out.append(f"warning: A and B were made from different raw data or reference files "
+                   f"(raw identities {ra[:10]} and {rb[:10]})")
+    if a.stage != b.stage:
+        out.append(f"note: A is a {a.stage} product and B a {b.stage} product; only the stages "
+                   f"they share are compared")
+    return out
+
+
+def _lineage_differences(a, b):
+    stages = [s for s in a.lineage if s in b.lineage]
+    out = []
+    for stage in _ordered(stages):
+        ea, eb = a.lineage[stage], b.lineage[stage]
+        for key, (va, vb) in parameter_changes(ea.get("params", {}), eb.get("params", {})).items():
+            out.append(f"  {stage}.{key}: {_fmt(va)} -> {_fmt(vb)}")
+        if ea.get("facts") is not None and eb.get("facts") is not None and ea["facts"] != eb["facts"]:
+            out.append(f"  {stage} visit facts: {_fmt(ea['facts'])} -> {_fmt(eb['facts'])}")
+        if ea.get("stage_version") != eb.get("stage_version"):
+            out.append(f"  {stage} code version: {ea.get('stage_version')} -> {eb.get('stage_version')}")
+    chain_a = " <- ".join(a.lineage[s]["path"] for s in reversed(_ordered(list(a.lineage)))
+                          if "path" in a.lineage[s])
+    chain_b = " <- ".join(b.lineage[s]["path"] for s in reversed(_ordered(list(b.lineage)))
+                          if "path" in b.lineage[s])
+    head = []
+    if chain_a or chain_b:
+        head = [f"lineage A: {chain_a or '(no entries)'}", f"lineage B: {chain_b or '(no entries)'}"]
+    if out:
+        return head + [f"parameters that differ (in {len(stages)} stages of both lineages):"] + out
+    return head + [f"parameters: identical in every stage of both lineages ({', '.join(_ordered(stages))})"
+                   if stages else "parameters: no common stage to compare"]
+
+
+def _ordered(stages):
+    from lightledger.pipeline.parameters import STAGE_ORDER
+    return sorted(stages, key=lambda s: (STAGE_ORDER.index(s) if s in STAGE_ORDER else 99, s))
+
+
+# ---------------------------------------------------------------------------
+# numbers
+# ---------------------------------------------------------------------------
+
+def _read(path):
+    """(tables by name, images by name) of a FITS or ECSV product."""
+    from astropy.io import fits
+    from astropy.table import Table
+
+    path = Path(path)
+    tables, images = {}, {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if path.suffix == ".ecsv":
+            table = Table.read(path, format="ascii.ecsv")
+            tables[_ecsv_kind(path, table)] = _narrow(table)
+            return tables, images
+        with fits.open(path, memmap=False) as hdul:
+            for hdu in hdul[1:]:
+                if hdu.name == "PROVENANCE" or hdu.data is None:
+                    continue
+                if isinstance(hdu, fits.BinTableHDU):
+                    tables[hdu.name] = Table(hdu.data)
+                else:
+                    images[hdu.name] = np.asarray(hdu.data)
+    return tables, images
+
+
+def _ecsv_kind(path, table):
+    names = set(table.colnames)
+    if {"depth", "depth_error"} <= names:
+        return "DEPTHS"
+    if "white_detrended" in names:
+        return "DETRENDED"
+    if "white_flux" in names:
+        return "LIGHTCURVES"
+    return Path(path).stem.upper()
+
+
+def _narrow(table):
+    """A wide ECSV light-curve table (flux_00, flux_01, ...) with 2-D columns again."""
+    from astropy.table import Table
+
+    out, groups = Table(), {}
+    for name in table.colnames:
+        stem, _, number = name.rpartition("_")
+        if stem and number.isdigit() and len(number) == 2:
+            groups.setdefault(stem, []).append(name)
+        else:
+            out[name] = table[name]
+    for stem, names in groups.items():
+        out[stem] = np.column_stack([np.asarray(table[n]) for n in sorted(names)])
+    return out
+
+
+def _numbers(a, b):
+    try:
+        tables_a, images_a = _read(a.product)
+        tables_b, images_b = _read(b.product)
+    except Exception as exc:
+        return [f"numbers: a product is unreadable ({type(exc).__name__}: {exc})"]
+    out = []
+    common = [n for n in tables_a if n in tables_b]
+    if not common and not ({"FLUX", "VARIANCE"} <= set(images_a) & set(images_b)):
+        return out + [f"numbers: {a.product.name} and {b.product.name} share no table to compare"]
+    if "DEPTHS" in common:
+        out += _depths(tables_a["DEPTHS"], tables_b["DEPTHS"])
+    for kind in ("DETRENDED", "LIGHTCURVES"):
+        if kind in common:
+            out += _light_curves(tables_a[kind], tables_b[kind], kind, a.event() or b.event())
+    if {"FLUX", "VARIANCE"} <= set(images_a) & set(images_b):
+        wave = tables_a.get("WAVELENGTH")
+        out += _spectra(images_a, images_b, wave)
+    for name in common:
+        if name in ("DEPTHS", "DETRENDED", "LIGHTCURVES"):
+            continue
+        out += _generic(name, tables_a[name], tables_b[name])
+    return out
+
+
+def _depths(da, db):
+    out = ["depths (ppm): channel, wavelength, A, B, difference / combined error"]
+    rows_b = {int(r["channel"]): r for r in db}
+    for ra in da:
+        rb = rows_b.get(int(ra["channel"]))
+        label = "white" if ra["channel"] < 0 else f"{int(ra['channel']):>5d}"
+        if rb is None:
+            out.append(f"  {label:>5}  only in A")
+            continue
+        err = float(np.hypot(ra["depth_error"], rb["depth_error"]))
+        z = (rb["depth"] - ra["depth"]) / err if err > 0 else np.nan
+        wave = f"{float(ra['wave_mid']):.4f} um" if "wave_mid" in da.colnames else ""
+        out.append(f"  {label:>5}  {wave}  {ra['depth'] * 1e6:9.1f} {rb['depth'] * 1e6:9.1f}  {z:+.2f}")
+    if len(db) != len(da):
+        out.append(f"  the depth tables have {len(da)} and {len(db)} rows")
+    return out
+
+
+def _series(table, kind):
+    """[(label, flux, error, usable)] of the white band and each channel."""
+    n = len(table)
+    if kind == "DETRENDED":
+        used = np.asarray(table["used"], bool) if "used" in table.colnames else np.ones(n, bool)
+        white = ("white", np.asarray(table["white_detrended"], float),
+                 np.asarray(table["white_detrended_error"], float), used)
+        flux = np.asarray(table["detrended"], float)
+        err = np.asarray(table["detrended_error"], float)
+        masks = np.broadcast_to(~used[:, None], flux.shape) if flux.ndim == 2 else ~used
+    else:
+        good = ~np.asarray(table["white_mask"], bool) if "white_mask" in table.colnames \
+            else np.ones(n, bool)
+        if "flux_outlier" in table.colnames:
+            good &= ~np.asarray(table["flux_outlier"], bool)
+        white = ("white", np.asarray(table["white_flux"], float),
+                 np.asarray(table["white_error"], float), good)
+        flux = np.asarray(table["flux"], float)
+        err = np.asarray(table["error"], float)
+        masks = np.asarray(table["mask"], bool) if "mask" in table.colnames else np.zeros(flux.shape, bool)
+        if flux.ndim == 2 and "flux_outlier" in table.colnames:
+            masks = masks | np.asarray(table["flux_outlier"], bool)[:, None]
+    out = [white]
+    if flux.ndim == 2:
+        for j in range(flux.shape[1]):
+            out.append((f"{j:>5d}", flux[:, j], err[:, j], ~np.asarray(masks)[:, j]))
+    return out
+
+
+def out_of_event(time, event):
+    """True for exposures outside the event (first to fourth contact) of an ephemeris.
+
+    Parameters
+    ----------
+    time : ndarray, BJD_TDB (d)
+    event : dict with kind, t0, period, duration (d)
+    """
+    time = np.asarray(time, float)
+    if not event or not all(k in event for k in ("t0", "period", "duration")):
+        return np.ones(time.shape, bool)
+    mid = float(event["t0"]) + (0.5 * float(event["period"]) if event.get("kind") == "eclipse" else 0.0)
+    phase = (time - mid + 0.5 * float(event["period"])) % float(event["period"]) - 0.5 * float(event["period"])
+    return np.abs(phase) > 0.5 * float(event["duration"])
+
+
+def _scatter(flux, usable, out):
+    """Out-of-event scatter and point-to-point scatter (ppm) of a series normalised by its median."""
+    keep = usable & np.isfinite(flux)
+    base = keep & out
+    if base.sum() < 3:
+        return np.nan, np.nan
+    f = flux / np.median(flux[base])
+    ooe = float(np.std(f[base], ddof=1) * 1e6)
+    g = np.diff(f[keep])
+    # robust: 1.4826 x the median absolute deviation of successive differences, over sqrt(2), so
+    # that the event's ingress and the gaps between orbits do not count (common practice)
+    p2p = float(1.4826 * np.median(np.abs(g - np.median(g))) / np.sqrt(2) * 1e6) if g.size > 2 \
+        else np.nan
+    return ooe, p2p
+
+
+def _light_curves(ta, tb, kind, event):
+    what = "detrended light curves" if kind == "DETRENDED" else "light curves"
+    time_a = np.asarray(ta["time_bjd_tdb"], float) if "time_bjd_tdb" in ta.colnames else np.arange(len(ta))
+    time_b = np.asarray(tb["time_bjd_tdb"], float) if "time_bjd_tdb" in tb.colnames else np.arange(len(tb))
+    out_a, out_b = out_of_event(time_a, event), out_of_event(time_b, event)
+    where = ("out of the event (first to fourth contact of the visit's ephemeris)" if event
+             else "over every exposure (the event's ephemeris is unknown here)")
+    lines = [f"{what}: scatter {where}, and point-to-point scatter (ppm), A -> B"]
+    series_a, series_b = _series(ta, kind), _series(tb, kind)
+    for (label, fa, ea, ua), (_, fb, eb, ub) in zip(series_a, series_b):
+        sa, pa = _scatter(fa, ua, out_a)
+        sb, pb = _scatter(fb, ub, out_b)
+        lines.append(f"  {label:>5}  out of event {sa:8.1f} -> {sb:8.1f}   point-to-point "
+                     f"{pa:8.1f} -> {pb:8.1f}")
+    if len(series_a) != len(series_b):
+        lines.append(f"  A has {len(series_a) - 1} channels and B {len(series_b) - 1}")
+    same_times = len(time_a) == len(time_b) and np.allclose(time_a, time_b, rtol=0, atol=1e-6)
+    if not same_times:
+        lines.append(f"  the light curves have different exposures ({len(time_a)} and {len(time_b)}); "
+                     f"no exposure-by-exposure difference")
+        return lines
+    lines.append(f"{what}: A - B per exposure in units of their combined error (median, largest)")
+    for (label, fa, ea, ua), (_, fb, eb, ub) in zip(series_a, series_b):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            z = np.abs(fb - fa) / np.hypot(ea, eb)
+        z = z[ua & ub & np.isfinite(z)]
+        if z.size:
+            lines.append(f"  {label:>5}  {np.median(z):.3f}  {np.max(z):.3f}")
+    return lines
+
+
+def _spectra(ia, ib, wave):
+    fa, fb = np.asarray(ia["FLUX"], float), np.asarray(ib["FLUX"], float)
+    if fa.shape != fb.shape:
+        return [f"spectra: shapes differ ({fa.shape} and {fb.shape}); no pixel-by-pixel difference"]
+    va, vb = np.asarray(ia["VARIANCE"], float), np.asarray(ib["VARIANCE"], float)
+    bad = np.zeros(fa.shape, bool)
+    for images in (ia, ib):
+        if "MASK" in images:
+            bad |= np.asarray(images["MASK"]) > 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z = np.abs(fb - fa) / np.sqrt(va + vb)
+    z = np.where(bad | ~np.isfinite(z), np.nan, z)
+    lines = ["spectra: A - B per exposure and pixel in units of their combined error "
+             "(median, 95th percentile, largest)"]
+    flat = z[np.isfinite(z)]
+    if not flat.size:
+        return lines + ["  no pixel usable in both"]
+    lines.append(f"  all     {np.median(flat):.3f}  {np.percentile(flat, 95):.3f}  {np.max(flat):.3f}")
+    edges = np.linspace(0, fa.shape[-1], 11).astype(int)
+    w = np.asarray(wave["wavelength"], float) if wave is not None and "wavelength" in wave.colnames \
+        else None
+    for lo, hi in zip(edges[:-1], edges[1:]):
+        part = z[..., lo:hi]
+        part = part[np.isfinite(part)]
+        if not part.size:
+            continue
+        label = f"{w[lo]:.3f}-{w[hi - 1]:.3f} um" if w is not None else f"pixels {lo}-{hi - 1}"
+        lines.append(f"  {label}  {np.median(part):.3f}  {np.percentile(part, 95):.3f}  "
+                     f"{np.max(part):.3f}")
+    return lines
+
+
+def _generic(name, ta, tb):
+    if len(ta) != len(tb):
+        return [f"{name.lower()}: {len(ta)} and {len(tb)} rows"]
+    diffs = []
+    for col in ta.colnames:
+        if col not in tb.colnames:
+            continue
+        xa, xb = np.asarray(ta[col]), np.asarray(tb[col])
+        if xa.shape != xb.shape or xa.dtype.kind not in "fiub" or xb.dtype.kind not in "fiub":
+            continue
+        with np.errstate(invalid="ignore"):
+            d = np.abs(xa.astype(float) - xb.astype(float))
+        d = d[np.isfinite(d)]
+        if d.size and d.max() > 0:
+            diffs.append(f"{col} {d.max():.4g}")
+    if not diffs:
+        return [f"{name.lower()}: every numeric column equal"]
+    return [f"{name.lower()}: largest differences: " + ", ".join(diffs)]
 
 
 def _fmt(value):
     if isinstance(value, list):
-        return "[" + ", ".join(str(v) for v in value) + "]"
-    return str(value)
+        return "[" + ", ".join(_fmt(v) for v in value) + "]"
+    return json.dumps(value) if isinstance(value, str) else str(value)

@@ -148,6 +148,7 @@ tr.changed td { background: #fff2a8; font-weight: 600; }
 nav ul { margin: 0.2em 0 0.6em; } nav li { font-size: 0.9em; }
 .warn { color: #a33; }
 .warnings { color: #a40000; font-weight: bold; }
+tr.idle td { color: #999; }
 """
 
 
@@ -191,18 +192,24 @@ def _entry_html(entry, notebook, current):
                 if entry.get("previous") else "")
              + ("; its input differs from the previous entry's" if entry.get("input_changed") else "")
              + ("; superseded by a forced re-run" if entry.get("superseded") else "") + "</div>",
-             *([f'<ul class="warnings">'
+             *(['<ul class="warnings">'
                 + "".join(f"<li>warning: {html.escape(str(w))}</li>" for w in entry["warnings"])
                 + "</ul>"] if entry.get("warnings") else []),
              '<div class="cols"><div><table><tr><th>parameter</th><th>value</th></tr>']
     changed = entry.get("changed", {})
+    idle = entry.get("not_applying") if isinstance(entry.get("not_applying"), dict) else {}
     for name, value in entry.get("params", {}).items():
+        note = (f' title="does not apply: {html.escape(str(idle[name]), quote=True)}"'
+                if name in idle else "")
+        cls = " ".join(c for c in ("changed" if name in changed else "",
+                                   "idle" if name in idle else "") if c)
+        row = f'<tr class="{cls}"{note}>' if cls or note else "<tr>"
         if name in changed:
             old = html.escape(_fmt(changed[name][0]))
-            parts.append(f'<tr class="changed"><td>{html.escape(name)}</td><td>'
+            parts.append(f'{row}<td>{html.escape(name)}</td><td>'
                          f'<span class="old">{old}</span>{html.escape(_fmt(value))}</td></tr>')
         else:
-            parts.append(f"<tr><td>{html.escape(name)}</td><td>{html.escape(_fmt(value))}</td></tr>")
+            parts.append(f"{row}<td>{html.escape(name)}</td><td>{html.escape(_fmt(value))}</td></tr>")
     parts.append("</table></div><div><table><tr><th>headline</th><th>value</th></tr>")
     metrics = entry.get("metrics", {})
     for name, value in (metrics.items() if isinstance(metrics, dict) else []):

@@ -8,6 +8,7 @@ the page (Chromium's DOM dump and network log).
 """
 
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -73,11 +74,34 @@ def test_extract_tweak_reruns_extract_bin_detrend_only(visit):
     assert latest["params"]["clip_threshold"] == 4.0
 
     lines = compare(old_extract[0], new_extract[0])
-    assert any("clip_threshold: 5.0 -> 4.0" in line for line in lines)
-    detrends = _stage_folders(notebook, "detrend")
-    lines = compare(detrends[0], detrends[1])
-    assert any(line.startswith("white-light rms:") for line in lines)
+    assert any("extract.clip_threshold: 5.0 -> 4.0" in line for line in lines)
+    assert any(line.startswith("spectra: A - B per exposure and pixel") for line in lines)
+    # two detrend entries of identical detrend parameters: the difference is upstream
+    lines = compare(first.final.parent, tweak.final.parent)
+    assert "  extract.clip_threshold: 5.0 -> 4.0" in lines
+    assert not any(line.startswith(("warning", "parameters: identical")) for line in lines)
     assert any("depths (ppm)" in line for line in lines)
+    assert any(line.startswith("detrended light curves: scatter out of the event") for line in lines)
+
+
+def test_compare_warns_across_visits_and_events(visit, tmp_path):
+    visit_toml, first = visit
+    copy = tmp_path / "other"
+    shutil.copytree(first.final.parent.parent.parent, copy)
+    text = (copy / "visit.toml").read_text()
+    text = re.sub(r'(?m)^name = "([^"]*)"', r'name = "\1, another night"', text, count=1)
+    text = re.sub(r"(?m)^t0 = ([0-9.]+)", lambda m: f"t0 = {float(m.group(1)) + 0.002:.6f}", text)
+    (copy / "visit.toml").write_text(text)
+    other = reduce_visit(copy / "visit.toml", workers=1)
+    assert other.ok, other.messages
+    assert other.ran == ["Detrend"]                # the event is a fact of the detrend stage only
+    lines = compare(first.final.parent, other.final.parent)
+    assert any(line.startswith("warning: A and B come from different visits") for line in lines)
+    assert any(line.startswith("warning: A and B come from different events") for line in lines)
+    assert any(line.startswith("  detrend visit facts:") for line in lines)
+    # a light-curve product against a depth product: told, not silently compared
+    lines = compare(next(first.final.parent.parent.glob("bin-*/lightcurves.fits")), first.final)
+    assert any("only the stages" in line for line in lines)
 
 
 def test_until_stops_after_a_stage(tmp_path):

@@ -281,3 +281,133 @@ def test_the_page_embeds_only_the_entrys_own_figures(reduced, tmp_path):
     assert page.count("data:image/png;base64,") == 4          # the current chain's own figures
     assert 'href="#' + entry_path.parent.name + '"' in page  # the contents list
     assert page.count("&larr; current chain") == 4
+
+
+# ---------------------------------------------------------------------------
+# a property test: any sequence of tweaks, forced runs, partial runs, kills and copies
+# ---------------------------------------------------------------------------
+
+from hypothesis import HealthCheck, example, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from lightledger.pipeline.errors import LightledgerError  # noqa: E402
+from lightledger.pipeline.parameters import STAGE_ORDER  # noqa: E402
+from lightledger.tasks.base import make_plan, read_entry, settings_to_text, visit_config  # noqa: E402
+
+#: The --set tweaks a step may choose (cheap ones: they re-run extract or detrend only).
+TWEAKS = ([], [("detrend", "visit_order", 2)], [("extract", "clip_threshold", 4.0)])
+#: Examples and steps of the property test in the suite; a longer run by hand sets
+#: LIGHTLEDGER_PROPERTY_EXAMPLES (see tests/benchmarks/README.md).
+EXAMPLES = int(os.environ.get("LIGHTLEDGER_PROPERTY_EXAMPLES", "2"))
+STEPS = int(os.environ.get("LIGHTLEDGER_PROPERTY_STEPS", "3"))
+
+_reduce_step = st.tuples(st.just("reduce"), st.integers(0, len(TWEAKS) - 1),
+                         st.sampled_from(STAGE_ORDER), st.sampled_from([None, *STAGE_ORDER]))
+_kill_step = st.tuples(st.just("kill"), st.integers(0, len(TWEAKS) - 1),
+                       st.sampled_from([0.3, 1.0, 2.5]), st.sampled_from([None, "extract", "bin"]))
+_steps = st.lists(st.one_of(_reduce_step, _kill_step, st.just(("copy",)), st.just(("prune",))),
+                  min_size=1, max_size=STEPS)
+
+
+def _entries(notebook):
+    """Folder names of every stage folder with a valid entry."""
+    return {p.name for p in Path(notebook).iterdir()
+            if p.is_dir() and read_entry(p / "entry.json") is not None}
+
+
+def _chain_bytes(visit, tweak, until):
+    """{folder: {file: bytes}} of the chain a reduction with ``tweak`` up to ``until`` makes."""
+    plan = make_plan(visit_config(visit, settings_to_text(tweak)), settings_to_text(tweak))
+    out = {}
+    for stage in STAGE_ORDER[:STAGE_ORDER.index(until) + 1]:
+        folder = plan.folder(stage)
+        out[folder.name] = {p.name: p.read_bytes() for p in folder.iterdir()
+                            if not p.name.startswith(".") and p.name != "entry.json"}
+    return out
+
+
+class _Lab:
+    """One example's visit, the fresh reductions to compare with, and the checks."""
+
+    fresh = {}       # tweak index -> {folder: {file: bytes}} of a fresh full reduction
+
+    def __init__(self, root, reduced, pristine):
+        self.root, self.pristine = root, pristine
+        self.visit = _copy(reduced.parent, root / "lab-0")
+        self.copies = 0
+
+    def reference(self, index):
+        if index not in _Lab.fresh:
+            fresh = _copy(self.pristine, self.root / f"fresh-{index}")
+            assert _reduce(fresh, settings=TWEAKS[index]).ok
+            _Lab.fresh[index] = _chain_bytes(fresh, TWEAKS[index], STAGE_ORDER[-1])
+        return _Lab.fresh[index]
+
+    def step(self, step):
+        notebook = self.visit.parent / "notebook"
+        before = _entries(notebook)
+        kind = step[0]
+        completed = None
+        if kind == "reduce":
+            _, index, until, force = step
+            force = [force] if force else []
+            if force and STAGE_ORDER.index(force[0]) > STAGE_ORDER.index(until):
+                with pytest.raises(LightledgerError):
+                    _reduce(self.visit, settings=TWEAKS[index], until=until, force=force)
+            else:
+                result = _reduce(self.visit, settings=TWEAKS[index], until=until, force=force)
+                assert result.ok, result.messages
+                completed = (index, until)
+        elif kind == "kill":
+            _, index, delay, force = step
+            proc = FORK.Process(target=_forked_reduce, args=(
+                self.visit, self.root / "killed.json",
+                {"settings": TWEAKS[index], "force": [force] if force else []}))
+            proc.start()
+            time.sleep(delay)
+            os.kill(proc.pid, signal.SIGKILL)
+            proc.join()
+        elif kind == "copy":
+            self.copies += 1
+            target = self.root / f"lab-{self.copies}"
+            shutil.copytree(self.visit.parent, target, copy_function=shutil.copy)   # cp -r
+            self.visit = target / "visit.toml"
+            notebook = target / "notebook"
+        elif kind == "prune":
+            prune(notebook)
+        self.check(notebook, before, kind, completed)
+
+    def check(self, notebook, before, kind, completed):
+        report = audit(notebook)
+        assert report.problems == [], report.problems
+        after = _entries(notebook)
+        if kind == "prune":
+            assert {n for n in before if ".superseded-" not in n} <= after
+        else:
+            for name in before - after:
+                # an entry may only leave its name by being superseded by a replacement
+                assert ".superseded-" not in name, name
+                assert any(a.startswith(name + ".superseded-") for a in after), name
+                replacement = notebook / name
+                assert replacement.is_dir(), name
+                if kind != "kill":
+                    assert name in after, name
+        if completed is not None:
+            index, until = completed
+            mine = _chain_bytes(self.visit, TWEAKS[index], until)
+            reference = self.reference(index)
+            assert mine == {k: reference[k] for k in mine}
+
+
+@settings(max_examples=EXAMPLES, deadline=None, database=None, derandomize=EXAMPLES <= 2,
+          suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@given(steps=_steps)
+@example(steps=[("reduce", 2, "bin", "extract"), ("kill", 1, 1.0, "bin"), ("copy",),
+                ("reduce", 0, "detrend", None)])
+def test_any_sequence_of_tweaks_forces_kills_and_copies_keeps_the_notebook_true(
+        reduced, tmp_path_factory, steps):
+    visit, pristine = reduced
+    lab = _Lab(tmp_path_factory.mktemp("lab"), visit, pristine)
+    print("steps:", steps)         # shown with pytest -s (the long run by hand)
+    for step in steps:
+        lab.step(step)
