@@ -33,6 +33,7 @@ from astropy.table import Table, vstack
 from lightledger.pipeline import mask as dq
 from lightledger.pipeline.calibrate import calibrate_exposure
 
+from .applicability import not_applying, visit_facts
 from .base import ENTRY_NAME, VisitTask, chunk_ranges, settings_from_text
 from .check import clip_level, visit_exposures
 from .geometry import expected_source_rows
@@ -236,9 +237,12 @@ class Calibrate(VisitTask):
                        for row in aside]} if len(aside) else {}),
                    "median background (e-/pixel)": float(np.median(exposures["background_level"])),
                    **{f"flagged {k.lower()} (pixel-exposures)": v for k, v in counts.items() if v}}
+        facts = visit_facts(scanning=bool(np.any(np.asarray(exposures["scan_direction"]) != 0)),
+                            n_orbits=None, kind=self.config.event["kind"])
         self.write_entry(self.output().path, [self.input().path, *paths],
                          [*paths, table_path, self.input().path], metrics, [fig_path], started,
-                         extra_seconds=self.task_seconds(paths))
+                         extra_seconds=self.task_seconds(paths),
+                         not_applying=not_applying("calibrate", self.params, facts))
         self.progress(len(exposures), len(exposures), "exposures calibrated")
 
     def final_product(self):

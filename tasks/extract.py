@@ -37,6 +37,7 @@ from lightledger.pipeline.trace import fit_trace, refine, scan_band
 from lightledger.pipeline.wavelength import (column_wavelengths, pixel_edges, reference_column,
                                              refine_solution)
 
+from .applicability import not_applying, visit_facts
 from .base import ENTRY_NAME, VisitTask, chunk_ranges
 from .calibrate import Calibrate, read_chunk
 from .geometry import expected_source_rows
@@ -326,6 +327,8 @@ class Extract(VisitTask):
                    "aperture rows": [int(header["APLO"]), int(header["APHI"])]}
         # the entry names what the stage read from the calibrate folder too (its lineage)
         upstream = [*self.calibrated_chunks(), self.stage_folder("calibrate") / "exposures.ecsv"]
+        facts = visit_facts(scanning=scanning, n_orbits=None, kind=self.config.event["kind"])
         self.write_entry(self.output().path, inputs + upstream, [path, self.input().path], metrics,
-                         [fig], started, extra_seconds=self.task_seconds(inputs))
+                         [fig], started, extra_seconds=self.task_seconds(inputs),
+                         not_applying=not_applying("extract", self.params, facts))
         self.progress(len(exposures), len(exposures), "spectra extracted")

@@ -28,6 +28,7 @@ from lightledger.pipeline.errors import ParameterError
 from lightledger.pipeline.lit import channel_light, lit_range
 from lightledger.pipeline.timing import interpolated_barycentric_times
 
+from .applicability import not_applying, visit_facts
 from .base import ENTRY_NAME, VisitTask
 from .metadata import channel_text, ecsv_meta, fits_cards, set_time_keywords
 from .products import table_hdu, write_ecsv, write_fits
@@ -339,4 +340,8 @@ class Bin(VisitTask):
                    "white flux median (e-)": float(np.median(white_flux)) if white_flux.size else None,
                    "flux outliers": int(np.sum(cov.flux_outlier))}
         self.progress(3, 3, "light curves written")
-        self.write_entry(self.output().path, [spectra_path], outputs, metrics, [fig], started)
+        warnings = [f"channel {j} ({channel_text(channels, j)[len(f'channel {j}, '):]}) is dim: "
+                    f"{100 * light[j]:.0f} % of the peak light per pixel" for j in np.flatnonzero(dim)]
+        facts = visit_facts(scanning=not stare, n_orbits=int(cov.n_orbits), kind=visit.event["kind"])
+        self.write_entry(self.output().path, [spectra_path], outputs, metrics, [fig], started,
+                         warnings=warnings, not_applying=not_applying("bin", params, facts))

@@ -7,6 +7,8 @@ extracted spectrum would end in dark, noise-only channels (common practice:
 an observer trims or flags them).
 """
 
+import json
+
 import numpy as np
 import pytest
 from astropy.table import Table
@@ -49,8 +51,12 @@ def test_explicit_channels_over_the_whole_detector_flag_the_unlit_ends(scan_visi
     # 25 channels over (nearly) every pixel: 2 nm inside the ends, which the validation
     # pass compares with the profile's nominal wavelengths
     whole = np.linspace(edges[0] + 0.002, edges[-1] - 0.002, 26)
-    channels, _ = _channels(rebin(scan_visit, [("bin", "edges", tuple(whole))]))
+    folder = rebin(scan_visit, [("bin", "edges", tuple(whole))])
+    channels, _ = _channels(folder)
     dim = np.asarray(channels["dim"], bool)
+    entry = json.loads((folder / "entry.json").read_text())
+    assert sum("is dim" in w for w in entry["warnings"]) == dim.sum()
+    assert set(entry["not_applying"]) == {"width", "n_channels", "equal_counts"}
     assert dim[0] and dim[-1] and not dim[len(dim) // 2]
     # dim channels are the ends only: once lit, lit until the other end
     lit = np.flatnonzero(~dim)
