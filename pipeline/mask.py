@@ -17,11 +17,12 @@ value  name             meaning
                         around the break were left out of the slope
 8      PROFILE_REJECT   rejected by the profile fit of optimal extraction
 16     PATCHED          value replaced from the spatial profile
-32     OVERFILLED       one or more reads above the saturation level were
-                        dropped from the ramp
+32     OVERFILLED       one or more reads at or above the saturation level,
+                        clipped or wrapped around in storage were dropped
 64     NO_SLOPE         fewer than two usable reads remain: no slope
 128    INVALID_VALUE    the raw data or a reference value was NaN or infinite
-256    LISTED_BAD       listed in the bad-pixel reference file
+256    LISTED_BAD       listed in the bad-pixel reference file, or unusable
+                        in another reference file
 =====  ===============  ======================================================
 
 Bits 64, 128 and 256 (:data:`UNUSABLE_FLAGS`) make a pixel unusable for
@@ -71,10 +72,10 @@ MEANINGS = {
     "RAMP_BREAK": "cosmic-ray break left out of the ramp",
     "PROFILE_REJECT": "rejected by the optimal-extraction fit",
     "PATCHED": "value replaced from the spatial profile",
-    "OVERFILLED": "reads above saturation dropped",
+    "OVERFILLED": "reads at/above saturation, clipped or wrapped dropped",
     "NO_SLOPE": "fewer than two usable reads",
     "INVALID_VALUE": "raw or reference value not finite",
-    "LISTED_BAD": "listed in the bad-pixel reference file",
+    "LISTED_BAD": "bad-pixel file, or unusable in another reference",
 }
 
 #: Flags that make a pixel unusable for extraction.

@@ -138,12 +138,23 @@ class HDUInfo:
     shape: tuple         # numpy order (NAXISn .. NAXIS1)
 
 
+def _card(header, key, default=None):
+    """A header value; an unparsable card raises _Damage naming it."""
+    try:
+        return header[key] if key in header else default
+    except Exception as exc:     # astropy's VerifyError on a damaged card
+        raise _Damage(f"header card {key} cannot be parsed ({_short(exc)})") from None
+
+
 def _card_int(header, key, where, default=None):
     if key not in header:
         if default is not None:
             return default
         raise _Damage(f"{where} header has no {key} card")
-    value = header[key]
+    try:
+        value = header[key]
+    except Exception as exc:     # astropy's VerifyError on a damaged card
+        raise _Damage(f"{where} header card {key} cannot be parsed ({_short(exc)})") from None
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
         raise _Damage(f"{where} header card {key} must be an integer, found {value!r}")
     return int(value)
@@ -234,8 +245,8 @@ def fits_structure(path):
                     raise _Damage(f"{where} header has a negative NAXISn")
                 pcount = _card_int(header, "PCOUNT", where, default=0)
                 gcount = _card_int(header, "GCOUNT", where, default=1)
-                kind = "PRIMARY" if index == 0 else str(header.get("XTENSION", "")).strip().upper()
-                name = "PRIMARY" if index == 0 else str(header.get("EXTNAME", "")).strip()
+                kind = "PRIMARY" if index == 0 else str(_card(header, "XTENSION", "")).strip().upper()
+                name = "PRIMARY" if index == 0 else str(_card(header, "EXTNAME", "")).strip()
             count = math.prod(axes) if naxis else 0
             data_bytes = abs(bitpix) // 8 * gcount * (pcount + count) if naxis else 0
             if data_offset + data_bytes > size:
@@ -326,7 +337,10 @@ def _find(hdus, name, what):
 def _times_vector(path, hdu, name, n, what):
     if math.prod(hdu.shape) != n or (len(hdu.shape) > 1 and max(hdu.shape) != n):
         raise _Unusable(f"extension {name} holds {math.prod(hdu.shape)} values for {n} {what}")
-    values = _read_array(path, hdu).ravel()
+    try:
+        values = _read_array(path, hdu).ravel()
+    except Exception as exc:     # a damaged BSCALE/BZERO/BLANK card, an unreadable file
+        raise _Unusable(f"extension {name} cannot be read ({_short(exc)})") from None
     return values
 
 

@@ -8,11 +8,13 @@ twice.
 """
 
 import json
+import os
 import shutil
 import socket
 import subprocess
 import sys
 import time
+from pathlib import Path
 
 import pytest
 
@@ -20,7 +22,19 @@ from lightledger.synthetic_data.render import render
 
 pytestmark = pytest.mark.slow
 
-LUIGID = shutil.which("luigid")
+def _luigid():
+    """The central scheduler installed with this interpreter's luigi, else one on PATH.
+
+    A virtual environment's console scripts sit beside its interpreter
+    (``sys.executable``'s folder), which need not be on PATH.
+    """
+    beside = Path(sys.executable).parent / "luigid"
+    if beside.is_file() and os.access(beside, os.X_OK):
+        return str(beside)
+    return shutil.which("luigid")
+
+
+LUIGID = _luigid()
 
 
 def _free_port():
@@ -29,7 +43,7 @@ def _free_port():
         return s.getsockname()[1]
 
 
-@pytest.mark.skipif(LUIGID is None, reason="luigid not on PATH")
+@pytest.mark.skipif(LUIGID is None, reason="luigid is neither beside the interpreter nor on PATH")
 def test_two_reducers_share_a_central_scheduler(tmp_path):
     visit = render("scan-transit", tmp_path / "visit", seed=6, n_exposures=20)
     port = _free_port()
