@@ -72,10 +72,10 @@ MEANINGS = {
     "RAMP_BREAK": "cosmic-ray break left out of the ramp",
     "PROFILE_REJECT": "rejected by the optimal-extraction fit",
     "PATCHED": "value replaced from the spatial profile",
-    "OVERFILLED": "reads at/above saturation, clipped or wrapped dropped",
+    "OVERFILLED": "reads at/above saturation dropped",
     "NO_SLOPE": "fewer than two usable reads",
     "INVALID_VALUE": "raw or reference value not finite",
-    "LISTED_BAD": "bad-pixel file, or unusable in another reference",
+    "LISTED_BAD": "in the bad-pixel file or a bad reference",
 }
 
 #: Flags that make a pixel unusable for extraction.

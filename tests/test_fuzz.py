@@ -10,8 +10,8 @@ naming a file or option) and never raises; the strict loaders raise only
 :class:`~lightledger.pipeline.errors.LightledgerError`.
 
 The examples here are bounded (``max_examples`` small, derandomised) to keep the
-suite fast; ``tests/benchmarks/fuzz_inputs.py`` runs the same properties with
-many more examples.  Inputs that once broke the loaders are kept below as
+suite fast; ``tests/benchmarks/fuzz_inputs.py`` runs the same properties
+(the ``prop_*`` functions and strategies below) with many more examples.  Inputs that once broke the loaders are kept below as
 ordinary tests.
 """
 
@@ -103,7 +103,11 @@ def _raw_hdus(n_exp=None, start=0.0):
 @pytest.fixture(scope="module")
 def tiny(tmp_path_factory):
     """A tiny visit: references, profile, description, one 3-D and one 4-D raw file."""
-    root = tmp_path_factory.mktemp("tiny")
+    return make_tiny(tmp_path_factory.mktemp("tiny"))
+
+
+def make_tiny(root):
+    """Write the tiny visit into ``root`` and return ``root``."""
     for name, value in (("bias", 1000.0), ("dark", 0.01), ("flat", 1.0), ("bad", 0)):
         fits.PrimaryHDU(np.full((8, 10), value)).writeto(root / f"{name}.fits")
     fits.PrimaryHDU(np.zeros((1, 8, 10))).writeto(root / "nonlin.fits")
@@ -132,9 +136,17 @@ VALUES = st.one_of(st.text(max_size=12), st.sampled_from(["nan", "inf", "-inf", 
                    st.floats(allow_nan=True).map(repr), st.integers().map(str))
 
 
+SET_TEXTS = st.one_of(st.text(max_size=40), st.tuples(st.sampled_from(KEYS), VALUES).map("=".join))
+
+
 @SUITE
-@given(st.one_of(st.text(max_size=40), st.tuples(st.sampled_from(KEYS), VALUES).map("=".join)))
+@given(SET_TEXTS)
 def test_set_option_raises_only_its_own_error(text):
+    prop_set_text(text)
+
+
+def prop_set_text(text):
+    """--set: only the option's own error, and an accepted value is finite."""
     try:
         stage, key, value = parse_assignment(text)
     except LightledgerError as exc:
@@ -209,11 +221,18 @@ def _set_key(text, table, key, value):
     return "\n".join(lines) + "\n"
 
 
+VISIT_EDITS = st.lists(st.tuples(st.sampled_from(VISIT_KEYS), TOML_VALUES), min_size=1, max_size=3)
+PROFILE_EDITS = st.lists(st.tuples(st.sampled_from(PROFILE_KEYS), TOML_VALUES), max_size=2)
+
+
 @SUITE
-@given(st.lists(st.tuples(st.sampled_from(VISIT_KEYS), TOML_VALUES), min_size=1, max_size=3),
-       st.lists(st.tuples(st.sampled_from(PROFILE_KEYS), TOML_VALUES), max_size=2))
+@given(VISIT_EDITS, PROFILE_EDITS)
 def test_toml_values_of_any_type_at_any_key(tiny, tmp_path_factory, visit_edits, profile_edits):
-    root = tmp_path_factory.mktemp("toml")
+    prop_toml_edits(tiny, tmp_path_factory.mktemp("toml"), visit_edits, profile_edits)
+
+
+def prop_toml_edits(tiny, root, visit_edits, profile_edits):
+    """Values of any TOML type at any key: the pass reports, the strict loader raises ours."""
     text, prof = VISIT.replace('profile = "instrument.toml"',
                                f'profile = "{tiny / "instrument.toml"}"'), PROFILE
     text = text.replace('raw = "raw"', f'raw = "{tiny / "raw"}"')
@@ -236,10 +255,17 @@ def test_toml_values_of_any_type_at_any_key(tiny, tmp_path_factory, visit_edits,
         pass
 
 
+TOML_BYTES = (st.binary(max_size=400), st.sampled_from(["visit.toml", "instrument.toml"]))
+
+
 @SUITE
-@given(st.binary(max_size=400), st.sampled_from(["visit.toml", "instrument.toml"]))
+@given(*TOML_BYTES)
 def test_toml_files_of_any_bytes(tmp_path_factory, data, name):
-    root = tmp_path_factory.mktemp("bytes")
+    prop_toml_bytes(tmp_path_factory.mktemp("bytes"), data, name)
+
+
+def prop_toml_bytes(root, data, name):
+    """Any bytes as a TOML file: problems naming the file, nothing raised."""
     (root / name).write_bytes(data)
     problems = Problems()
     (load_visit if name == "visit.toml" else load_profile)(root / name, problems=problems)
@@ -349,7 +375,12 @@ def _tiny_copy(tiny, root):
 @SUITE
 @given(st.data())
 def test_raw_files_with_byte_damage(tiny, tmp_path_factory, data):
-    root = _tiny_copy(tiny, tmp_path_factory.mktemp("bytes"))
+    prop_raw_bytes(tiny, tmp_path_factory.mktemp("bytes"), data)
+
+
+def prop_raw_bytes(tiny, root, data):
+    """Byte damage of a raw file: set aside or reported, nothing raised."""
+    root = _tiny_copy(tiny, root)
     path = root / "raw" / data.draw(st.sampled_from(["a.fits", "b.fits"]))
     path.write_bytes(_byte_damage(path.read_bytes(), data.draw))
     _reduce_check(root)
@@ -358,7 +389,12 @@ def test_raw_files_with_byte_damage(tiny, tmp_path_factory, data):
 @SUITE
 @given(st.data())
 def test_raw_files_with_header_array_and_hdu_damage(tiny, tmp_path_factory, data):
-    root = _tiny_copy(tiny, tmp_path_factory.mktemp("hdus"))
+    prop_raw_hdus(tiny, tmp_path_factory.mktemp("hdus"), data)
+
+
+def prop_raw_hdus(tiny, root, data):
+    """Header, array and HDU damage of a valid FITS raw file: only the raw file is blamed."""
+    root = _tiny_copy(tiny, root)
     name = data.draw(st.sampled_from(["a.fits", "b.fits"]))
     hdus = _raw_hdus() if name == "a.fits" else _raw_hdus(n_exp=3, start=30)
     hdus = _hdu_damage(hdus, data.draw)
@@ -373,7 +409,12 @@ def test_raw_files_with_header_array_and_hdu_damage(tiny, tmp_path_factory, data
 @SUITE
 @given(st.data())
 def test_reference_files_with_byte_damage(tiny, tmp_path_factory, data):
-    root = _tiny_copy(tiny, tmp_path_factory.mktemp("refs"))
+    prop_reference_bytes(tiny, tmp_path_factory.mktemp("refs"), data)
+
+
+def prop_reference_bytes(tiny, root, data):
+    """Byte damage of a reference file: reported, nothing raised."""
+    root = _tiny_copy(tiny, root)
     path = root / data.draw(st.sampled_from(["bias.fits", "dark.fits", "flat.fits", "bad.fits",
                                              "nonlin.fits"]))
     path.write_bytes(_byte_damage(path.read_bytes(), data.draw))
