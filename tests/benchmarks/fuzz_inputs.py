@@ -66,11 +66,7 @@ def main():
         for name, prop, strategies, context in cases:
             tried, bad = [0], Counter()
 
-            @seed(run_seed)
-            @settings(max_examples=n, deadline=None, database=None,
-                      suppress_health_check=list(HealthCheck))
-            @given(*strategies)
-            def run(*drawn):
+            def attempt(drawn, prop=prop, context=context, tried=tried, bad=bad):
                 tried[0] += 1
                 try:
                     with warnings.catch_warnings():
@@ -80,6 +76,17 @@ def main():
                     bad[f"contract broken: {' '.join(str(exc).split())[:120]}"] += 1
                 except Exception as exc:    # noqa: BLE001  what the campaign counts
                     bad[_signature(exc)] += 1
+
+            drawing = strategies[0] if len(strategies) == 1 and repr(strategies[0]) == "data()" \
+                else None
+            strategy = st.data() if drawing is not None else st.tuples(*strategies)
+
+            @seed(run_seed)
+            @settings(max_examples=n, deadline=None, database=None,
+                      suppress_health_check=list(HealthCheck))
+            @given(strategy)
+            def run(value):
+                attempt((value,) if drawing is not None else value)
 
             started = time.time()
             run()
