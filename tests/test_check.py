@@ -278,3 +278,15 @@ def test_file_size_limit(raw_scan, tmp_path):
     notebook = tmp_path / "visit" / "notebook"
     assert not list(notebook.glob("calibrate-*/frames-*.fits"))
     assert not list(notebook.rglob("*.part"))
+
+
+def test_a_stare_inside_its_eclipse_cannot_measure_a_depth(raw_stare, capsys):
+    """The rendered 60-exposure stare lies wholly inside its eclipse: no baseline, so no depth
+    (a visit like this once returned a white depth of -1,000,091 ppm with exit status 0)."""
+    status, lines, _ = _run(["check", raw_stare, "--headers-only"], capsys)
+    assert status == 2
+    assert len(lines) == 1 and lines[0].startswith(f"lightledger: error: {raw_stare}: event: "
+                                                   f"every exposure falls inside the eclipse")
+    assert "--until bin" in lines[0]
+    status, lines, _ = _run(["check", raw_stare, "--headers-only", "--until", "bin"], capsys)
+    assert status == 0 and lines == []
