@@ -83,3 +83,24 @@ def test_binned_points_are_group_means_with_their_standard_errors():
     np.testing.assert_allclose(tb, [1.5, 5.5, 9.5])
     np.testing.assert_allclose(yb, [4, 0, 2])
     np.testing.assert_allclose(eb, [np.std([1, 3, 5, 7], ddof=1) / 2, 0, 0])
+
+
+@pytest.mark.slow
+def test_page_overlay_compares_the_entries_of_a_stage(scan_visit, scan_box):
+    # two detrend entries (optimal and box extraction) and their bin and extract
+    # entries: each stage gives one overlaid figure; a single entry gives none
+    import io
+
+    from lightledger.tasks.figures import overlay_png, stage_spectrum
+
+    default = _chain(scan_visit.notebook, scan_visit.stage_folder("detrend"))
+    box = _chain(scan_visit.notebook, scan_box)
+    for stage in ("extract", "bin", "detrend"):
+        png = overlay_png(stage, [("optimal", default[stage]), ("box", box[stage])])
+        assert png is not None and png[:8] == b"\x89PNG\r\n\x1a\n", stage
+        image = mpimg.imread(io.BytesIO(png))
+        assert image.shape[0] > 200 and np.std(image[..., :3]) > 0.02
+    assert overlay_png("detrend", [("optimal", default["detrend"])]) is None
+    assert overlay_png("calibrate", [("a", default["calibrate"]), ("b", box["calibrate"])]) is None
+    depths = stage_spectrum("detrend", default["detrend"])
+    assert depths["ylabel"] == "depth (ppm)" and depths["x"].size == 10 and depths["lit"].all()
