@@ -43,7 +43,8 @@ from .systematics import (DEFAULT_TAU_GRID, OrbitRamp, SystematicsInputs, orbit_
 __all__ = ["DetrendResult", "ChannelFits", "BinnedRms", "transit_template",
            "eclipse_template", "polynomial_basis", "orbit_phase_basis", "ramp_basis",
            "scan_direction_basis", "phase_curve_basis", "fit_event", "fit_light_curve",
-           "tied_phase_curve", "detrend_light_curve", "fit_channels", "binned_rms",
+           "tied_phase_curve", "fit_at_fitted_radius", "detrend_light_curve", "fit_channels",
+           "binned_rms",
            "DEFAULT_TAU_GRID"]
 
 
@@ -109,6 +110,59 @@ def fit_light_curve(inputs, flux, variance, template, model, *, mask=None, **eve
     ramps = [c for c in model.components if isinstance(c, OrbitRamp)]
     tau = search.values[f"{ramps[0].label}.tau"] if ramps else float("nan")
     return with_shapes(result, search.values, tau=tau)
+
+
+def fit_at_fitted_radius(fit, template_of, flux, variance, template, *, mask=None,
+                         max_iter=8, tol=1e-10):
+    """Fit a transit whose shape follows the fitted radius ratio, not the a priori one.
+
+    The template of a limb-darkened transit depends on the radius ratio
+    (ingress, egress and the limb's curvature), so a template made from the
+    a priori radius and scaled by the fitted depth is not the model of a
+    planet of the fitted size.  Here the fit is repeated with the template
+    made again at ``rp = sqrt(depth)`` until it stops changing: at the fixed
+    point ``depth * s(sqrt(depth)) = 1 - F(sqrt(depth))``, the limb-darkened
+    transit itself (Mandel & Agol 2002) with the fitted radius.
+
+    Parameters
+    ----------
+    fit : callable
+        ``fit(flux, variance, template, *, mask) -> DetrendResult`` (e.g. a
+        partial of :func:`fit_light_curve`).
+    template_of : callable
+        ``template_of(rp_rs) -> ndarray``: the unit-depth template
+        ``(1 - F(rp)) / rp**2`` of a transit of radius ratio ``rp_rs``.
+    flux, variance, template : array_like of float, shape (n_exposures,)
+        As in :func:`fit_event`; ``template`` is the a priori one (the start).
+    mask : array_like of bool, shape (n_exposures,), optional
+    max_iter : int, optional
+        Refits at most (the map is a strong contraction: two or three suffice).
+    tol : float, optional
+        Largest change of the template that ends the iteration.
+
+    Returns
+    -------
+    DetrendResult
+        The fit at the last template; ``depth`` is the (rp/rs)^2 of the
+        limb-darkened model.
+
+    Notes
+    -----
+    The depth's error is that of the last fit, whose template is held fixed:
+    the change of the transit's shape with the radius is second order in the
+    error (it moves the depth by the small difference between the template's
+    shapes at rp and rp + sigma).
+    """
+    res = fit(flux, variance, template, mask=mask)
+    for _ in range(int(max_iter)):
+        if not (np.isfinite(res.depth) and res.depth > 0):
+            break
+        new = np.asarray(template_of(float(np.sqrt(res.depth))), dtype=float)
+        if np.nanmax(np.abs(new - template)) < tol:
+            break
+        template = new
+        res = fit(flux, variance, template, mask=mask)
+    return res
 
 
 def tied_phase_curve(time, t0, period):

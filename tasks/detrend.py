@@ -39,7 +39,8 @@ import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
-from lightledger.pipeline.detrend import fit_channels, fit_light_curve, tied_phase_curve
+from lightledger.pipeline.detrend import (fit_at_fitted_radius, fit_channels, fit_light_curve,
+                                          tied_phase_curve)
 from lightledger.pipeline.diagnostics import residual_quality
 from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.plausibility import assess_fits
@@ -193,6 +194,10 @@ class Detrend(VisitTask):
                                    f"(event.t0, event.period) falls outside the visit's exposures")
         inputs, model, options, left_out = systematics_setup(lc, visit.event, params)
         fit = partial(fit_light_curve, inputs, model=model, **options)
+        if visit.event["kind"] == "transit":
+            # the transit's shape follows the fitted radius ratio, not the a priori one
+            fit = partial(fit_at_fitted_radius, fit,
+                          lambda rp: event_template(t, dict(visit.event, rp_rs=rp)))
         self.progress(0, 2, "white light curve")
         bad = np.asarray(lc["flux_outlier"], bool)
         wf = np.asarray(lc["white_flux"], float)

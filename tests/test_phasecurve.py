@@ -6,21 +6,24 @@ sinusoidal phase curve and its offset), Winn 2010 (eccentric eclipse timing),
 and defining properties (noise-free recovery, Monte Carlo error checks).
 """
 
+from functools import partial
+
 import batman
 import numpy as np
 import pytest
 
 from lightledger.pipeline.covariates import exposure_covariates
-from lightledger.pipeline.detrend import fit_event
+from lightledger.pipeline.detrend import fit_at_fitted_radius, fit_event, fit_light_curve
 from lightledger.pipeline.errors import ParameterError
 from lightledger.pipeline.eventshapes import transit_template
 from lightledger.pipeline.jointfit import PlanetModel, VisitData, fit_joint
 from lightledger.pipeline.orbit import Ephemeris, eclipse_time, orbit_state
 from lightledger.pipeline.phasecurve import (full_orbit_flux, planet_columns, planet_flux,
                                              summarise_planet)
-from lightledger.pipeline.programme import consistency, phase_resolved_spectrum, PlanetPoints
+from lightledger.pipeline.programme import PlanetPoints, phase_resolved_spectrum
 from lightledger.pipeline.systematics import SystematicsInputs, standard_model
-from lightledger.pipeline.transit import limb_darkened_blocked_fraction, occulted_fraction_uniform
+from lightledger.pipeline.transit import (limb_darkened_blocked_fraction, occulted_fraction_uniform,
+                                          transit_flux)
 
 MIN = 1.0 / 1440.0
 T0 = 2460100.25
@@ -178,9 +181,10 @@ def test_joint_fit_noise_free_full_orbit_is_exact():
 
 def test_radius_through_limb_darkened_model_not_a_scaled_template():
     # Noise-free transit (batman, Kreidberg 2015) of rp = 0.118 with the a priori radius
-    # 0.105: the radius fitted through the limb-darkened model comes back exactly, while a
-    # template scaled from the a priori radius biases the depth by several ppm (the
-    # transit's shape changes with the radius).
+    # 0.105: the radius fitted through the limb-darkened model comes back exactly (the
+    # joint fit, and the single-event fit with its template made at the fitted radius),
+    # while a template scaled from the a priori radius biases the depth by several ppm
+    # (the transit's shape changes with the radius).
     t, cov = _leo_visit(T0 - 0.17, 5, cadence=2.0)
     p = batman.TransitParams()
     p.t0, p.per, p.rp, p.a, p.inc, p.ecc, p.w = T0, 2.9, 0.118, 9.5, 87.6, 0.0, 90.0
@@ -197,6 +201,18 @@ def test_radius_through_limb_darkened_model_not_a_scaled_template():
                        np.column_stack([(t - t.mean()) / np.ptp(t)]))
     depth_scaled = scaled.depth * prior.max() / 0.105 ** 2     # template scaled to (rp/rs)^2
     assert abs(depth_scaled - 0.118 ** 2) > 5e-6
+    # The single-event fit of a transit visit: its template made again at the fitted
+    # radius until it stops changing gives the limb-darkened model's depth (1e-9).
+    def template_of(rp):
+        return (1 - transit_flux(t, t0=T0, period=2.9, rp_rs=rp, a_rs=9.5, inclination=87.6,
+                                 u1=0.22, u2=0.28)) / rp ** 2
+
+    inputs1 = SystematicsInputs(t)
+    fit1 = partial(fit_light_curve, inputs1, model=standard_model(visit_order=1))
+    once = fit1(flux, flux.copy(), template_of(0.105), mask=None)
+    again = fit_at_fitted_radius(fit1, template_of, flux, flux.copy(), template_of(0.105))
+    assert abs(once.depth - 0.118 ** 2) > 5e-6
+    assert again.depth == pytest.approx(0.118 ** 2, abs=1e-9)
 
 
 def test_phase_resolved_spectrum_weighted_means_and_consistency():
