@@ -28,7 +28,11 @@ and prints per size
   calls (timed by wrapping those names in the task modules, outermost call
   only);
 * ``2w speed-up``: one-worker over two-worker wall time (aim at least 1.7 on
-  two idle cores).
+  two idle cores);
+* ``cpu 1w s`` and ``cpu 2w/1w``: processor time (user + system, the
+  reducing process and its children) of the one-worker run, and the
+  two-worker run's over it: the extra work two workers do, which a loaded
+  machine does not blur as it blurs wall times.
 
 The machine (cores, load average before and after) is printed with the
 table: on a shared machine compare the ratios, not the seconds.
@@ -95,8 +99,10 @@ def child(visit_path, workers, kernels):
 
     result = reduce_visit(visit_path, workers=workers)
     wall = time.perf_counter() - t_start
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu = me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
     print(json.dumps({"ok": result.ok, "messages": result.messages, "wall": wall,
-                      "kernels": totals["kernels"],
+                      "kernels": totals["kernels"], "cpu": cpu,
                       "rss_self_kb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
                       "rss_children_kb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss}))
 
@@ -165,7 +171,8 @@ def measure(folder, n_exposures, repeat, tmp, label):
 def print_table(title, rows):
     print(f"\n{title}")
     head = (f"{'size':<22}{'exposures':>10}{'read s':>9}{'reduce s':>10}{'reduce/read':>13}"
-            f"{'per exp':>9}{'peak MB':>9}{'science':>9}{'2w s':>8}{'2w speed-up':>13}")
+            f"{'per exp':>9}{'peak MB':>9}{'science':>9}{'2w s':>8}{'2w speed-up':>13}"
+            f"{'cpu 1w s':>10}{'cpu 2w/1w':>11}")
     print(head)
     print("-" * len(head))
     first = rows[0][1]
@@ -175,7 +182,9 @@ def print_table(title, rows):
         print(f"{label:<22}{r['n']:>10d}{r['read']:>9.2f}{one['wall']:>10.1f}"
               f"{one['wall'] / r['read']:>13.1f}{one['wall'] / r['n'] / per0:>9.2f}"
               f"{one['rss_self_kb'] / 1024:>9.0f}{one['kernels'] / one['wall']:>9.0%}"
-              f"{two['wall']:>8.1f}{one['wall'] / two['wall']:>13.2f}")
+              f"{two['wall']:>8.1f}{one['wall'] / two['wall']:>13.2f}"
+              f"{one.get('cpu', float('nan')):>10.1f}"
+              f"{two.get('cpu', float('nan')) / one.get('cpu', float('nan')):>11.2f}")
 
 
 def main(argv=None):
@@ -221,7 +230,7 @@ def main(argv=None):
           "worker, fresh process, imports included; per exp = reduce time per exposure over the "
           "smallest size's; peak MB = ru_maxrss of the one-worker run; science = share of its time "
           "inside lightledger.pipeline functions called by the tasks; 2w speed-up = one-worker over "
-          "two-worker wall time.")
+          "two-worker wall time; cpu = user + system seconds of the reducing process and its children.")
     return 0
 
 
