@@ -109,7 +109,7 @@ def fit_light_curve(inputs, flux, variance, template, model, *, mask=None, **eve
         result = evaluate(search.values, derivatives=True)
     ramps = [c for c in model.components if isinstance(c, OrbitRamp)]
     tau = search.values[f"{ramps[0].label}.tau"] if ramps else float("nan")
-    return with_shapes(result, search.values, tau=tau)
+    return with_shapes(result, search.values, tau=tau, at_edge=search.at_edge)
 
 
 def fit_at_fitted_radius(fit, template_of, flux, variance, template, *, mask=None,

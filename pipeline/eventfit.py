@@ -121,6 +121,10 @@ class DetrendResult:
     star : ndarray of float, shape (n_exposures,) or None
         With the planet's flux fitted (``planet_basis``), :math:`S_* = B a`:
         the star alone times the systematics; None otherwise.
+    shapes_at_edge : tuple of str
+        Shape parameters whose chosen value is still at an end of its grid
+        after the grid was extended
+        (:attr:`~lightledger.pipeline.shapesearch.ShapeSearch.at_edge`).
     """
 
     depth: float
@@ -145,6 +149,7 @@ class DetrendResult:
     mode: str
     shapes: tuple = ()
     star: np.ndarray | None = None
+    shapes_at_edge: tuple = ()
 
 
 def _prepare(flux, variance, template, mask, n=None):
@@ -480,7 +485,7 @@ def _assemble(f, v, use, B, a, c, cov_ac, Q, P, p_mid, active, p_active, nb, n_p
         n_points=n_fit, fit_mask=~use, tau=float("nan"), mode=mode, star=S if tied else None)
 
 
-def with_shapes(result, shapes, tau=float("nan")):
+def with_shapes(result, shapes, tau=float("nan"), at_edge=()):
     """Copy of ``result`` with its shape parameters counted as free parameters.
 
     Parameters
@@ -493,6 +498,8 @@ def with_shapes(result, shapes, tau=float("nan")):
         error scale and the BIC.
     tau : float, optional
         The ramp time scale to report as ``tau`` (days), NaN without a ramp.
+    at_edge : tuple of str, optional
+        Shape parameters left at an end of their grid (``shapes_at_edge``).
 
     Returns
     -------
@@ -506,4 +513,5 @@ def with_shapes(result, shapes, tau=float("nan")):
         result, tau=float(tau), n_params=int(n_params), reduced_chi2=float(red),
         error_scale=scale, depth_error=result.depth_error_unscaled * scale,
         bic=float(result.chi2 + n_params * np.log(result.n_points)),
-        shapes=tuple((str(k), float(v)) for k, v in shapes.items()))
+        shapes=tuple((str(k), float(v)) for k, v in shapes.items()),
+        shapes_at_edge=tuple(str(n) for n in at_edge))

@@ -8,7 +8,11 @@ current values (cycling over the parameters until none moves, at most
 ``max_cycles`` times), then refined, where asked, by a bounded
 one-dimensional minimisation between the best value's grid neighbours.
 With one shape parameter this is a plain grid search plus an optional
-refinement.  The caller then repeats the fit at the chosen values with the
+refinement.  A best value at an end of its grid is not a minimum found: the
+grid is extended past that end by its own end spacing (geometric for a log
+parameter), a value at a time, up to ``max_extend`` values, and a parameter
+still at an end after that is reported in :attr:`ShapeSearch.at_edge`, so the
+caller can warn that the data want a value outside the range searched.  The caller then repeats the fit at the chosen values with the
 columns' derivatives, so that the covariance is marginalised over the shape
 parameters to first order (:func:`lightledger.pipeline.eventfit.fit_event`,
 ``basis_derivatives``).
@@ -42,15 +46,28 @@ class ShapeSearch:
         i.e. its uncertainty should be carried into the covariance.
     n_fits : int
         Number of fits evaluated.
+    at_edge : tuple of str
+        Parameters whose chosen value is still the first or last value of its
+        (extended) grid: the minimum of chi-square may lie beyond it.
+    extended : tuple of str
+        Parameters whose grid was extended past an end.
     """
 
     values: dict
     result: object
     chosen_from_data: bool
     n_fits: int
+    at_edge: tuple = ()
+    extended: tuple = ()
 
 
-def search_shapes(evaluate, params, *, max_cycles=3):
+def _beyond(grid, lower, log):
+    """The next value past one end of a sorted grid, by the end's own spacing."""
+    a, b = (grid[0], grid[1]) if lower else (grid[-1], grid[-2])
+    return float(a * (a / b)) if log else float(a + (a - b))
+
+
+def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4):
     """Profile a fit over shape parameters.
 
     Parameters
@@ -63,6 +80,8 @@ def search_shapes(evaluate, params, *, max_cycles=3):
         :meth:`lightledger.pipeline.systematics.SystematicsModel.shape_params`).
     max_cycles : int, optional
         Passes over the parameters at most (several parameters only).
+    max_extend : int, optional
+        Values added past an end of a grid, at most, per parameter (0: none).
 
     Returns
     -------
@@ -71,8 +90,8 @@ def search_shapes(evaluate, params, *, max_cycles=3):
 
     Notes
     -----
-    Cost: one fit per grid value of each parameter per cycle, plus about 20
-    per refined parameter.  A coordinate-wise search finds the joint minimum
+    Cost: one fit per grid value of each parameter per cycle, plus one per
+    value added past an end, plus about 20 per refined parameter.  A coordinate-wise search finds the joint minimum
     when the parameters are weakly coupled (different components); strongly
     coupled parameters of one component are better searched on a joint grid
     by the component itself.
@@ -101,15 +120,30 @@ def search_shapes(evaluate, params, *, max_cycles=3):
     # the starting point is irrelevant.
     values = {name: float(grids[name][(grids[name].size - 1) // 2]) for name, _ in params}
     best_idx = {}
+    added = {name: 0 for name, _ in params}
+
+    def chi_at(name, g):
+        trial = dict(values)
+        trial[name] = float(g)
+        return run(trial).chi2
+
     for _cycle in range(int(max_cycles) if len(params) > 1 else 1):
         moved = False
-        for name, _sp in params:
-            fits = []
-            for g in grids[name]:
-                trial = dict(values)
-                trial[name] = float(g)
-                fits.append(run(trial).chi2)
+        for name, sp in params:
+            fits = [chi_at(name, g) for g in grids[name]]
             i = int(np.argmin(fits))
+            # a minimum at an end of the grid: look past it
+            while grids[name].size > 1 and i in (0, grids[name].size - 1) \
+                    and added[name] < int(max_extend):
+                lower = i == 0
+                new = _beyond(grids[name], lower, sp.log)
+                if not np.isfinite(new) or (sp.log and new <= 0):
+                    break
+                added[name] += 1
+                grids[name] = (np.concatenate([[new], grids[name]]) if lower
+                               else np.concatenate([grids[name], [new]]))
+                fits = [chi_at(name, new)] + fits if lower else fits + [chi_at(name, new)]
+                i = int(np.argmin(fits))
             if float(grids[name][i]) != values[name]:
                 moved = True
             values[name] = float(grids[name][i])
@@ -136,4 +170,7 @@ def search_shapes(evaluate, params, *, max_cycles=3):
         if run(trial).chi2 < run(values).chi2:
             values = trial
     from_data = any(grids[n].size > 1 or sp.refine for n, sp in params)
-    return ShapeSearch(values, run(values), from_data, count[0])
+    at_edge = tuple(n for n, _ in params
+                    if grids[n].size > 1 and values[n] in (float(grids[n][0]), float(grids[n][-1])))
+    extended = tuple(n for n, _ in params if added[n])
+    return ShapeSearch(values, run(values), from_data, count[0], at_edge, extended)

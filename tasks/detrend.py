@@ -261,7 +261,8 @@ class Detrend(VisitTask):
                          "rms_over_expected": q.rms / q.expected if q.expected else np.nan,
                          "beta": q.beta, "reduced_chi2": fit_j.reduced_chi2, "bic": fit_j.bic,
                          "n_params": fit_j.n_params, "n_used": q.n_used, "tau_min": fit_j.tau * 1440
-                         if fit_j.tau is not None and np.isfinite(fit_j.tau) else np.nan})
+                         if fit_j.tau is not None and np.isfinite(fit_j.tau) else np.nan,
+                         "shape_at_edge": ", ".join(getattr(fit_j, "shapes_at_edge", ()))})
         depths = Table(rows=rows, names=list(rows[0]))
         # can the results be trusted? (pipeline/plausibility.py)
         quality = assess_fits(depths["depth"], depths["depth_error"],
@@ -276,6 +277,12 @@ class Detrend(VisitTask):
             if reason:
                 label = "white light curve" if c < 0 else f"channel {int(c)}"
                 warnings.append(f"{self.folder / 'detrended.fits'}: {label}: {reason}")
+        for c, names in zip(depths["channel"], depths["shape_at_edge"]):
+            if names:
+                label = "white light curve" if c < 0 else f"channel {int(c)}"
+                warnings.append(f"{label}: {names} chosen at the end of its grid (extended "
+                                f"already): the data may want a value outside the range searched, "
+                                f"or hold no such systematic")
         for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),
                            ("tau_min", "min")):
             depths[name].unit = unit
