@@ -757,6 +757,7 @@ def supersede(folder):
         n += 1
         target = folder.with_name(f"{folder.name}.superseded-{stamp}-{n}")
     folder.rename(target)
+    folder.mkdir()          # its replacement is being made: the folder says so at once
     return target
 
 
