@@ -31,8 +31,9 @@ and prints per size
   two idle cores);
 * ``cpu 1w s`` and ``cpu 2w/1w``: processor time (user + system, the
   reducing process and its children) of the one-worker run, and the
-  two-worker run's over it: the extra work two workers do, which a loaded
-  machine does not blur as it blurs wall times.
+  two-worker run's over it.  Child processes count once they have been
+  waited for, so the two-worker figure can undercount (Luigi may leave some
+  task processes unreaped); read it as a lower bound.
 
 The machine (cores, load average before and after) is printed with the
 table: on a shared machine compare the ratios, not the seconds.
