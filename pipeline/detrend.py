@@ -101,7 +101,7 @@ def fit_light_curve(inputs, flux, variance, template, model, *, mask=None, **eve
                          **event_options)
 
     params = model.shape_params()
-    search = search_shapes(evaluate, params)
+    search = search_shapes(evaluate, params, limits=_ramp_limits(inputs, model, mask))
     result = search.result
     if not params:
         return result
@@ -163,6 +163,22 @@ def fit_at_fitted_radius(fit, template_of, flux, variance, template, *, mask=Non
         template = new
         res = fit(flux, variance, template, mask=mask)
     return res
+
+
+def _ramp_limits(inputs, model, mask):
+    """The time scales an orbit ramp can be told from: from the first exposure's time
+    after its orbit's start to the longest time into an orbit (days).  A shorter
+    ramp is an offset of the first exposure, a longer one a slope."""
+    if inputs.orbit_time is None:
+        return {}
+    t = np.asarray(inputs.orbit_time, float)
+    keep = np.isfinite(t) & (t > 0)
+    if mask is not None:
+        keep &= ~np.asarray(mask, bool)
+    if not keep.any():
+        return {}
+    span = (float(t[keep].min()), float(t[keep].max()))
+    return {f"{c.label}.tau": span for c in model.components if isinstance(c, OrbitRamp)}
 
 
 def tied_phase_curve(time, t0, period):

@@ -244,7 +244,7 @@ STAGES = {
               "masked pixels: 'profile' = fill from the scaled median spectrum, 'flag' = flag the channel-exposure",
               choices=("profile", "flag")),
     )),
-    "detrend": StageSpec("detrend", "4", "light curves divided by a systematics model", (
+    "detrend": StageSpec("detrend", "5", "light curves divided by a systematics model", (
         Param("visit_order", 1, "int", "order of the visit-long polynomial in time", minimum=0, maximum=4),
         Param("orbit_order", 2, "int",
               "order of the orbit-phase polynomial shared by all orbits (-1 = none)", minimum=-1, maximum=4),

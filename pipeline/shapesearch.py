@@ -10,9 +10,11 @@ one-dimensional minimisation between the best value's grid neighbours.
 With one shape parameter this is a plain grid search plus an optional
 refinement.  A best value at an end of its grid is not a minimum found: the
 grid is extended past that end by its own end spacing (geometric for a log
-parameter), a value at a time, up to ``max_extend`` values, and a parameter
-still at an end after that is reported in :attr:`ShapeSearch.at_edge`, so the
-caller can warn that the data want a value outside the range searched.  The caller then repeats the fit at the chosen values with the
+parameter), a value at a time, up to ``max_extend`` values and never past the
+``limits`` the caller gives (the range the data can constrain, e.g. for a
+ramp's time scale the span of its orbit), and a parameter still at an end
+after that is reported in :attr:`ShapeSearch.at_edge`, so the caller can warn
+that the data want a value outside the range searched.  The caller then repeats the fit at the chosen values with the
 columns' derivatives, so that the covariance is marginalised over the shape
 parameters to first order (:func:`lightledger.pipeline.eventfit.fit_event`,
 ``basis_derivatives``).
@@ -67,7 +69,7 @@ def _beyond(grid, lower, log):
     return float(a * (a / b)) if log else float(a + (a - b))
 
 
-def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4):
+def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None):
     """Profile a fit over shape parameters.
 
     Parameters
@@ -82,6 +84,9 @@ def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4):
         Passes over the parameters at most (several parameters only).
     max_extend : int, optional
         Values added past an end of a grid, at most, per parameter (0: none).
+    limits : dict of str to (float, float), optional
+        Qualified name to the (lowest, highest) value a grid may be extended
+        to; a parameter without limits is extended freely.
 
     Returns
     -------
@@ -137,7 +142,8 @@ def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4):
                     and added[name] < int(max_extend):
                 lower = i == 0
                 new = _beyond(grids[name], lower, sp.log)
-                if not np.isfinite(new) or (sp.log and new <= 0):
+                low, high = (limits or {}).get(name, (-np.inf, np.inf))
+                if not np.isfinite(new) or (sp.log and new <= 0) or not low <= new <= high:
                     break
                 added[name] += 1
                 grids[name] = (np.concatenate([[new], grids[name]]) if lower

@@ -280,9 +280,9 @@ class Detrend(VisitTask):
         for c, names in zip(depths["channel"], depths["shape_at_edge"]):
             if names:
                 label = "white light curve" if c < 0 else f"channel {int(c)}"
-                warnings.append(f"{label}: {names} chosen at the end of its grid (extended "
-                                f"already): the data may want a value outside the range searched, "
-                                f"or hold no such systematic")
+                warnings.append(f"{label}: {names} chosen at the end of the range searched "
+                                f"(the grid extended to what the exposures can tell apart): "
+                                f"this light curve does not constrain it")
         for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),
                            ("tau_min", "min")):
             depths[name].unit = unit

@@ -56,3 +56,16 @@ def test_linear_parameter_extends_by_its_end_step_and_single_values_are_not_edge
     assert out.extended == ("p.x",) and out.at_edge == ("p.x",) and out.values["p.x"] == 6.0
     one = search_shapes(_parabola(5.5, log=False, name="p.x"), [("p.x", ShapeParam("x", (1.0,), log=False))])
     assert one.at_edge == () and one.extended == ()
+
+
+def test_extension_stops_at_the_limits_the_data_set():
+    # a ramp shorter than the first exposure's time into its orbit, or longer than an
+    # orbit, cannot be told apart from an offset or a slope: the caller's limits stop it
+    limits = {"ramp.tau": (0.7, 70.0)}    # one step (ratio 1.314) fits below 1, none above 60
+    out = search_shapes(_parabola(1e4), [("ramp.tau", ShapeParam("tau", GRID, log=True))],
+                        limits=limits)
+    assert out.at_edge == ("ramp.tau",) and out.extended == () and out.values["ramp.tau"] == 60.0
+    out = search_shapes(_parabola(1e-3), [("ramp.tau", ShapeParam("tau", GRID, log=True))],
+                        limits=limits)
+    assert out.extended == ("ramp.tau",) and out.at_edge == ("ramp.tau",)
+    assert out.values["ramp.tau"] == pytest.approx(1.0 / (GRID[1] / GRID[0]), rel=1e-9)
