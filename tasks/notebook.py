@@ -9,7 +9,9 @@ current chain marked; each entry shows when and by whom it ran, its
 parameters with the ones that differ from the previous entry of the same
 stage highlighted, its headline figures and its products.  The figures of
 the current chain are embedded; those of other entries are linked from
-their folders, so the page stays small as entries accumulate.  Only an
+their folders, so the page stays small as entries accumulate.  A stage with
+two or more current entries gets one figure overlaying their spectra (the
+newest six, labelled with the parameters each changed).  Only an
 entry's own PNG files (plain names inside its folder, with the PNG
 signature) are ever embedded or linked.
 
@@ -232,7 +234,34 @@ def _entry_html(entry, notebook, current):
     return "\n".join(parts)
 
 
-def _contents_html(entries, chain):
+#: At most this many entries of a stage are overlaid in its comparison figure.
+OVERLAY_ENTRIES = 6
+
+
+def _overlay_html(stage, entries, notebook):
+    """One embedded figure overlaying the spectra of a stage's newest current entries."""
+    current = [e for e in entries if e["stage"] == stage and not e.get("superseded")]
+    current = current[-OVERLAY_ENTRIES:]
+    if len(current) < 2:
+        return ""
+    labelled = []
+    for k, e in enumerate(current):
+        changed = parameter_changes(current[k - 1].get("params", {}), e.get("params", {})) if k else {}
+        label = e["path"] + ("".join(f"\n{n} = {_fmt(v[1])}" for n, v in list(changed.items())[:3]))
+        labelled.append((label, Path(notebook) / e["path"]))
+    try:
+        from .figures import overlay_png
+        png = overlay_png(stage, labelled)
+    except Exception:          # a figure that cannot be drawn never stops the page
+        return ""
+    if not png:
+        return ""
+    data = base64.b64encode(png).decode()
+    return (f'<div class="figs"><img alt="{html.escape(stage)}: the newest current entries '
+            f'compared" src="data:image/png;base64,{data}"></div>')
+
+
+def _contents_html(entries, chain, notebook):
     stages = sorted({e["stage"] for e in entries}, key=lambda s: (_stage_rank(s), s))
     parts = ["<nav><h2>Contents</h2>"]
     for stage in stages:
@@ -242,7 +271,7 @@ def _contents_html(entries, chain):
             old = " (superseded)" if e.get("superseded") else ""
             parts.append(f'<li><a href="#{html.escape(e["path"])}">{html.escape(e["path"])}</a> '
                          f'{html.escape(str(e.get("created", "")))}{old}{mark}</li>')
-        parts.append("</ul></div>")
+        parts.append("</ul>" + _overlay_html(stage, entries, notebook) + "</div>")
     parts.append("</nav>")
     return "\n".join(parts)
 
@@ -271,7 +300,7 @@ def render_page(notebook):
             f"previous entry of the same stage; the figures of the current chain are shown, the "
             f"others are linked from their folders. Machine-readable: "
             f"<a href=\"notebook.json\">notebook.json</a>.</p>\n{warn}"
-            f"{_contents_html(entries, chain)}\n{body}\n</body></html>\n")
+            f"{_contents_html(entries, chain, notebook)}\n{body}\n</body></html>\n")
     return {"notebook.json": json.dumps(doc, indent=2, default=str) + "\n", "index.html": page}
 
 

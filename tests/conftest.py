@@ -309,4 +309,6 @@ def quick_figures():
         for name in dir(figures):
             if name.endswith("_figure") and callable(getattr(figures, name)):
                 patch.setattr(figures, name, blank)
+        if hasattr(figures, "overlay_png"):       # the page's comparison of entries
+            patch.setattr(figures, "overlay_png", lambda *args, **kwargs: None)
         yield
