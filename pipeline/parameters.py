@@ -222,7 +222,7 @@ STAGES = {
         Param("align", True, "bool",
               "resample each spectrum onto the reference grid with its own measured shift"),
     )),
-    "bin": StageSpec("bin", "5", "spectra to channel light curves", (
+    "bin": StageSpec("bin", "6", "spectra to channel light curves", (
         Param("edges", (), "floats", "channel edges in micrometres (takes precedence when given)",
               minimum=0.0),
         Param("width", 0.0, "float",
@@ -243,6 +243,10 @@ STAGES = {
         Param("fill", "profile", "str",
               "masked pixels: 'profile' = fill from the scaled median spectrum, 'flag' = flag the channel-exposure",
               choices=("profile", "flag")),
+        Param("orbit_gap_minutes", 0.0, "float",
+              "scan visits: a start-to-start interval longer than this many minutes begins a new "
+              "orbit; 0 = found from the intervals (the break between the cadence and the "
+              "occultation gaps, with a warning when it is ambiguous)", minimum=0.0),
     )),
     "detrend": StageSpec("detrend", "5", "light curves divided by a systematics model", (
         Param("visit_order", 1, "int", "order of the visit-long polynomial in time", minimum=0, maximum=4),

@@ -51,6 +51,8 @@ def _extract(p, f):
 
 def _bin(p, f):
     out = {}
+    if not f["scanning"] and p.get("orbit_gap_minutes", 0) > 0:
+        out["orbit_gap_minutes"] = "a stare is one orbit"
     if p.get("edges"):
         for key in ("width", "n_channels", "equal_counts"):
             out[key] = "bin.edges is given"

@@ -247,7 +247,8 @@ def event_coverage(visit, refs):
     from lightledger.pipeline.covariates import orbit_numbers
 
     stare = all(r.scan_velocity == 0 for r in refs)
-    orbit, _ = orbit_numbers(np.array([r.start_mjd for r in refs]), gap_factor=3.0, stare=stare)
+    orbit, _ = orbit_numbers(np.array([r.start_mjd for r in refs]), stare=stare,
+                             gap_minutes=visit.stages["bin"]["orbit_gap_minutes"] or None)
     fitted = np.ones(len(refs), bool)
     dropped = ""
     if visit.stages["detrend"]["drop_first_orbit"] and not stare and len(np.unique(orbit)) > 2:

@@ -163,7 +163,7 @@ COLUMNS = {
     "error": ("electron", "1-sigma error of flux; vector over the CHANNELS rows"),
     "mask": ("", "True where flux is unusable; vector over the CHANNELS rows"),
     "n_filled": ("", "pixels filled from the median spectrum; vector over CHANNELS"),
-    "orbit": ("", "orbit number, 0 = first (one orbit for a stare)"),
+    "orbit": ("", "orbit number, 0 = first (one orbit for a stare), split at occultation gaps"),
     "orbit_time": ("d", "time since the orbit's first exposure started (orbit phase)"),
     "visit_time": ("d", "time since the visit's first exposure started"),
     "scan_direction": ("", "+1 forward scan, -1 reverse scan, 0 staring"),
@@ -251,7 +251,8 @@ class Bin(VisitTask):
                                                obsgeo_m=obsgeo)
         stare = bool(np.all(np.asarray(exp["scan_direction"]) == 0))
         cov = exposure_covariates(np.asarray(exp["start_mjd_utc"], float), mid_mjd,
-                                  white_flux=white.flux[:, 0], stare=stare, gap_factor=3.0)
+                                  white_flux=white.flux[:, 0], stare=stare,
+                                  gap_minutes=params["orbit_gap_minutes"] or None)
 
         lc = Table()
         lc["exposure"] = np.asarray(exp["exposure"], int)
@@ -335,6 +336,8 @@ class Bin(VisitTask):
                    "lit part of the spectrum (um)": [round(lit.lo, 4), round(lit.hi, 4)],
                    "dim channels": [int(j) for j in np.flatnonzero(dim)],
                    "orbits": int(cov.n_orbits),
+                   "orbit gap threshold (min)": (round(cov.gap_threshold * 1440.0, 3)
+                                                 if np.isfinite(cov.gap_threshold) else None),
                    "flagged channel-exposures": int(np.sum(binned.mask)),
                    "filled pixels": int(np.sum(binned.n_filled)),
                    "white flux median (e-)": float(np.median(white_flux)) if white_flux.size else None,
@@ -342,6 +345,9 @@ class Bin(VisitTask):
         self.progress(3, 3, "light curves written")
         warnings = [f"channel {j} ({channel_text(channels, j)[len(f'channel {j}, '):]}) is dim: "
                     f"{100 * light[j]:.0f} % of the peak light per pixel" for j in np.flatnonzero(dim)]
+        if cov.orbit_note:
+            warnings.append(f"{cov.orbit_note}; set bin.orbit_gap_minutes to split the orbits "
+                            f"by hand")
         facts = visit_facts(scanning=not stare, n_orbits=int(cov.n_orbits), kind=visit.event["kind"])
         self.write_entry(self.output().path, [spectra_path], outputs, metrics, [fig], started,
                          warnings=warnings, not_applying=not_applying("bin", params, facts))
