@@ -41,16 +41,20 @@ class Param:
         Key in ``[stages.STAGE]`` and in ``--set STAGE.KEY=VALUE``.
     default : object
         Value used when the visit description does not set it.
-    kind : {"float", "int", "bool", "str", "floats"}
-        Type; ``"floats"`` is a list of numbers.
+    kind : {"float", "int", "bool", "str", "floats", "strs"}
+        Type; ``"floats"`` is a list of numbers, ``"strs"`` a list of strings
+        (on the command line: separated by commas).
     doc : str
         One line: meaning and unit.
     choices : tuple of str, optional
-        Allowed values of a ``"str"`` parameter.
+        Allowed values of a ``"str"`` parameter (of each item of ``"strs"``).
     minimum, maximum : float, optional
         Inclusive bounds of a number.
     length : int, optional
         Required length of a ``"floats"`` list.
+    validate : callable, optional
+        Called with each value (each item of a list) after the type checks;
+        raises :class:`ParameterError` with a message naming what is wrong.
     """
 
     name: str
@@ -62,6 +66,7 @@ class Param:
     maximum: float | None = None
     length: int | None = None
     optional: bool = False
+    validate: object = None
 
     def check(self, value, where):
         """Return ``value`` converted to this parameter's type, or raise.
@@ -88,6 +93,24 @@ class Param:
             value = _number(value, self.kind, label)
             self._bounds(value, label)
             return value
+        if self.kind == "strs":
+            if isinstance(value, str):
+                value = [v.strip() for v in value.split(",") if v.strip()]
+            if not isinstance(value, (list, tuple)) or not all(isinstance(v, str) for v in value):
+                raise ParameterError(f"{label} must be a list of strings, not {value!r}")
+            for v in value:
+                if self.choices and v not in self.choices:
+                    raise ParameterError(f"{label}: {v!r} is not one of {', '.join(self.choices)}"
+                                         f"{_suggest(v, self.choices)}")
+            if self.length is not None and len(value) != self.length:
+                raise ParameterError(f"{label} must hold {self.length} strings, got {len(value)}")
+            if self.validate is not None:
+                for v in value:
+                    try:
+                        self.validate(v)
+                    except ParameterError as exc:
+                        raise ParameterError(f"{label}: {exc}") from None
+            return tuple(value)
         if self.kind == "floats":
             if isinstance(value, str):
                 text = value.strip().strip("[]")
@@ -178,6 +201,12 @@ _PHASE_CURVE = (
           "phase-resolved spectrum", minimum=0.0, maximum=1.0),
 )
 
+
+def _check_model(text):
+    from .modelspec import parse_model
+    parse_model(text)
+
+
 STAGES = {
     "calibrate": StageSpec("calibrate", "5", "raw ramps to calibrated frames", (
         Param("ramp_method", "fit", "str",
@@ -248,13 +277,36 @@ STAGES = {
               "orbit; 0 = found from the intervals (the break between the cadence and the "
               "occultation gaps, with a warning when it is ambiguous)", minimum=0.0),
     )),
-    "detrend": StageSpec("detrend", "5", "light curves divided by a systematics model", (
-        Param("visit_order", 1, "int", "order of the visit-long polynomial in time", minimum=0, maximum=4),
-        Param("orbit_order", 2, "int",
-              "order of the orbit-phase polynomial shared by all orbits (-1 = none)", minimum=-1, maximum=4),
-        Param("orbit_ramp", True, "bool",
-              "fit an exponential ramp at the start of every orbit (of the visit, for a stare)"),
-        Param("scan_offset", True, "bool", "fit a flux offset between forward and reverse scans"),
+    "detrend": StageSpec("detrend", "6", "light curves divided by a systematics model", (
+        Param("models", (), "strs",
+              "systematics models to fit, rank and marginalise over, each tokens joined by '+': "
+              "visit0|visit1|visit2|visitexp, orbit0..orbit4, scan, ramp|ramp-first|ramp-shared, "
+              "traps|traps1, dx, dy, width, background, cm-sys|cm-res (e.g. "
+              "visit1+orbit2+scan+ramp); empty = the default grid for scans or for stares",
+              validate=_check_model),
+        Param("criterion", "bic", "str",
+              "information criterion that ranks and weights the models: 'bic' (Schwarz) or "
+              "'aic' (Akaike)", choices=("bic", "aic")),
+        Param("depth_errors", "covariance", "str",
+              "depth error each model contributes and the product carries: 'covariance' (scaled "
+              "by the root of the reduced chi-square above 1), 'beta' (times the time-averaging "
+              "beta factor above 1), 'permutation' (cyclic shifts of the residuals), 'largest'",
+              choices=("covariance", "beta", "permutation", "largest")),
+        Param("permutation_shifts", 100, "int",
+              "cyclic shifts of the residuals for the permutation errors (0 = not computed)",
+              minimum=0),
+        Param("white_free", ("t0",), "strs",
+              "event parameters fitted to the white light curve (a priori values as the start) "
+              "and given to the channels: any of t0, a_rs, inclination; empty = the ephemeris",
+              choices=("t0", "a_rs", "inclination")),
+        Param("limb_darkening", "visit", "str",
+              "channels' limb darkening: 'visit' = the event's u1, u2 for every channel; 'table' = "
+              "the event's ld_wavelength, ld_u1, ld_u2 at each channel's centre; 'fit' = fitted "
+              "per channel with the white light's pair as a Gaussian prior",
+              choices=("visit", "table", "fit")),
+        Param("limb_darkening_prior", 0.1, "float",
+              "standard deviation of the prior on each channel's u1 and u2 (limb_darkening = fit)",
+              minimum=0.001),
         Param("drop_first_orbit", True, "bool", "leave the first orbit of a multi-orbit visit out of the fit"),
         Param("fit", "joint", "str",
               "'joint' = systematics and event depth together; 'outside' = systematics from "
@@ -266,8 +318,6 @@ STAGES = {
               "eclipse phase curve in a joint fit: 'planet' = the planet's flux (constant + "
               "sinusoids) hidden by the eclipse, depth at mid-eclipse; 'systematic' = independent "
               "sinusoids multiplying the systematics", choices=("planet", "systematic")),
-        Param("common_mode", False, "bool",
-              "divide each channel by the white light curve's systematics model before fitting it"),
     ) + _PHASE_CURVE),
     "joint": StageSpec("joint", "1", "the visits of a programme fitted together: each its own "
                        "systematics (its [stages.detrend]), one planet per channel",

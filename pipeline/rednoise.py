@@ -96,7 +96,7 @@ def beta_factor(residuals, *, mask=None, bin_sizes=None):
     -----
     The white-noise expectation of the rms of means of N residuals in M bins
     is :math:`\\sigma_1 N^{-1/2} \\sqrt{M/(M-1)}` (Pont et al. 2006; Winn et
-    al. 2008); see :func:`lightledger.pipeline.detrend.binned_rms`.  An error
+    al. 2008); see :func:`lightledger.pipeline.diagnostics.binned_rms`.  An error
     is scaled by :math:`\\max(\\beta, 1)` (:func:`scaled_error`): beta below
     1 is the scatter of the estimate on white noise, not a reason to shrink
     an error.
@@ -105,7 +105,7 @@ def beta_factor(residuals, *, mask=None, bin_sizes=None):
     ----------
     Pont, Zucker & Queloz 2006, MNRAS 373, 231; Winn et al. 2008, ApJ 683, 1076.
     """
-    from .detrend import binned_rms
+    from .diagnostics import binned_rms
 
     r = np.asarray(residuals, dtype=float)
     if r.ndim != 1:

@@ -341,53 +341,55 @@ def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *
     if tau.shape != kappa.shape or not np.all(np.isfinite(tau) & (tau > 0)):
         raise ParameterError(f"release_times must be {kappa.size} finite times in seconds > 0, "
                              f"one per population; got {release_times!r}")
-    cols = _ramp_columns(f, texp, dark, new_orbit, kappa, tau)
     h = 1e-4
-    derivs = []
-    for p in range(kappa.size):
+    n_pop = kappa.size
+    # Every parameter set at once (the one asked for, then each log-parameter
+    # stepped up and down): one pass over the exposures.
+    sets_k = np.repeat(kappa[None, :], 1 + 4 * n_pop, axis=0)
+    sets_t = np.repeat(tau[None, :], 1 + 4 * n_pop, axis=0)
+    for p in range(n_pop):
         for which in (0, 1):
-            up_k, dn_k, up_t, dn_t = kappa.copy(), kappa.copy(), tau.copy(), tau.copy()
-            if which == 0:
-                up_k[p] *= np.exp(h)
-                dn_k[p] *= np.exp(-h)
-            else:
-                up_t[p] *= np.exp(h)
-                dn_t[p] *= np.exp(-h)
-            d = (_ramp_columns(f, texp, dark, new_orbit, up_k, up_t)
-                 - _ramp_columns(f, texp, dark, new_orbit, dn_k, dn_t)) / (2 * h)
-            derivs.append(d)
+            row = 1 + 4 * p + 2 * which
+            target = sets_k if which == 0 else sets_t
+            target[row, p] *= np.exp(h)
+            target[row + 1, p] *= np.exp(-h)
+    cols_all = _ramp_columns(f, texp, dark, new_orbit, sets_k, sets_t)
+    cols = cols_all[0]
+    derivs = [(cols_all[1 + 2 * j] - cols_all[2 + 2 * j]) / (2 * h) for j in range(2 * n_pop)]
     names = tuple(f"trap{p}_{kind}" for p in range(kappa.size)
                   for kind in ("eta", "initial", "refill"))
     return TrapRampBasis(columns=cols, derivatives=np.stack(derivs), names=names)
 
 
 def _ramp_columns(f, texp, dark, new_orbit, kappa, tau):
-    """Lost fraction per unit amplitude, shape (n_exposures, n_series, 3 n_pop)."""
+    """Lost fraction per unit amplitude for parameter sets ``kappa``, ``tau`` of shape
+    (n_sets, n_pop); returns shape (n_sets, n_exposures, n_series, 3 n_pop)."""
     n, m = f.shape
-    n_pop = kappa.size
-    k = kappa[:, None, None]
-    tp = tau[:, None, None]
-    # State per population: occupancy per unit (eta, initial, refill), shape (n_pop, 3, m).
-    E = np.zeros((n_pop, 3, m))
-    E[:, 1] = 1.0
-    unit_eta = np.zeros((1, 3, 1))
-    unit_eta[0, 0, 0] = 1.0
-    unit_refill = np.zeros((1, 3, 1))
-    unit_refill[0, 2, 0] = 1.0
-    trapped = np.empty((n, n_pop, 3, m))
+    n_sets, n_pop = kappa.shape
+    k = kappa[:, :, None, None]
+    tp = tau[:, :, None, None]
+    # State: occupancy per unit (eta, initial, refill), shape (n_sets, n_pop, 3, m).
+    E = np.zeros((n_sets, n_pop, 3, m))
+    E[:, :, 1] = 1.0
+    unit_eta = np.zeros((1, 1, 3, 1))
+    unit_eta[0, 0, 0, 0] = 1.0
+    unit_refill = np.zeros((1, 1, 3, 1))
+    unit_refill[0, 0, 2, 0] = 1.0
+    release = np.exp(-dark[None, None, None, :, None] / tp[..., None])   # (S, P, 1, n-1, 1)
+    trapped = np.empty((n, n_sets, n_pop, 3, m))
     for i in range(n):                      # time order
-        c = k * f[i][None, None, :] + 1.0 / tp            # (n_pop, 1, m)
+        fi = f[i][None, None, None, :]
+        c = k * fi + 1.0 / tp                              # (S, P, 1, m)
         a = np.exp(-c * texp[i])
-        E_inf = unit_eta * f[i][None, None, :] / c        # per unit eta
-        trapped[i] = (1.0 - a) * (E_inf - E)
+        trapped[i] = (1.0 - a) * (unit_eta * fi / c - E)
         E = E + trapped[i]
         if i + 1 < n:
-            E = E * np.exp(-dark[i] / tp)
+            E = E * release[..., i, :]
             if new_orbit[i]:
                 E = E + unit_refill
     incident = f * texp[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
-        lost = np.where(incident[:, None, None, :] > 0,
-                        trapped / incident[:, None, None, :], 0.0)
-    # (n, n_pop, 3, m) -> (n, m, n_pop * 3)
-    return np.moveaxis(lost, 3, 1).reshape(n, m, n_pop * 3)
+        lost = np.where(incident[:, None, None, None, :] > 0,
+                        trapped / incident[:, None, None, None, :], 0.0)
+    # (n, S, P, 3, m) -> (S, n, m, P * 3)
+    return lost.transpose(1, 0, 4, 2, 3).reshape(n_sets, n, m, n_pop * 3)

@@ -174,7 +174,7 @@ SCAN = Scenario(
     drift_x=(0.06, 0.03, 0.01), drift_y=(0.04, 0.02, 0.01),
     channel_edges=tuple(round(1.30 + 0.07 * k, 4) for k in range(11)),
     trap_populations=((130.0, 0.007, 420.0), (1200.0, 0.010, 14000.0)),
-    trap_initial=(0.0, 300.0), trap_refill=(50.0, 150.0),
+    trap_initial=(0.0, 0.0), trap_refill=(0.0, 0.0),
 )
 
 STARE = Scenario(

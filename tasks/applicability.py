@@ -1,6 +1,6 @@
 """Which stage parameters have no effect on a given visit, and why.
 
-A parameter such as ``detrend.scan_offset`` means nothing for a staring
+A parameter such as ``detrend.drop_first_orbit`` means nothing for a staring
 visit, and ``bin.n_channels`` means nothing once ``bin.edges`` is given.  The
 parameter still enters the entry's identity (its value is recorded), but the
 notebook entry and page say that it did not apply, so that an observer does
@@ -65,8 +65,6 @@ def _bin(p, f):
 def _detrend(p, f):
     out = {}
     if not f["scanning"]:
-        out["scan_offset"] = "a stare has no scan directions"
-        out["orbit_order"] = "a stare has no orbits"
         out["drop_first_orbit"] = "a stare has no orbits"
     elif f["n_orbits"] is not None and f["n_orbits"] <= 2:
         out["drop_first_orbit"] = f"the visit has {f['n_orbits']} orbit(s); at least 3 are needed"
@@ -76,6 +74,10 @@ def _detrend(p, f):
                else "the fit is not joint")
         if "phase_curve_model" in p:
             out["phase_curve_model"] = why
+    if p.get("limb_darkening") != "fit" and "limb_darkening_prior" in p:
+        out["limb_darkening_prior"] = "the channels' limb darkening is not fitted"
+    if p.get("limb_darkening") == "fit" and f["kind"] == "eclipse":
+        out["limb_darkening"] = "limb darkening does not shape an eclipse"
     return out
 
 

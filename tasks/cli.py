@@ -299,8 +299,11 @@ def _cmd_params(args):
     for spec in STAGES.values():
         print(f"[stages.{spec.name}]  {spec.doc} (code version {spec.version})")
         for p in spec.params:
-            default = "[]" if p.default == () else str(p.default).lower() if isinstance(p.default, bool) \
-                else p.default
+            if isinstance(p.default, tuple):
+                default = "[" + ", ".join(f'"{v}"' if isinstance(v, str) else str(v)
+                                          for v in p.default) + "]"
+            else:
+                default = str(p.default).lower() if isinstance(p.default, bool) else p.default
             choices = f"  one of: {', '.join(p.choices)}" if p.choices else ""
             print(f"  {p.name} = {default}\n      {p.doc}{choices}")
         print()

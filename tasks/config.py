@@ -135,6 +135,11 @@ VISIT_SCHEMA = {
                             bounds=(0.0, 0.95)),
         "omega": Key("float", "argument of periastron, degrees", required=False, default=90.0,
                      bounds=(-360.0, 360.0)),
+        "ld_wavelength": Key("floats", "wavelengths (um, increasing) of a limb-darkening table "
+                                       "for the channels (detrend.limb_darkening = 'table')",
+                             required=False, positive=True),
+        "ld_u1": Key("floats", "u1 at each ld_wavelength", required=False),
+        "ld_u2": Key("floats", "u2 at each ld_wavelength", required=False),
     },
     "exclude": {
         "files": Key("exclude", "raw files to leave out: names, or {file = NAME, reason = TEXT}",
@@ -581,6 +586,28 @@ def load_profile(path, problems=None):
     return profile
 
 
+def _check_ld_table(path, event, problems):
+    """The event's limb-darkening table: all three lists or none, of one length,
+    wavelengths increasing.  Absent, the keys are removed (the event is unchanged)."""
+    keys = ("ld_wavelength", "ld_u1", "ld_u2")
+    given = [k for k in keys if event.get(k) is not None]
+    if not given:
+        for k in keys:
+            event.pop(k, None)
+        return
+    if len(given) != 3:
+        missing = [k for k in keys if k not in given]
+        problems.error(path, f"event.{given[0]} needs event.{missing[0]} too (a limb-darkening "
+                             f"table is ld_wavelength, ld_u1 and ld_u2)")
+        return
+    lengths = {k: len(event[k]) for k in keys}
+    if len(set(lengths.values())) != 1 or lengths["ld_wavelength"] < 1:
+        problems.error(path, f"event.ld_wavelength, ld_u1 and ld_u2 must have one equal, non-zero "
+                             f"length; got {lengths}")
+    elif any(b <= a for a, b in zip(event["ld_wavelength"], event["ld_wavelength"][1:])):
+        problems.error(path, "event.ld_wavelength must increase")
+
+
 def _load_visit(path, settings, problems):
     raw = read_toml(path, "visit description", problems)
     if raw is None:
@@ -611,6 +638,7 @@ def _load_visit(path, settings, problems):
                                  f"{event['a_rs']:g} gives impact parameter {impact:.2f} > "
                                  f"1 + rp_rs: the planet never crosses the star, there is no "
                                  f"{event['kind'] or 'event'}")
+    _check_ld_table(path, event, problems)
     overrides = {}
     given = []          # (where, stage, key, value): every value checked, each problem reported
     for stage, table in (doc["stages"] or {}).items():

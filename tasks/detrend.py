@@ -1,57 +1,64 @@
-"""Detrend stage: channel and white light curves divided by a fitted systematics model.
+"""Detrend stage: a grid of systematics models fitted, ranked and marginalised over.
 
-The systematics model (visit-long polynomial, orbit-phase polynomial,
-per-orbit exponential ramp, scan-direction offset, optional phase curve) is
-fitted with the event's depth, whose shape comes from the visit's a priori
-ephemeris (Mandel & Agol 2002 transit with quadratic limb darkening, or a
-uniform-disk eclipse).  For an eclipse fitted jointly, the phase curve is the
-planet's own flux, hidden by the eclipse (``tie_phase_curve`` of
-:func:`lightledger.pipeline.detrend.detrend_light_curve`), so that the depth
-is the planet's flux at mid-eclipse; the ramp time scale's uncertainty is
-carried into the depth error.
+Every model of the grid (``detrend.models``, or the default grid for scans
+or stares; :mod:`lightledger.pipeline.modelspec`) is fitted to the white
+light curve first, with the event's mid-time (``detrend.white_free``) and the
+systematics' shape parameters free, then to every channel with the white
+light's event and shapes, fitting only the channel's linear terms and depth
+(:mod:`lightledger.pipeline.grid`).  Each light curve ranks the models by
+BIC or AIC and marginalises its depth over them with weights from the
+criterion, the error including the spread between models (Gibson 2014;
+Wakeford et al. 2016).  Each fit's depth error is computed three ways
+(covariance, beta factor, residual permutation); ``detrend.depth_errors``
+says which one is marginalised and carried.  For an eclipse fitted jointly,
+the phase curve is the planet's own flux hidden by the eclipse.
 
 Products in ``NOTEBOOK/detrend-IDENT/``:
 
 ``detrended.fits``
-    DETRENDED (one row per exposure: time, whether it entered the fit, the
-    white and channel light curves divided by their systematics, errors,
-    systematics and full models, residuals) and DEPTHS (per channel and the
-    white band, as row ``channel = -1``: depth, error, residual rms, the
-    expected rms from the errors, their ratio, the time-averaging beta
-    factor, reduced chi-square, BIC; ``fitted`` False for a channel left
-    out, with its ``note``; ``unphysical`` for a depth negative beyond three
-    errors or hiding the whole flux, ``noisy`` for residuals above five
-    times the expected rms, each also a warning in the entry and on the
-    console);
-``detrended.ecsv``, ``depths.ecsv``
-    the same as ECSV;
-``detrend.png``
-    the white light curve before and after, with the model, and the depth
-    spectrum.
+    DETRENDED (one row per exposure: each light curve divided by the
+    systematics of its top-ranked model, errors, systematics and full models,
+    residuals), DEPTHS (per channel and the white band as ``channel = -1``:
+    the marginalised depth and error, and the top model's fit quality;
+    ``fitted`` False for a channel left out, with its ``note``;
+    ``unphysical`` for a depth negative beyond three errors or hiding the
+    whole flux, ``noisy`` for residuals above five times the expected rms,
+    each also a warning in the entry and on the console) and
+    GRID (one row per model and light curve: chi-square, BIC, AIC, weight,
+    depth, its three errors, shape parameters, the white light's fitted
+    event);
+``grid-models.fits``
+    one table per model (MODEL_NN) with that model's detrended light curves;
+``detrended.ecsv``, ``depths.ecsv``, ``grid.ecsv``
+    DETRENDED, DEPTHS and GRID as ECSV;
+``detrend.png``, ``grid.png``
+    the white light curve and the spectrum; the models' weights and spectra.
 """
 
 import dataclasses
 import time
-from functools import partial
 
 import luigi
 import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
-from lightledger.pipeline.detrend import (fit_at_fitted_radius, fit_channels, fit_light_curve,
-                                          tied_phase_curve)
+from lightledger.pipeline.detrend import tied_phase_curve
 from lightledger.pipeline.diagnostics import residual_quality
 from lightledger.pipeline.errors import LightledgerError
+from lightledger.pipeline.grid import Curves, fit_grid
+from lightledger.pipeline.limbfit import table_limb_darkening
+from lightledger.pipeline.modelspec import DEFAULT_SCAN_GRID, DEFAULT_STARE_GRID, parse_grid
 from lightledger.pipeline.plausibility import assess_fits
-from lightledger.pipeline.systematics import SystematicsInputs, standard_model
-from lightledger.pipeline.transit import eclipse_flux, transit_flux
+from lightledger.pipeline.systematics import PhaseSinusoids, SystematicsInputs, SystematicsModel
+from lightledger.pipeline.whitelight import event_template as _event_template
 
 from .base import ENTRY_NAME, VisitTask
 from .lightcurves import read_lightcurves, wide_table
 from .products import table_hdu, write_ecsv, write_fits
 
-__all__ = ["Detrend", "event_template", "read_depths"]
+__all__ = ["Detrend", "event_template", "grid_setup", "systematics_setup", "star_alone",
+           "channel_exclusions", "read_depths", "SINGLE_MODEL"]
 
 
 def event_template(bjd, event):
@@ -62,13 +69,7 @@ def event_template(bjd, event):
     hidden fraction of the planet (0 out of eclipse, 1 in full eclipse), so
     the fitted depth is fp / (1 + fp).
     """
-    shape = dict(t0=event["t0"], period=event["period"], rp_rs=event["rp_rs"],
-                 a_rs=event["a_rs"], inclination=event["inclination"])
-    if event["kind"] == "transit":
-        model = transit_flux(bjd, u1=event["u1"], u2=event["u2"], **shape)
-        return (1.0 - model) / event["rp_rs"] ** 2
-    visible = eclipse_flux(bjd, fp_fs=1.0, **shape) - 1.0
-    return 1.0 - visible
+    return _event_template(bjd, event)
 
 
 def _wants_phase_curve(setting, event, bjd):
@@ -77,69 +78,127 @@ def _wants_phase_curve(setting, event, bjd):
     return setting == "on"
 
 
-def systematics_setup(lc, event, params):
-    """The visit's systematics inputs and model, the fit options and the exposures left out.
+def _median_rate(flux, pixels, exposure_time, relative):
+    """Smooth incident rate per pixel: the median flux shaped by the a priori event."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        level = np.nanmedian(flux / relative[:, None], axis=0)
+    return relative[:, None] * (level / pixels)[None, :] / exposure_time[:, None]
 
-    Maps the detrend stage's parameters onto a
-    :class:`~lightledger.pipeline.systematics.SystematicsModel`: a stare has no
-    orbit-phase polynomial, scan offset or dropped first orbit; an eclipse
-    fitted jointly with its phase curve hides the planet's flux (the
-    ``planet`` phase-curve model).
+
+def grid_setup(lc, channels, event, params):
+    """Everything :func:`lightledger.pipeline.grid.fit_grid` needs for a visit.
+
+    Maps the detrend stage's parameters onto the grid: the model strings
+    (default grid for scans or stares), the light curves with their masks
+    (flux outliers and, when asked, the first orbit of a multi-orbit visit
+    left out), the covariates (drifts, width, background, exposure times and
+    starts) and the incident rate per pixel of each light curve for the
+    charge-trapping ramp (the median flux over the pixels that collected it:
+    channel columns times the scanned band's rows, or the trace's equivalent
+    width sqrt(2 pi) sigma for a stare).
+
+    Returns
+    -------
+    (specs, curves, options, stare)
+        ``options`` are keyword arguments of ``fit_grid``.
     """
     t = np.asarray(lc["time_bjd_tdb"], float)
+    n = t.size
     orbit = np.asarray(lc["orbit"], int)
     stare = bool(np.all(np.asarray(lc["scan_direction"]) == 0))
-    scan = not stare and params["scan_offset"]
+    specs = parse_grid(params["models"] or (DEFAULT_STARE_GRID if stare else DEFAULT_SCAN_GRID))
+    texp = (np.asarray(lc["exposure_time"], float) if "exposure_time" in lc.colnames
+            else np.full(n, np.nan))
+    covariates = {name: np.asarray(lc[name], float) for name in ("dx", "dy", "width", "background")}
+    covariates["exposure_time"] = texp
+    covariates["exposure_start"] = (t - t[0]) * 86400.0 - 0.5 * texp
     inputs = SystematicsInputs(t, orbit=orbit, orbit_time=np.asarray(lc["orbit_time"], float),
-                               scan_direction=np.asarray(lc["scan_direction"], int) if scan else None)
+                               scan_direction=None if stare
+                               else np.asarray(lc["scan_direction"], float),
+                               covariates=covariates)
     joint = params["fit"] == "joint"
     phase = (event["t0"], event["period"]) if _wants_phase_curve(params["phase_curve"], event, t) \
         and event["kind"] != "phase-curve" else None   # a phase-curve event models the planet itself
-    # An eclipse hides the planet's flux at its phase: fit that flux as the phase
-    # curve itself (joint fits only; pipeline/eventfit.py, planet_basis).
     tie = (phase is not None and event["kind"] == "eclipse" and joint
            and params["phase_curve_model"] == "planet")
-    model = standard_model(visit_order=params["visit_order"],
-                           orbit_order=max(params["orbit_order"], 0) if not stare else 0,
-                           scan_offset=scan, phase_sinusoids=None if tie else phase,
-                           ramp=params["orbit_ramp"])
-    options = dict(mode="joint" if joint else "out_of_event")
+    event_options = dict(mode="joint" if joint else "out_of_event")
+    extra = ()
     if tie:
-        options.update(tied_phase_curve(t, *phase))
+        event_options.update(tied_phase_curve(t, *phase))
+    elif phase is not None:
+        extra = (PhaseSinusoids(float(phase[0]), float(phase[1])),)
+    left_out = _left_out(orbit, params, stare)
+    bad = np.asarray(lc["flux_outlier"], bool) | left_out
+    width = float(np.nanmedian(np.asarray(lc["width"], float)))
+    rows = width * np.sqrt(2 * np.pi) if stare else width
+    n_pix = (np.asarray(channels["n_pixels"], float) if channels is not None
+             else np.ones(np.shape(lc["flux"])[1]))
+    pixels = n_pix * max(rows, 1.0)
+    depth0 = event["rp_rs"] ** 2 if event["kind"] == "transit" else 0.0
+    relative = 1.0 - depth0 * np.nan_to_num(_event_template(t, event))
+    wf = np.asarray(lc["white_flux"], float)
+    we = np.asarray(lc["white_error"], float)
+    F = np.asarray(lc["flux"], float)
+    E = np.asarray(lc["error"], float)
+    white_rate = _median_rate(wf[:, None], np.array([pixels.sum()]), texp, relative)[:, 0]
+    rate = _median_rate(F, pixels, texp, relative)
+    curves = Curves(inputs, wf, we ** 2, bad | np.asarray(lc["white_mask"], bool), F, E ** 2,
+                    np.asarray(lc["mask"], bool) | bad[:, None],
+                    white_rate=white_rate if np.all(np.isfinite(white_rate)) else None,
+                    rate=rate if np.all(np.isfinite(rate)) else None)
+    ref = float(np.nanmedian(white_rate)) if np.any(np.isfinite(white_rate)) else None
+    ld = None
+    if params["limb_darkening"] == "table" and channels is not None:
+        if "ld_wavelength" not in event:
+            raise LightledgerError("detrend.limb_darkening = 'table' needs the visit's [event] "
+                                   "ld_wavelength, ld_u1 and ld_u2")
+        ld = table_limb_darkening(np.asarray(channels["wave_mid"], float), event["ld_wavelength"],
+                                  event["ld_u1"], event["ld_u2"])
+    options = dict(event_options=event_options, extra_components=extra,
+                   free=tuple(params["white_free"]), criterion=params["criterion"],
+                   error_kind=params["depth_errors"], n_shifts=params["permutation_shifts"],
+                   stare=stare, reference_rate=ref if ref and ref > 0 else None, channel_ld=ld,
+                   ld_prior=params["limb_darkening_prior"]
+                   if params["limb_darkening"] == "fit" else None)
+    return specs, curves, options, stare
+
+
+def _left_out(orbit, params, stare):
+    """The first orbit of a visit of three orbits or more, when detrend.drop_first_orbit."""
     drop = params["drop_first_orbit"] and not stare and len(np.unique(orbit)) > 2
-    left_out = orbit == np.min(orbit) if drop else np.zeros(t.size, bool)
-    return inputs, model, options, left_out
+    return orbit == np.min(orbit) if drop else np.zeros(orbit.size, bool)
 
 
-def channel_exclusions(visit, n_channels):
-    """{channel: note} of the channels the visit description excludes (``[exclude] channels``)."""
-    notes = {}
-    for first, last, reason in (getattr(visit, "exclude", None) or {}).get("channels", ()):
-        for j in range(first, min(last, n_channels - 1) + 1):
-            notes[j] = ("not fitted: excluded by the visit description (exclude.channels)"
-                        + (f": {reason}" if reason else ""))
-    return notes
+#: The model of fits that take a single systematics model when detrend.models is empty.
+SINGLE_MODEL = {"scan": "visit1+orbit2+scan+ramp", "stare": "visit1+ramp"}
 
 
-def white_like_unfitted(result):
-    """A fit result of the white light curve's shape holding NaN: a channel not fitted."""
-    values = {}
-    for f in dataclasses.fields(result):
-        v = getattr(result, f.name)
-        if isinstance(v, np.ndarray) and v.dtype.kind == "f":
-            values[f.name] = np.full_like(v, np.nan)
-        elif isinstance(v, np.ndarray) and v.dtype.kind == "b":
-            values[f.name] = np.ones_like(v)
-        elif isinstance(v, float):
-            values[f.name] = float("nan")
-    return dataclasses.replace(result, **values)
+def systematics_setup(lc, event, params):
+    """One systematics model for a fit that takes a single model (e.g. a programme's joint fit).
 
+    The first model of ``detrend.models``, or :data:`SINGLE_MODEL` when it is
+    empty, built as :func:`grid_setup` builds the grid's (inputs with the
+    drifts, width, background, exposure times and the white light's incident
+    rate for a charge-trapping ramp).
 
-def fit_unless_masked(fit, unfitted, flux, variance, template, *, mask):
-    """``fit(...)``, or ``unfitted`` for a light curve whose every exposure is masked."""
-    if np.all(mask):
-        return unfitted
-    return fit(flux, variance, template, mask=mask)
+    Returns
+    -------
+    (inputs, model, event_options, left_out)
+        :class:`~lightledger.pipeline.systematics.SystematicsInputs`, the
+        :class:`~lightledger.pipeline.systematics.SystematicsModel`, the
+        options of :func:`~lightledger.pipeline.eventfit.fit_event` (mode,
+        the planet's phase-curve columns) and the exposures left out (the
+        first orbit, when asked).
+    """
+    stare = bool(np.all(np.asarray(lc["scan_direction"]) == 0))
+    one = dict(params)
+    one["models"] = (params["models"][0],) if params["models"] else \
+        (SINGLE_MODEL["stare" if stare else "scan"],)
+    specs, curves, options, stare = grid_setup(lc, None, event, one)
+    model = specs[0].systematics(reference_rate=options["reference_rate"], stare=stare)
+    model = SystematicsModel(model.components + tuple(options["extra_components"]))
+    return (curves.white_inputs(), model, dict(options["event_options"]),
+            _left_out(np.asarray(lc["orbit"], int), params, stare))
 
 
 def star_alone(result, kind):
@@ -155,6 +214,16 @@ def star_alone(result, kind):
     if result.star is not None:
         return result.star
     return result.systematics * (1.0 - result.depth)
+
+
+def channel_exclusions(visit, n_channels):
+    """{channel: note} of the channels the visit description excludes (``[exclude] channels``)."""
+    notes = {}
+    for first, last, reason in (getattr(visit, "exclude", None) or {}).get("channels", ()):
+        for j in range(first, min(last, n_channels - 1) + 1):
+            notes[j] = ("not fitted: excluded by the visit description (exclude.channels)"
+                        + (f": {reason}" if reason else ""))
+    return notes
 
 
 def read_depths(path):
@@ -192,78 +261,23 @@ class Detrend(VisitTask):
         if not np.any(template > 0):
             raise LightledgerError(f"{visit.path}: the {visit.event['kind']} of the ephemeris "
                                    f"(event.t0, event.period) falls outside the visit's exposures")
-        inputs, model, options, left_out = systematics_setup(lc, visit.event, params)
-        fit = partial(fit_light_curve, inputs, model=model, **options)
-        if visit.event["kind"] == "transit":
-            # the transit's shape follows the fitted radius ratio, not the a priori one
-            fit = partial(fit_at_fitted_radius, fit,
-                          lambda rp: event_template(t, dict(visit.event, rp_rs=rp)))
-        self.progress(0, 2, "white light curve")
-        bad = np.asarray(lc["flux_outlier"], bool)
-        wf = np.asarray(lc["white_flux"], float)
-        we = np.asarray(lc["white_error"], float)
-        white = fit(wf, we ** 2, template, mask=bad | left_out | np.asarray(lc["white_mask"], bool))
-        self.progress(1, 2, "channel light curves")
-        flux = np.asarray(lc["flux"], float)
-        err = np.asarray(lc["error"], float)
-        mask = np.asarray(lc["mask"], bool) | (bad | left_out)[:, None]
+        specs, curves, options, stare = grid_setup(lc, channels, visit.event, params)
         notes = channel_exclusions(visit, len(channels))
+        mask = np.array(curves.mask)
         for j in notes:                     # the observer's excluded channels are not fitted
             mask[:, j] = True
-        unfitted = white_like_unfitted(white)
-        chans = fit_channels(t, flux, err ** 2, template, mask=mask,
-                             divide_white=white.systematics if params["common_mode"] else None,
-                             fit=partial(fit_unless_masked, fit, unfitted))
         for j in range(len(channels)):
             if j not in notes and np.all(mask[:, j]):
                 notes[j] = "not fitted: every exposure of the channel is masked"
-        used = ~np.asarray(white.fit_mask, bool)   # fit_mask is True where left out
-        # Detrended light curves keep the whole astrophysical signal: divided by the
-        # systematics alone and normalised to the star alone.
+        curves = dataclasses.replace(curves, mask=mask)
+        self.progress(0, 1, "model grid")
+        grid = fit_grid(specs, curves, visit.event,
+                        progress=lambda done, total, text: self.progress(done, total, text),
+                        **options)
+        n_ch = len(channels)
         kind = visit.event["kind"]
-        w_star = star_alone(white, kind)
-        c_star = np.stack([star_alone(f, kind) for f in chans.fits], axis=1) \
-            * chans.white_shape[:, None]
-
-        det = Table()
-        det["exposure"] = lc["exposure"]
-        det["time_bjd_tdb"] = t
-        det["time_bjd_tdb"].unit = "d"
-        det["used"] = used
-        det["white_detrended"] = wf / w_star
-        det["white_detrended_error"] = we / np.abs(w_star)
-        det["white_systematics"] = w_star
-        det["white_model"] = white.model
-        det["white_residual"] = (wf - white.model) / w_star
-        det["detrended"] = flux / c_star
-        det["detrended_error"] = err / np.abs(c_star)
-        det["systematics"] = c_star
-        det["model"] = chans.model
-        det["residual"] = (flux - chans.model) / c_star
-        for name in ("white_systematics", "white_model", "systematics", "model"):
-            det[name].unit = "electron"
-
-        rows = []
-        fluxes = [(-1, float(lc.meta.get("WLO", channels["wave_lo"][0])),
-                   float(lc.meta.get("WHI", channels["wave_hi"][-1])), white,
-                   wf, we)]
-        for j in range(len(channels)):
-            fluxes.append((j, float(channels["wave_lo"][j]), float(channels["wave_hi"][j]),
-                           chans.fits[j], flux[:, j], err[:, j]))
-        for j, lo, hi, fit_j, f, e in fluxes:
-            q = residual_quality(fit_j.residuals, fit_j.detrended_error,
-                                 ~np.asarray(fit_j.fit_mask, bool), fit_j.n_params)
-            rows.append({"channel": j, "wave_lo": lo, "wave_hi": hi, "wave_mid": 0.5 * (lo + hi),
-                         "depth": fit_j.depth, "depth_error": fit_j.depth_error,
-                         "rms_ppm": q.rms * 1e6,
-                         "rms_dof_ppm": q.rms * 1e6 * np.sqrt(q.n_used / max(q.n_used - fit_j.n_params, 1)),
-                         "expected_ppm": q.expected * 1e6,
-                         "rms_over_expected": q.rms / q.expected if q.expected else np.nan,
-                         "beta": q.beta, "reduced_chi2": fit_j.reduced_chi2, "bic": fit_j.bic,
-                         "n_params": fit_j.n_params, "n_used": q.n_used, "tau_min": fit_j.tau * 1440
-                         if fit_j.tau is not None and np.isfinite(fit_j.tau) else np.nan,
-                         "shape_at_edge": ", ".join(getattr(fit_j, "shapes_at_edge", ()))})
-        depths = Table(rows=rows, names=list(rows[0]))
+        det = _detrended_table(lc, grid, grid.best, kind)
+        depths = _depths_table(lc, channels, grid, visit.event)
         # can the results be trusted? (pipeline/plausibility.py)
         quality = assess_fits(depths["depth"], depths["depth_error"],
                               np.asarray(depths["rms_dof_ppm"], float) * 1e-6,
@@ -278,39 +292,55 @@ class Detrend(VisitTask):
                 label = "white light curve" if c < 0 else f"channel {int(c)}"
                 warnings.append(f"{self.folder / 'detrended.fits'}: {label}: {reason}")
         for c, names in zip(depths["channel"], depths["shape_at_edge"]):
-            if names:
-                label = "white light curve" if c < 0 else f"channel {int(c)}"
-                warnings.append(f"{label}: {names} chosen at the end of the range searched "
-                                f"(the grid extended to what the exposures can tell apart): "
-                                f"this light curve does not constrain it")
-        for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"),
-                           ("tau_min", "min")):
-            depths[name].unit = unit
-        depths.meta["event"] = visit.event["kind"]
-        depths.meta["depth_meaning"] = ("(rp/rs)^2" if visit.event["kind"] == "transit"
-                                        else "fp/(1+fp)")
+            if names and c < 0:         # the channels share the white light's shapes
+                warnings.append(f"white light curve: {names} of its top model chosen at the end "
+                                f"of the range searched (the grid extended to what the exposures "
+                                f"can tell apart): this light curve does not constrain it")
+        table = grid_table(grid, channels)
 
         prov = self.provenance([lc_path])
         folder = self.folder
         fits_path = folder / "detrended.fits"
-        hdus = [table_hdu(det, "DETRENDED"), table_hdu(depths, "DEPTHS")]
+        hdus = [table_hdu(det, "DETRENDED"), table_hdu(depths, "DEPTHS"), table_hdu(table, "GRID")]
         hdus[1].header["EVENT"] = (visit.event["kind"], "event whose depth was fitted")
         hdus[1].header["DEPTHIS"] = (depths.meta["depth_meaning"], "meaning of the depth column")
+        hdus[1].header["CRITERN"] = (grid.criterion.upper(), "criterion weighting the models")
+        hdus[1].header["ERRKIND"] = (grid.error_kind, "depth error marginalised and carried")
+        hdus[1].header["NMODELS"] = (len(specs), "systematics models in the grid")
         hdus[1].header["NUNPHYS"] = (int(np.sum(depths["unphysical"])),
                                      "curves with an unphysical depth")
         hdus[1].header["NNOISY"] = (int(np.sum(depths["noisy"])),
                                     "curves with residual rms above 5x expected")
+        for key, name in (("T0FIT", "t0"), ("ARSFIT", "a_rs"), ("INCFIT", "inclination")):
+            best = grid.white_fits[grid.white_owner[grid.best[0]]]
+            hdus[1].header[key] = (float(best.event[name]),
+                                   ("fitted " if name in best.event_errors else "a priori ") + name)
         write_fits(fits_path, hdus, prov)
-        outputs = [fits_path]
-        for name, table in (("detrended.ecsv", wide_table(det, len(channels))), ("depths.ecsv", depths)):
-            write_ecsv(folder / name, table, prov)
+        models_path = folder / "grid-models.fits"
+        model_hdus = []
+        for m, spec in enumerate(specs):
+            hdu = table_hdu(_detrended_table(lc, grid, np.full(n_ch + 1, m), kind), f"MODEL_{m:02d}")
+            hdu.header["MODEL"] = (spec.name, "systematics model of this table")
+            model_hdus.append(hdu)
+        write_fits(models_path, model_hdus, prov)
+        outputs = [fits_path, models_path]
+        for name, tab in (("detrended.ecsv", wide_table(det, n_ch, channels)), ("depths.ecsv", depths),
+                          ("grid.ecsv", table)):
+            write_ecsv(folder / name, tab, prov)
             outputs.append(folder / name)
-        from .figures import detrend_figure
+        from .figures import detrend_figure, grid_figure
+        wb = grid.fits[grid.best[0]][0]
+        used = ~np.asarray(wb.fit_mask, bool)
         fig = folder / "detrend.png"
-        detrend_figure(fig, t, wf, we, white.model, white.systematics, used,
-                       np.asarray(depths["wave_mid"][1:]), depths["depth"][1:],
-                       depths["depth_error"][1:], visit.event["kind"])
+        detrend_figure(fig, t, curves.white_flux, np.sqrt(curves.white_variance), wb.model,
+                       star_alone(wb, kind), used, np.asarray(depths["wave_mid"][1:]),
+                       depths["depth"][1:], depths["depth_error"][1:], visit.event["kind"])
+        fig2 = folder / "grid.png"
+        grid_figure(fig2, [s.name for s in specs], grid.weight, grid.depth, grid.error,
+                    np.asarray(depths["wave_mid"][1:]), grid.value, grid.value_error,
+                    visit.event["kind"])
         w = depths[0]
+        order = np.argsort(-grid.weight[:, 0])
         metrics = {"white depth (ppm)": round(float(w["depth"]) * 1e6, 1),
                    "white depth error (ppm)": round(float(w["depth_error"]) * 1e6, 1),
                    "white rms (ppm)": round(float(w["rms_ppm"]), 1),
@@ -320,10 +350,17 @@ class Detrend(VisitTask):
                    "median channel rms / expected":
                        round(float(np.nanmedian(depths["rms_over_expected"][1:])), 3),
                    "exposures fitted": int(used.sum()),
+                   "models": len(specs),
+                   f"white light ranking ({grid.criterion.upper()} weight)":
+                       [f"{specs[m].name} {grid.weight[m, 0]:.3f}" for m in order[:5]
+                        if grid.weight[m, 0] > 0],
+                   "channels' top models": sorted({specs[m].name for m in grid.best[1:] if m >= 0}),
+                   "depth errors carried": grid.error_kind,
+                   "failed fits": len(grid.failures),
                    **({"channels not fitted": {str(j): note for j, note in sorted(notes.items())}}
                       if notes else {})}
-        self.progress(2, 2, "light curves fitted")
-        self.write_entry(self.output().path, [lc_path], outputs, metrics, [fig], started,
+        self.progress(1, 1, "model grid")
+        self.write_entry(self.output().path, [lc_path], outputs, metrics, [fig, fig2], started,
                          warnings=warnings)
 
     def _run_phase_curve(self, started, lc_path, lc, channels):
@@ -346,3 +383,149 @@ class Detrend(VisitTask):
         self.progress(len(channels) + 2, len(channels) + 2, "white and channel light curves")
         self.write_entry(self.output().path, [lc_path], outputs, metrics, figs, started)
 
+
+def _detrended_table(lc, grid, which, kind):
+    """DETRENDED: each light curve c with the fit of model ``which[c]``.
+
+    The light curves keep the whole astrophysical signal: divided by the
+    systematics alone and normalised to the star alone (:func:`star_alone`); a
+    channel's systematics include any common mode divided out before its fit.
+    A model that could not be fitted (more parameters than exposures) gets NaN.
+    """
+    n_ch = len(which) - 1
+    t = np.asarray(lc["time_bjd_tdb"], float)
+    wf = np.asarray(lc["white_flux"], float)
+    we = np.asarray(lc["white_error"], float)
+    flux = np.asarray(lc["flux"], float)
+    err = np.asarray(lc["error"], float)
+    white = grid.fits[grid.white_owner[which[0]]][0]
+    nan = np.full(t.size, np.nan)
+    det = Table()
+    det["exposure"] = lc["exposure"]
+    det["time_bjd_tdb"] = t
+    det["time_bjd_tdb"].unit = "d"
+    det["used"] = ~np.asarray(white.fit_mask, bool) if white is not None else np.zeros(t.size, bool)
+    w_star = star_alone(white, kind) if white is not None else nan
+    with np.errstate(divide="ignore", invalid="ignore"):
+        det["white_detrended"] = wf / w_star
+        det["white_detrended_error"] = we / np.abs(w_star)
+        det["white_systematics"] = w_star
+        det["white_model"] = white.model if white is not None else nan
+        det["white_residual"] = (wf - det["white_model"]) / w_star
+        cols = {k: np.full((t.size, n_ch), np.nan)
+                for k in ("detrended", "detrended_error", "systematics", "model", "residual")}
+        for j in range(n_ch):
+            fit = grid.fits[which[1 + j]][1 + j] if which[1 + j] >= 0 else None
+            if fit is None:
+                continue
+            star = star_alone(fit, kind)
+            cols["detrended"][:, j] = flux[:, j] / star
+            cols["detrended_error"][:, j] = err[:, j] / np.abs(star)
+            cols["systematics"][:, j] = star
+            cols["model"][:, j] = fit.model
+            cols["residual"][:, j] = (flux[:, j] - fit.model) / star
+    for name, values in cols.items():
+        det[name] = values
+    for name in ("white_systematics", "white_model", "systematics", "model"):
+        det[name].unit = "electron"
+    return det
+
+
+def _depths_table(lc, channels, grid, event):
+    """DEPTHS: the marginalised depth of every light curve and its top model's quality."""
+    rows = []
+    bands = [(-1, float(lc.meta.get("WLO", channels["wave_lo"][0])),
+              float(lc.meta.get("WHI", channels["wave_hi"][-1])))]
+    bands += [(j, float(channels["wave_lo"][j]), float(channels["wave_hi"][j]))
+              for j in range(len(channels))]
+    for c, (j, lo, hi) in enumerate(bands):
+        m = int(grid.best[c])
+        if m < 0:                           # not fitted
+            rows.append(_unfitted_row(j, lo, hi))
+            continue
+        fit = grid.fits[m][c]
+        q = residual_quality(fit.residuals, fit.detrended_error, ~np.asarray(fit.fit_mask, bool),
+                             fit.n_params)
+        rows.append({"channel": j, "wave_lo": lo, "wave_hi": hi, "wave_mid": 0.5 * (lo + hi),
+                     "depth": float(grid.value[c]), "depth_error": float(grid.value_error[c]),
+                     "error_models": float(grid.between[c]),
+                     "best_model": grid.specs[m].name, "best_weight": float(grid.weight[m, c]),
+                     "depth_best": float(grid.depth[m, c]),
+                     "error_covariance": float(grid.error_covariance[m, c]),
+                     "error_beta": float(grid.error_beta[m, c]),
+                     "error_permutation": float(grid.error_permutation[m, c]),
+                     "rms_ppm": q.rms * 1e6,
+                     "rms_dof_ppm": q.rms_dof * 1e6,
+                     "expected_ppm": q.expected * 1e6,
+                     "rms_over_expected": q.rms / q.expected if q.expected else np.nan,
+                     "beta": q.beta, "reduced_chi2": fit.reduced_chi2, "bic": fit.bic,
+                     "n_params": fit.n_params, "n_used": q.n_used,
+                     "tau_min": fit.tau * 1440 if fit.tau is not None and np.isfinite(fit.tau)
+                     else np.nan,
+                     # the shapes come from the model's white fit, which channels share
+                     "shape_at_edge": ", ".join(
+                         grid.white_fits[grid.white_owner[m]].result.shapes_at_edge)})
+    depths = Table(rows=rows, names=list(rows[0]))
+    for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"), ("tau_min", "min")):
+        depths[name].unit = unit
+    depths.meta["event"] = event["kind"]
+    depths.meta["depth_meaning"] = "(rp/rs)^2" if event["kind"] == "transit" else "fp/(1+fp)"
+    depths.meta["depth_error"] = (f"marginalised over {len(grid.specs)} models with "
+                                  f"{grid.criterion.upper()} weights; each model's error: "
+                                  f"{grid.error_kind}")
+    return depths
+
+
+def _unfitted_row(j, lo, hi):
+    nan = float("nan")
+    row = {"channel": j, "wave_lo": lo, "wave_hi": hi, "wave_mid": 0.5 * (lo + hi)}
+    for name in ("depth", "depth_error", "error_models"):
+        row[name] = nan
+    row.update(best_model="", best_weight=nan)
+    for name in ("depth_best", "error_covariance", "error_beta", "error_permutation", "rms_ppm",
+                 "rms_dof_ppm", "expected_ppm", "rms_over_expected", "beta", "reduced_chi2", "bic"):
+        row[name] = nan
+    row.update(n_params=0, n_used=0, tau_min=nan, shape_at_edge="")
+    return row
+
+
+def grid_table(grid, channels):
+    """GRID: one row per model and light curve (channel -1 = white light)."""
+    rows = []
+    n_curves = grid.weight.shape[1]
+    for c in range(n_curves):
+        ranks = np.empty(len(grid.specs), int)
+        ranks[np.argsort(-grid.weight[:, c], kind="stable")] = np.arange(1, len(grid.specs) + 1)
+        for m, spec in enumerate(grid.specs):
+            if c == 0 and grid.white_owner[m] != m:
+                continue          # the same white fit as an earlier model
+            white = grid.white_fits[grid.white_owner[m]]
+            fit = grid.fits[m][c]
+            shapes = "" if white is None else ", ".join(
+                f"{k}={v:.6g}" for k, v in sorted(white.shapes.items()))
+            ev = white.event if white is not None else {}
+            err = white.event_errors if white is not None else {}
+            rows.append({
+                "model": spec.name if c else spec.white_name, "model_index": m,
+                "channel": c - 1, "rank": int(ranks[m]),
+                "n_params": int(grid.n_params[m, c]), "n_points": int(grid.n_points[m, c]),
+                "chi2": float(grid.chi2[m, c]), "bic": float(grid.bic[m, c]),
+                "aic": float(grid.aic[m, c]), "weight": float(grid.weight[m, c]),
+                "depth": float(grid.depth[m, c]), "depth_error": float(grid.error[m, c]),
+                "error_covariance": float(grid.error_covariance[m, c]),
+                "error_beta": float(grid.error_beta[m, c]), "beta": float(grid.beta[m, c]),
+                "error_permutation": float(grid.error_permutation[m, c]),
+                "shapes": shapes,
+                "t0": float(ev.get("t0", np.nan)), "t0_error": float(err.get("t0", np.nan)),
+                "a_rs": float(ev.get("a_rs", np.nan)), "a_rs_error": float(err.get("a_rs", np.nan)),
+                "inclination": float(ev.get("inclination", np.nan)),
+                "inclination_error": float(err.get("inclination", np.nan)),
+                "status": "ok" if fit is not None else "failed"})
+    table = Table(rows=rows, names=list(rows[0]))
+    for name, unit in (("t0", "d"), ("t0_error", "d"), ("inclination", "deg"),
+                       ("inclination_error", "deg")):
+        table[name].unit = unit
+    table.meta["criterion"] = grid.criterion
+    table.meta["depth_error"] = grid.error_kind
+    table.meta["failures"] = list(grid.failures)
+    return table

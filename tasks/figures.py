@@ -569,3 +569,35 @@ def overlay_png(stage, entries, *, dpi=90):
     finally:
         plt.close(fig)
     return buffer.getvalue()
+
+
+def grid_figure(path, names, weight, depth, error, wave_mid, value, value_error, kind):
+    """The model grid: white-light weights per model, and every model's spectrum.
+
+    ``weight``, ``depth``, ``error`` have shape (n_models, 1 + n_channels)
+    (white light first); each model's spectrum is drawn with an opacity that
+    grows with its mean channel weight, the marginalised spectrum in black.
+    """
+    fig, axes = plt.subplots(1, 2, figsize=(14, 0.9 + 0.28 * max(len(names), 6)), layout=None)
+    fig.subplots_adjust(left=0.27, right=0.98, bottom=0.12, top=0.93, wspace=0.25)
+    y = np.arange(len(names))
+    axes[0].barh(y, weight[:, 0], color="tab:blue", label="white light")
+    axes[0].plot(np.mean(weight[:, 1:], axis=1), y, "o", color="tab:orange",
+                 label="channels (mean)")
+    axes[0].set_yticks(y, names, fontsize=7)
+    axes[0].invert_yaxis()
+    axes[0].set_xlim(0, 1)
+    axes[0].set_xlabel("weight")
+    axes[0].legend(fontsize=8, loc="lower right")
+    scale = 1e6
+    mean_w = np.mean(weight[:, 1:], axis=1)
+    for m in range(len(names)):
+        if np.all(np.isfinite(depth[m, 1:])):
+            axes[1].plot(wave_mid, depth[m, 1:] * scale, "-", color="tab:gray",
+                         alpha=float(0.15 + 0.85 * mean_w[m]), lw=1)
+    axes[1].errorbar(wave_mid, value[1:] * scale, value_error[1:] * scale, fmt="o", color="k",
+                     label="marginalised")
+    axes[1].set_xlabel("wavelength (um)")
+    axes[1].set_ylabel(f"{kind} depth (ppm)")
+    axes[1].legend(fontsize=8)
+    return save_figure(fig, path)

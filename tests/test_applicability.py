@@ -7,15 +7,15 @@ from lightledger.tasks.applicability import not_applying, visit_facts
 def test_scan_parameters_do_not_apply_to_a_stare():
     facts = visit_facts(scanning=False, n_orbits=1, kind="eclipse", phase_curve=True)
     detrend = not_applying("detrend", resolve("detrend"), facts)
-    assert {"scan_offset", "orbit_order", "drop_first_orbit"} <= set(detrend)
-    assert "visit_order" not in detrend and "phase_curve_model" not in detrend
+    assert {"drop_first_orbit", "limb_darkening_prior"} <= set(detrend)
+    assert "models" not in detrend and "phase_curve_model" not in detrend
     assert "band_padding" in not_applying("calibrate", resolve("calibrate"), facts)
 
 
 def test_scan_visit_and_channel_choices():
     facts = visit_facts(scanning=True, n_orbits=5, kind="transit")
     detrend = not_applying("detrend", resolve("detrend"), facts)
-    assert "scan_offset" not in detrend and "drop_first_orbit" not in detrend
+    assert "models" not in detrend and "drop_first_orbit" not in detrend
     assert "phase_curve_model" in detrend              # a transit has no eclipse phase curve
     assert "drop_first_orbit" in not_applying("detrend", resolve("detrend"),
                                               visit_facts(scanning=True, n_orbits=2, kind="transit"))

@@ -221,8 +221,8 @@ def test_reduction_sets_aside_flags_and_goes_on(troubled_visit, capsys, science)
     white = depths[depths["channel"] == -1][0]
     assert white["noisy"] and white["rms_dof_ppm"] > 5 * white["expected_ppm"]
     assert fits.getheader(detrended, "DEPTHS")["NNOISY"] == int(np.sum(depths["noisy"])) > 0
-    flagged = [l for l in lines if l.startswith("lightledger: warning: ") and "detrended.fits: "
-               "white light curve: residual rms" in l]
+    flagged = [l for l in lines if l.startswith("lightledger: warning: ")
+               and "detrended.fits: white light curve: " in l and "residual rms" in l]
     assert len(flagged) == 1 and any("white light curve" in w for w in entry["warnings"])
     page = (notebook / "index.html").read_text(encoding="utf-8")
     assert "warning: " in page and "set aside" in page

@@ -136,7 +136,7 @@ def test_bad_toml_syntax(visit_dir):
 def test_set_assignment_is_validated():
     assert parse_assignment("extract.clip_threshold=4") == ("extract", "clip_threshold", 4.0)
     assert parse_assignment("bin.edges=[1.1, 1.2,1.3]") == ("bin", "edges", (1.1, 1.2, 1.3))
-    assert parse_assignment("detrend.orbit_ramp=false") == ("detrend", "orbit_ramp", False)
+    assert parse_assignment("detrend.drop_first_orbit=false") == ("detrend", "drop_first_orbit", False)
     with pytest.raises(ParameterError, match="did you mean 'clip_threshold'"):
         parse_assignment("extract.clip_thresold=4")
     with pytest.raises(ParameterError, match="did you mean 'extract'"):

@@ -113,7 +113,7 @@ def test_editing_a_later_stage_in_the_visit_reruns_only_that_stage(reduced, tmp_
     notebook = copy.parent / "notebook"
     text = copy.read_text()
     assert "[stages.detrend]\n" in text
-    copy.write_text(text.replace("[stages.detrend]\n", "[stages.detrend]\nvisit_order = 2\n"))
+    copy.write_text(text.replace("[stages.detrend]\n", "[stages.detrend]\npermutation_shifts = 50\n"))
     assert audit(notebook).problems == []              # the bytes of visit.toml are not an input
     result = _reduce(copy)
     assert result.ok, result.messages
@@ -278,7 +278,7 @@ def test_the_page_embeds_only_the_entrys_own_figures(reduced, tmp_path):
     page = render_page(notebook)["index.html"]
     import base64
     assert base64.b64encode(secret.read_bytes()).decode()[:40] not in page
-    assert page.count("data:image/png;base64,") == 4          # the current chain's own figures
+    assert page.count("data:image/png;base64,") == 5          # the current chain's own (detrend: 2)
     assert 'href="#' + entry_path.parent.name + '"' in page  # the contents list
     assert page.count("&larr; current chain") == 4
 
@@ -295,7 +295,7 @@ from lightledger.pipeline.parameters import STAGE_ORDER  # noqa: E402
 from lightledger.tasks.base import make_plan, read_entry, settings_to_text, visit_config  # noqa: E402
 
 #: The --set tweaks a step may choose (cheap ones: they re-run extract or detrend only).
-TWEAKS = ([], [("detrend", "visit_order", 2)], [("extract", "clip_threshold", 4.0)])
+TWEAKS = ([], [("detrend", "permutation_shifts", 50)], [("extract", "clip_threshold", 4.0)])
 #: Examples and steps of the property test in the suite; a longer run by hand sets
 #: LIGHTLEDGER_PROPERTY_EXAMPLES (see tests/benchmarks/README.md).
 EXAMPLES = int(os.environ.get("LIGHTLEDGER_PROPERTY_EXAMPLES", "2"))

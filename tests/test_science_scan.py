@@ -53,6 +53,40 @@ def test_channel_depths_within_3_sigma(scan_visit, science):
     assert np.all(np.isfinite(pull)) and np.all(np.abs(pull) < 3.0), np.round(pull, 2)
 
 
+def test_model_grid_product(scan_visit, science):
+    # The GRID table of the product against its definition (Gibson 2014; Wakeford et
+    # al. 2016): per light curve the weights sum to 1 and are exp(-BIC/2)
+    # normalised over the models fitted to it, the DEPTHS row is their weighted
+    # mean, with an error no smaller than the spread between models; and the marginalised
+    # channel spectrum is consistent with the injected one (chi-square p above 0.01,
+    # one degree of freedom per channel; truth.py CHANNELS.depth).
+    from scipy.stats import chi2 as chi2_dist
+    path = scan_visit.product("detrend", "detrended.fits")
+    grid = Table.read(path, hdu="GRID")
+    depths = _depths(scan_visit)
+    assert fits.getheader(path, "DEPTHS")["NMODELS"] == len(set(grid["model_index"]))
+    for row in depths:
+        sel = grid[grid["channel"] == row["channel"]]
+        w = np.asarray(sel["weight"])
+        assert abs(w.sum() - 1) < 1e-9
+        bic = np.asarray(sel["bic"])
+        ok = np.isfinite(bic)
+        expect = np.exp(-0.5 * (bic[ok] - bic[ok].min()))
+        np.testing.assert_allclose(w[ok], expect / expect.sum(), atol=1e-9)
+        used = w > 0
+        assert row["depth"] == pytest.approx(float(np.sum(w[used] * sel["depth"][used])), rel=1e-9)
+        assert row["depth_error"] >= row["error_models"]
+        assert row["best_model"] == sel["model"][np.argmax(w)]
+    _, channels, _ = science.read_truth(scan_visit.outdir)
+    d = depths[1:]
+    pull = (np.asarray(d["depth"]) - np.asarray(channels["depth"])) / np.asarray(d["depth_error"])
+    assert chi2_dist.sf(np.sum(pull ** 2), pull.size) > 0.01, np.round(pull, 2)
+    # one table of detrended light curves per model beside the product
+    with fits.open(path.parent / "grid-models.fits") as hdul:
+        names = [h.header.get("MODEL") for h in hdul[1:] if h.name.startswith("MODEL_")]
+    assert len(names) == len(set(grid["model_index"])) and all(names)
+
+
 # --------------------------------------------------------------------------
 # extraction: drifts, wavelength zero point, channel fluxes
 # --------------------------------------------------------------------------

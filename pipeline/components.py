@@ -1,0 +1,238 @@
+"""More systematics components: visit exponential, tied orbit ramps, charge trapping, decorrelation.
+
+Each class here is a component of a
+:class:`~lightledger.pipeline.systematics.SystematicsModel` (a frozen
+dataclass with a ``label``, a ``shapes`` tuple of
+:class:`~lightledger.pipeline.systematics.ShapeParam` and a ``block(inputs,
+shape)`` method returning a :class:`~lightledger.pipeline.systematics.Block`),
+beside the visit polynomial, orbit-phase polynomial, per-orbit ramp and scan
+offset of :mod:`lightledger.pipeline.systematics`.  Every column is an
+additive term in units of the flux level, :math:`S = F_0 (1 + \\sum_k b_k
+X_k)`, linear in its amplitude :math:`b_k` for fixed shape parameters.
+
+Inputs read from :class:`~lightledger.pipeline.systematics.SystematicsInputs`:
+``time`` (days), ``orbit``, ``orbit_time`` (days) and the named covariates
+``exposure_start`` (seconds, any zero point), ``exposure_time`` (seconds)
+and ``trap_rate`` (electrons per second per pixel, per light curve) for the
+charge-trapping ramp, and any covariate named in a decorrelation.  Masks do
+not enter: columns are evaluated on every exposure (NaN where a covariate is
+not finite, which the fits leave out).  Inputs are not modified.
+"""
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import ParameterError
+from .systematics import DEFAULT_TAU_GRID, Block, ShapeParam
+from .traps import trap_ramp_basis
+
+__all__ = ["VisitExponential", "TiedOrbitRamp", "TrapRamp", "Decorrelation",
+           "DEFAULT_VISIT_TAU_GRID", "DEFAULT_FILL_GRIDS", "DEFAULT_RELEASE_GRIDS"]
+
+#: Time scales of the visit-long exponential, days (30 min to 2 days, log-spaced).
+DEFAULT_VISIT_TAU_GRID = tuple(np.geomspace(30.0, 2880.0, 9) / 1440.0)
+#: Fill times of the fast and slow trap populations at the reference rate, seconds.
+DEFAULT_FILL_GRIDS = (tuple(np.geomspace(20.0, 2000.0, 7)), tuple(np.geomspace(200.0, 2.0e4, 7)))
+#: Release times of the fast and slow trap populations, seconds.
+DEFAULT_RELEASE_GRIDS = (tuple(np.geomspace(60.0, 3000.0, 6)), tuple(np.geomspace(3000.0, 1.0e5, 6)))
+
+
+def _positive_grid(grid, name):
+    g = np.unique(np.asarray(grid, dtype=float).ravel())
+    if g.size < 1 or not np.all(np.isfinite(g) & (g > 0)):
+        raise ParameterError(f"{name} must be finite values > 0")
+    return tuple(float(x) for x in g)
+
+
+@dataclass(frozen=True)
+class VisitExponential:
+    """Visit-long exponential in time, :math:`e^{-(t - t_1)/\\tau}`; column ``LABEL``.
+
+    :math:`t_1` is the first exposure's time; with the fit's constant the
+    column spans a ramp over the whole visit that levels off, the usual
+    alternative to a visit-long polynomial (Wakeford et al. 2016, ApJ 819,
+    10, their visit-long systematics; Berta et al. 2012, ApJ 747, 35).  The
+    time scale ``tau`` (days) is chosen from ``tau_grid``; the derivative
+    with respect to :math:`\\ln\\tau` is :math:`((t - t_1)/\\tau)
+    e^{-(t - t_1)/\\tau}`.
+    """
+
+    tau_grid: tuple = DEFAULT_VISIT_TAU_GRID
+    refine: bool = False
+    label: str = "visitexp"
+
+    @property
+    def shapes(self):
+        return (ShapeParam("tau", _positive_grid(self.tau_grid, "tau_grid"), refine=self.refine),)
+
+    def block(self, inputs, shape):
+        t = inputs.time - np.nanmin(inputs.time)
+        tau = float(shape["tau"])
+        col = np.exp(-t / tau)[:, None]
+        return Block(col, (self.label,), (col * (t / tau)[:, None],))
+
+
+@dataclass(frozen=True)
+class TiedOrbitRamp:
+    """Orbit ramps :math:`e^{-t_{orb}/\\tau}` with amplitudes tied between orbits.
+
+    ``amplitudes="shared"``: one column, one amplitude for every orbit
+    (``LABEL``).  ``amplitudes="first"``: the first orbit its own amplitude
+    (``LABEL[first]``) and the later orbits one shared amplitude
+    (``LABEL[later]``); the first orbit's ramp is usually the strongest
+    (Kreidberg et al. 2014, Nature 505, 69; Zhou et al. 2017, AJ 153, 243).
+    One time scale ``tau`` (days) from ``tau_grid``; the per-orbit free
+    amplitudes are :class:`~lightledger.pipeline.systematics.OrbitRamp`.
+    """
+
+    amplitudes: str = "shared"
+    tau_grid: tuple = tuple(DEFAULT_TAU_GRID)
+    refine: bool = False
+    label: str = "ramp"
+
+    def __post_init__(self):
+        if self.amplitudes not in ("shared", "first"):
+            raise ParameterError(f"amplitudes must be 'shared' or 'first'; got {self.amplitudes!r}")
+
+    @property
+    def shapes(self):
+        return (ShapeParam("tau", _positive_grid(self.tau_grid, "tau_grid"), refine=self.refine),)
+
+    def block(self, inputs, shape):
+        ot = inputs.need("orbit_time", self.label)
+        tau = float(shape["tau"])
+        e = np.exp(-ot / tau)
+        if self.amplitudes == "shared":
+            cols, names = e[:, None], (self.label,)
+        else:
+            orb = inputs.need("orbit", self.label)
+            first = orb == np.min(orb)
+            cols = np.stack([np.where(first, e, 0.0), np.where(first, 0.0, e)], axis=1)
+            names = (f"{self.label}[first]", f"{self.label}[later]")
+        return Block(cols, names, (cols * (ot / tau)[:, None],))
+
+
+@dataclass(frozen=True)
+class TrapRamp:
+    """Charge-trapping ramp of one or two trap populations (Zhou et al. 2017, AJ 153, 243).
+
+    The recorded fraction of the incident charge is :math:`1 - \\sum_p \\eta_p
+    G_p` with :math:`G_p` the loss per unit trapping efficiency of
+    :func:`lightledger.pipeline.traps.trap_ramp_basis`, for traps empty when
+    the visit starts and refilled only by the light (no refill between
+    orbits); with the fit's constant the efficiencies enter linearly
+    (columns ``LABEL{p}``).  The shape parameters of population p are
+    ``fill{p}``, the time (s) the population takes to fill at the reference
+    rate, :math:`1/(\\kappa_p f_{ref})`, and ``release{p}``, its release
+    time :math:`\\tau_p` (s).  Because :math:`\\kappa_p` belongs to the
+    detector, a channel fitted with the white light's shapes fills at its own
+    rate: the ramp's shape differs from channel to channel as the physics
+    says, while each channel fits its own efficiencies
+    (:mod:`lightledger.pipeline.grid`).
+
+    The initial occupancies and orbit refills of Zhou et al. 2017 are left
+    out: without bounds they are nearly degenerate with the efficiencies (a
+    fit trades huge opposite amplitudes for a small gain in chi-square), and
+    in a visit whose first orbit is left out the fast population has emptied
+    during the gaps anyway.
+
+    Parameters
+    ----------
+    reference_rate : float
+        Rate (electrons per second per pixel) at which ``fill`` is quoted,
+        e.g. the white light curve's; > 0.
+    populations : int
+        1 (a fast population only) or 2 (fast and slow).
+    fill_grids, release_grids : tuple of tuple of float
+        Grids (seconds) per population.
+
+    Notes
+    -----
+    Reads the covariates ``exposure_start`` (s), ``exposure_time`` (s) and
+    ``trap_rate`` (e-/s/pixel, a smooth estimate of the light curve's
+    incident rate), and ``orbit``.  Only ratios of rates matter to the fit
+    (an overall scale of the rates is absorbed by :math:`\\kappa` and the
+    amplitudes), so a rate per column instead of per pixel changes only the
+    quoted fill times.  Derivatives: with respect to :math:`\\ln` fill,
+    :math:`-\\partial/\\partial\\ln\\kappa`; with respect to :math:`\\ln\\tau`,
+    as computed by :func:`~lightledger.pipeline.traps.trap_ramp_basis`.
+    Cost per evaluation: one pass over the exposures for 1 + 4 P parameter
+    sets at once.
+    """
+
+    reference_rate: float
+    populations: int = 2
+    fill_grids: tuple = DEFAULT_FILL_GRIDS
+    release_grids: tuple = DEFAULT_RELEASE_GRIDS
+    label: str = "trap"
+
+    def __post_init__(self):
+        if not (np.isfinite(self.reference_rate) and self.reference_rate > 0):
+            raise ParameterError(f"reference_rate must be a finite rate > 0 (electrons per second "
+                                 f"per pixel); got {self.reference_rate!r}")
+        if self.populations not in (1, 2):
+            raise ParameterError(f"populations must be 1 or 2; got {self.populations!r}")
+        if len(self.fill_grids) < self.populations or len(self.release_grids) < self.populations:
+            raise ParameterError("fill_grids and release_grids need one grid per population")
+
+    @property
+    def shapes(self):
+        out = []
+        for p in range(self.populations):
+            out.append(ShapeParam(f"fill{p}", _positive_grid(self.fill_grids[p], f"fill{p} grid")))
+            out.append(ShapeParam(f"release{p}",
+                                  _positive_grid(self.release_grids[p], f"release{p} grid")))
+        return tuple(out)
+
+    def block(self, inputs, shape):
+        start = inputs.need("exposure_start", self.label)
+        texp = inputs.need("exposure_time", self.label)
+        rate = inputs.need("trap_rate", self.label)
+        orbit = inputs.need("orbit", self.label)
+        P = self.populations
+        fill = np.array([float(shape[f"fill{p}"]) for p in range(P)])
+        release = np.array([float(shape[f"release{p}"]) for p in range(P)])
+        kappa = 1.0 / (fill * self.reference_rate)
+        order = np.argsort(start, kind="stable")
+        if np.any(order != np.arange(order.size)):
+            raise ParameterError(f"{self.label}: exposure_start must be in time order")
+        basis = trap_ramp_basis(rate, start, texp, kappa, release, orbit=orbit)
+        eta = 3 * np.arange(P)                 # the efficiency columns of each population
+        cols = basis.columns[:, 0, eta]
+        names = tuple(f"{self.label}{p}" for p in range(P))
+        derivs = []
+        for p in range(P):
+            derivs.append(-basis.derivatives[2 * p][:, 0, eta])      # d / d ln(fill)
+            derivs.append(basis.derivatives[2 * p + 1][:, 0, eta])   # d / d ln(release)
+        return Block(cols, names, tuple(derivs))
+
+
+@dataclass(frozen=True)
+class Decorrelation:
+    """Linear decorrelation against named covariates; one column per covariate.
+
+    Each covariate (``dx``, ``dy``, ``width``, ``background`` or any other
+    per-exposure series in the inputs) enters standardised, :math:`(x -
+    \\bar x)/s_x` over its finite values, so that amplitudes are comparable;
+    a constant covariate gives a column of zeros, which the fits drop.
+    Common practice (e.g. Deming et al. 2013, ApJ 774, 95, decorrelation
+    against the spectrum's position and width).  Columns are named by the
+    covariates.
+    """
+
+    covariates: tuple = ("dx", "dy")
+    label: str = "decorr"
+    shapes: tuple = ()
+
+    def block(self, inputs, shape):
+        cols = []
+        for name in self.covariates:
+            x = np.asarray(inputs.need(name, self.label), dtype=float)
+            ok = np.isfinite(x)
+            if not np.any(ok):
+                raise ParameterError(f"covariate {name} has no finite value to decorrelate against")
+            sd = np.std(x[ok])
+            cols.append((x - np.mean(x[ok])) / sd if sd > 0 else np.where(ok, 0.0, np.nan))
+        return Block(np.stack(cols, axis=1) if cols else np.zeros((inputs.n, 0)),
+                     tuple(str(c) for c in self.covariates))

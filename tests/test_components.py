@@ -1,0 +1,168 @@
+"""Tests of lightledger.pipeline.components and lightledger.pipeline.modelspec."""
+
+import numpy as np
+import pytest
+
+from lightledger.pipeline.components import (Decorrelation, TiedOrbitRamp, TrapRamp,
+                                             VisitExponential)
+from lightledger.pipeline.detrend import fit_light_curve
+from lightledger.pipeline.errors import ParameterError
+from lightledger.pipeline.eventshapes import transit_template
+from lightledger.pipeline.modelspec import (DEFAULT_SCAN_GRID, DEFAULT_STARE_GRID, parse_grid,
+                                            parse_model)
+from lightledger.pipeline.systematics import (OrbitPolynomial, OrbitRamp, ScanOffset,
+                                              SystematicsInputs, SystematicsModel,
+                                              VisitPolynomial)
+from lightledger.pipeline.traps import TrapPopulation, trap_history, trap_ramp_basis
+from lightledger.pipeline.transit import transit_flux
+
+MIN = 1.0 / 1440.0
+T0 = 2460500.3
+TEXP = 80.0
+
+
+def _visit(n_orbits=4, per_orbit=14):
+    """A low-Earth-orbit visit: 96-min orbits, 50 min visible (REFERENCES.md, facts of the
+    trade), exposures of 80 s every 3.5 min, centred on T0."""
+    start = np.concatenate([o * 96 * MIN + np.arange(per_orbit) * 3.5 * MIN for o in range(n_orbits)])
+    start = start - 0.5 * (start[0] + start[-1]) + T0
+    mid = start + 0.5 * TEXP / 86400
+    orbit = np.repeat(np.arange(n_orbits), per_orbit)
+    first = np.array([start[orbit == o][0] for o in orbit])
+    return mid, orbit, mid - first
+
+
+def _inputs(rate=300.0):
+    mid, orbit, ot = _visit()
+    n = mid.size
+    rng = np.random.default_rng(2)
+    cov = {"dx": 0.05 * rng.standard_normal(n), "dy": 0.03 * rng.standard_normal(n),
+           "exposure_time": np.full(n, TEXP), "exposure_start": (mid - mid[0]) * 86400.0,
+           "trap_rate": np.full(n, rate)}
+    return SystematicsInputs(mid, orbit=orbit, orbit_time=ot,
+                             scan_direction=np.where(np.arange(n) % 2, -1.0, 1.0), covariates=cov)
+
+
+def _transit(mid):
+    """Mandel & Agol 2002 transit of the reducer's transit model (tested against batman in
+    tests/test_transit.py)."""
+    return transit_flux(mid, t0=T0, period=2.7, rp_rs=0.12, a_rs=9.0, inclination=87.5,
+                        u1=0.2, u2=0.25)
+
+
+@pytest.mark.parametrize("comp", [VisitExponential(), TiedOrbitRamp("shared"),
+                                  TiedOrbitRamp("first"),
+                                  TrapRamp(reference_rate=300.0, populations=2)])
+def test_shape_derivatives_match_finite_differences(comp):
+    # The derivative of each column with respect to the logarithm of each shape
+    # parameter (what the fits use to carry the shapes' uncertainty into the
+    # covariance) against a central difference of step 1e-4 in the logarithm
+    # (truncation error ~1e-8 relative; tolerance 1e-5 of the largest entry).
+    inputs = _inputs()
+    shapes = {sp.name: float(np.median(sp.grid)) for sp in comp.shapes}
+    block = comp.block(inputs, shapes)
+    assert len(block.derivatives) == len(comp.shapes)
+    for sp, d in zip(comp.shapes, block.derivatives):
+        up = comp.block(inputs, {**shapes, sp.name: shapes[sp.name] * np.exp(1e-4)}).columns
+        dn = comp.block(inputs, {**shapes, sp.name: shapes[sp.name] * np.exp(-1e-4)}).columns
+        fd = (up - dn) / 2e-4
+        np.testing.assert_allclose(d, fd, rtol=0, atol=1e-5 * max(np.abs(fd).max(), 1e-12))
+
+
+def test_tied_ramps_span_the_per_orbit_ramps():
+    # One shared amplitude is the sum of the per-orbit columns; "first" splits off the
+    # first orbit (Kreidberg et al. 2014 ramps, amplitudes tied between orbits).
+    inputs = _inputs()
+    tau = 6 * MIN
+    each = OrbitRamp().block(inputs, {"tau": tau}).columns
+    shared = TiedOrbitRamp("shared").block(inputs, {"tau": tau}).columns
+    first = TiedOrbitRamp("first").block(inputs, {"tau": tau}).columns
+    np.testing.assert_allclose(shared[:, 0], each.sum(axis=1), rtol=1e-14)
+    np.testing.assert_allclose(first[:, 0], each[:, 0], rtol=1e-14)
+    np.testing.assert_allclose(first[:, 1], each[:, 1:].sum(axis=1), rtol=1e-14)
+    with pytest.raises(ParameterError, match="shared' or 'first"):
+        TiedOrbitRamp("each")
+
+
+def test_trap_ramp_light_curve_is_recovered_exactly():
+    # Defining property (STYLE.md item 9): a noise-free transit (Mandel & Agol 2002)
+    # times a charge-trapping ramp of the published equations (Zhou et al. 2017,
+    # via trap_history, tested against a hand computation) is fitted exactly by the
+    # trapping component when its fill and release times lie on the grids: depth to
+    # 1e-9 and a flat detrended light curve out of transit.
+    inputs = _inputs(rate=320.0)
+    mid = inputs.time
+    pops = [TrapPopulation(150.0, 0.008, 400.0), TrapPopulation(1300.0, 0.011, 15000.0)]
+    frac = trap_history(np.full(mid.size, 320.0), inputs.covariates["exposure_start"], TEXP, pops,
+                        orbit=inputs.orbit).recorded_fraction[:, 0]
+    transit = _transit(mid)
+    flux = 4.0e7 * frac * transit
+    fills = [1.0 / (p.trap_constant * 320.0) for p in pops]
+    comp = TrapRamp(reference_rate=320.0, populations=2,
+                    fill_grids=((fills[0] * 0.5, fills[0], fills[0] * 2),
+                                (fills[1] * 0.5, fills[1], fills[1] * 2)),
+                    release_grids=((200.0, 400.0, 800.0), (7500.0, 15000.0, 30000.0)))
+    model = SystematicsModel((comp,))
+    s = transit_template(transit)
+    res = fit_light_curve(inputs, flux, np.full(mid.size, 4.0e7), s, model)
+    shapes = dict(res.shapes)
+    assert shapes["trap.fill0"] == pytest.approx(fills[0]) and shapes["trap.release1"] == 15000.0
+    assert res.depth == pytest.approx(1 - transit.min(), rel=1e-9)
+    out = s == 0
+    np.testing.assert_allclose(res.detrended_flux[out], 1.0, atol=1e-10)
+    # the efficiencies come back as the coefficients of the loss columns
+    coef = dict(zip(res.coefficient_names, res.coefficients / res.coefficients[0]))
+    assert -coef["trap0"] == pytest.approx(0.008, rel=1e-7)
+    assert -coef["trap1"] == pytest.approx(0.011, rel=1e-7)
+
+
+def test_trap_columns_are_the_efficiency_columns_of_the_basis():
+    inputs = _inputs()
+    comp = TrapRamp(reference_rate=300.0, populations=1)
+    block = comp.block(inputs, {"fill0": 100.0, "release0": 500.0})
+    ref = trap_ramp_basis(np.full(inputs.n, 300.0), inputs.covariates["exposure_start"], TEXP,
+                          [1 / (100.0 * 300.0)], [500.0], orbit=inputs.orbit)
+    np.testing.assert_allclose(block.columns[:, 0], ref.columns[:, 0, 0], rtol=1e-14)
+    assert block.names == ("trap0",)
+
+
+def test_decorrelation_recovers_a_linear_dependence():
+    # Common practice (decorrelation against the spectrum's position): a light curve
+    # linear in dx and dy is fitted exactly; columns are standardised.
+    inputs = _inputs()
+    block = Decorrelation(("dx", "dy")).block(inputs, {})
+    np.testing.assert_allclose(block.columns.mean(axis=0), 0, atol=1e-14)
+    np.testing.assert_allclose(block.columns.std(axis=0), 1, rtol=1e-12)
+    transit = _transit(inputs.time)
+    dx, dy = inputs.covariates["dx"], inputs.covariates["dy"]
+    flux = 1e6 * (1 + 0.01 * dx - 0.02 * dy) * transit
+    model = SystematicsModel((Decorrelation(("dx", "dy")),))
+    res = fit_light_curve(inputs, flux, np.full(inputs.n, 1e6), transit_template(transit), model)
+    assert res.depth == pytest.approx(1 - transit.min(), rel=1e-4)
+    with pytest.raises(ParameterError, match="width is needed"):
+        Decorrelation(("width",)).block(inputs, {})
+
+
+def test_model_strings():
+    spec = parse_model("scan + ramp + Visit1 + orbit2 + dy + dx")
+    assert spec.name == "visit1+orbit2+scan+ramp+dx+dy"
+    assert spec.families == {"exponential ramp", "decorrelation"}
+    comps = spec.systematics().components
+    assert [type(c) for c in comps] == [VisitPolynomial, OrbitPolynomial, ScanOffset, OrbitRamp,
+                                        Decorrelation]
+    # a stare has no orbit phase and no scan directions
+    assert [type(c) for c in spec.systematics(stare=True).components] == [VisitPolynomial, OrbitRamp,
+                                                                           Decorrelation]
+    cm = parse_model("cm-res+visit1+scan")
+    assert cm.common_mode == "res" and cm.white_name == "visit1+scan"
+    assert parse_model("traps1").systematics(reference_rate=100.0).components[0].populations == 1
+    with pytest.raises(ParameterError, match="did you mean 'scan'"):
+        parse_model("visit1+scna")
+    with pytest.raises(ParameterError, match="two visit-trend tokens"):
+        parse_model("visit1+visit2")
+    with pytest.raises(ParameterError, match="reference rate"):
+        parse_model("traps").systematics()
+    with pytest.raises(ParameterError, match="repeats the model"):
+        parse_grid(["visit1+scan", "scan+visit1"])
+    assert len(parse_grid(DEFAULT_SCAN_GRID)) == len(DEFAULT_SCAN_GRID)
+    assert len(parse_grid(DEFAULT_STARE_GRID)) == len(DEFAULT_STARE_GRID)

@@ -1,0 +1,126 @@
+"""Tests of lightledger.pipeline.grid: the model grid on the scan scenario's light curves.
+
+The light curves are the forward model's noise-free truth (every systematic
+of the scenario, the exponential or the charge-trapping ramps) plus Gaussian
+noise at the ideal optimal-extraction level the truth records
+(synthetic_data/truth.py), without rendering pixels: the grid sees what a
+perfect extraction would hand it.  The full render-and-reduce study over many
+seeds is tests/benchmarks/bench_grid.py.
+"""
+
+import dataclasses
+
+import numpy as np
+import pytest
+from scipy.stats import chi2 as chi2_dist
+
+from lightledger.pipeline.covariates import exposure_covariates
+from lightledger.pipeline.grid import Curves, fit_grid, marginalise_fits, rank_fits
+from lightledger.pipeline.modelspec import parse_grid
+from lightledger.pipeline.systematics import SystematicsInputs
+from lightledger.synthetic_data import model as vm
+from lightledger.synthetic_data.scenarios import get_scenario
+from lightledger.synthetic_data.truth import truth_columns
+
+#: A small grid: each ramp family, a model without ramps, a common mode.
+GRID = ("visit1+scan+ramp", "visit1+orbit2+scan+ramp-shared", "visit1+orbit3+scan",
+        "visit1+scan+traps", "visit1+scan+cm-sys")
+N_EXPOSURES = 60
+SEEDS = (0, 1, 2, 3)
+
+
+def _curves(ramps, seed):
+    """Truth-level white and channel light curves of the scan scenario, first orbit out."""
+    sc = get_scenario("scan-transit")
+    m = vm.build_visit(sc, seed=seed, n_exposures=N_EXPOSURES, ramps=ramps)
+    tr = truth_columns(m)
+    rng = np.random.default_rng(1000 + seed)
+    F = tr["channel_flux"] + rng.standard_normal(tr["channel_flux"].shape) * tr["channel_sigma"]
+    # the white band is the sum of the channels (its noise is theirs)
+    W = F.sum(axis=1)
+    WV = np.sum(tr["channel_sigma"] ** 2, axis=1)
+    t = m.bjd_tdb
+    texp = m.exposure_time
+    cov = exposure_covariates(m.mjd_utc - 0.5 * texp / 86400, m.mjd_utc, gap_factor=3.0)
+    n = t.size
+    inputs = SystematicsInputs(
+        t, orbit=cov.orbit, orbit_time=cov.orbit_time, scan_direction=m.direction.astype(float),
+        covariates={"dx": m.dx, "dy": m.dy, "exposure_time": np.full(n, texp),
+                    "exposure_start": (t - t[0]) * 86400.0})
+    bad = cov.orbit == 0
+    pix = tr["weights_channels"].sum(axis=1) * sc.scan_length
+    rate = np.repeat((np.median(F, axis=0) / (pix * texp))[None], n, axis=0)
+    white_rate = np.full(n, np.median(W) / (pix.sum() * texp))
+    curves = Curves(inputs, W, WV, bad, F, tr["channel_sigma"] ** 2,
+                    np.repeat(bad[:, None], F.shape[1], axis=1), white_rate=white_rate, rate=rate)
+    event = dict(kind="transit", t0=m.t0, period=sc.period, rp_rs=sc.rp_rs, a_rs=sc.a_rs,
+                 inclination=sc.inclination, u1=sc.u1, u2=sc.u2, duration=0.1)
+    return curves, event, np.r_[tr["wdepth"], tr["depth"]], float(white_rate[0])
+
+
+@pytest.fixture(scope="module")
+def fitted():
+    """The small grid fitted to four seeds of each ramp kind."""
+    specs = parse_grid(GRID)
+    out = {}
+    for ramps in ("exponential", "traps"):
+        for seed in SEEDS:
+            curves, event, truth, ref = _curves(ramps, seed)
+            out[ramps, seed] = (fit_grid(specs, curves, event, reference_rate=ref, n_shifts=20),
+                                truth)
+    return out
+
+
+def _family_weight(grid, family):
+    """Weight of the models holding ``family``, averaged over the white light and channels."""
+    w = [grid.weight[m].mean() for m in range(len(grid.specs)) if family in grid.families(m)]
+    return float(np.sum(w))
+
+
+@pytest.mark.parametrize("ramps,family,other", [("exponential", "exponential ramp", "charge trapping"),
+                                                ("traps", "charge trapping", "exponential ramp")])
+def test_top_weighted_models_hold_the_injected_ramps(fitted, ramps, family, other):
+    # Injection-recovery (STYLE.md 7): the models the criterion prefers describe
+    # the kind of ramp that was injected (BIC weights, Schwarz 1978; Wakeford et al.
+    # 2016).  Averaged over the white light and the channels and over four seeds,
+    # the injected family outweighs the other ramp family.
+    mine = np.mean([_family_weight(fitted[ramps, s][0], family) for s in SEEDS])
+    theirs = np.mean([_family_weight(fitted[ramps, s][0], other) for s in SEEDS])
+    assert mine > theirs, (ramps, mine, theirs)
+
+
+@pytest.mark.parametrize("ramps", ["exponential", "traps"])
+def test_marginalised_spectrum_is_consistent_with_the_injected_one(fitted, ramps):
+    # The marginalised channel depths against the injected spectrum (truth.py
+    # CHANNELS.depth) over four seeds: chi-square p above 0.01 (chi-square
+    # distribution with one degree of freedom per channel and seed, common
+    # practice), and the pull scatter between 0.7 and 1.3 (40 pulls: the sample
+    # standard deviation of unit pulls scatters by 0.11).
+    pulls = []
+    for seed in SEEDS:
+        grid, truth = fitted[ramps, seed]
+        pulls.append((grid.value[1:] - truth[1:]) / grid.value_error[1:])
+    p = np.concatenate(pulls)
+    assert chi2_dist.sf(np.sum(p ** 2), p.size) > 0.01, np.round(pulls, 2)
+    assert 0.7 < np.std(p) < 1.3, np.round(pulls, 2)
+
+
+def test_grid_bookkeeping(fitted):
+    # Marginalisation as defined (Wakeford et al. 2016): weights sum to 1 per light
+    # curve, the value is the weighted mean, the error adds the spread between
+    # models; the same through the generic helpers.
+    grid, _ = fitted["exponential", 0]
+    np.testing.assert_allclose(grid.weight.sum(axis=0), 1.0, rtol=1e-12)
+    ok = grid.weight > 0
+    np.testing.assert_allclose(grid.value, np.sum(np.where(ok, grid.weight * grid.depth, 0), axis=0))
+    assert np.all(grid.value_error >= grid.within - 1e-15)
+    # the white light ranks only its distinct models: the common-mode model shares
+    # the white fit of visit1+scan... which is its own distinct white model here
+    assert grid.white_owner.tolist() == list(range(len(GRID)))
+    bic, aic, w = rank_fits(grid.chi2[:, 1:], grid.n_params[:, 1:], grid.n_points[:, 1:])
+    np.testing.assert_allclose(w, grid.weight[:, 1:], atol=1e-12)
+    marg = marginalise_fits(grid.depth[:, 1:], grid.error[:, 1:], w)
+    np.testing.assert_allclose(marg.value, grid.value[1:], rtol=1e-12)
+    # every fit has its three errors; the permutation error was computed
+    assert np.all(np.isfinite(grid.error_permutation[ok]))
+    assert np.all(grid.error_beta[ok] >= grid.error_covariance[ok])
