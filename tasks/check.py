@@ -33,11 +33,11 @@ import numpy as np
 
 from lightledger.pipeline.errors import InputFileError, LightledgerError, ParameterError
 from lightledger.pipeline.parameters import STAGE_ORDER
-from lightledger.pipeline.rawreads import summarize_reads
+from lightledger.pipeline.rawreads import summarize_exposures
 
 from .config import load_visit
 from .problems import Problems
-from .rawio import read_exposure, report_set_aside, set_aside, survey, usable
+from .rawio import read_exposure, read_exposures, report_set_aside, set_aside, survey, usable
 from .references import check_references, load_throughput
 
 __all__ = ["CheckReport", "check_visit", "apply_exclusions", "clip_level", "event_coverage",
@@ -220,9 +220,10 @@ def event_coverage(visit, refs):
     exposures (the baseline) and positive on others (the event): without a
     baseline the depth is degenerate with the flux level, without the event
     there is nothing to measure.  Times are the exposures' mid-times in
-    BJD_TDB (astropy; Eastman et al. 2010).
+    BJD_TDB (Eastman et al. 2010), interpolated from a coarse grid as the bin
+    stage takes them.
     """
-    from lightledger.pipeline.timing import barycentric_times
+    from lightledger.pipeline.timing import interpolated_barycentric_times
 
     from .detrend import event_template
 
@@ -239,7 +240,8 @@ def event_coverage(visit, refs):
         [g if g is not None else (0.0, 0.0, 0.0) for g in geo], float)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        bjd = barycentric_times(mid, target["ra"], target["dec"], obsgeo_m=obsgeo).bjd_tdb
+        bjd = interpolated_barycentric_times(mid, target["ra"], target["dec"],
+                                             obsgeo_m=obsgeo).bjd_tdb
         template = np.asarray(event_template(bjd, event), float)
     inside = template > 1e-9
     # the exposures the detrend stage fits: a multi-orbit scan visit leaves its first orbit out
@@ -401,32 +403,77 @@ def _check_excluded_channels(visit, n_channels, problems):
                                        f"stage makes channels 0 to {n_channels - 1}")
 
 
+#: Bytes of float64 reads the validation pass summarises at once (a block of one file's exposures).
+_SCAN_BLOCK_BYTES = 4 << 20
+
+
+def _scan_blocks(refs, todo):
+    """Indices of ``todo`` in blocks of one file, one frame shape and one storage, in order."""
+    block, key = [], None
+    for i in todo:
+        r = refs[i]
+        k = (r.file, tuple(r.shape), r.bitpix, r.bscale)
+        size = 8 * int(np.prod(r.shape))
+        if block and (k != key or (len(block) + 1) * size > _SCAN_BLOCK_BYTES):
+            yield block
+            block = []
+        block.append(i)
+        key = k
+    if block:
+        yield block
+
+
+def _read_block(refs):
+    """The reads of a block of exposures (float64), or None when one of them cannot be read."""
+    try:
+        return read_exposures(refs, dtype=np.float64)
+    except InputFileError:
+        return None
+
+
 def _scan_reads(refs, references, profile, problems, progress):
-    """Set aside exposures with no usable pixel; warn about wrapped integer storage."""
+    """Set aside exposures with no usable pixel; warn about wrapped integer storage.
+
+    The exposures of one file are read together (one memory map) and summarised a block at a
+    time; an exposure of a block that cannot be read is read again alone, for its own reason.
+    """
     out = list(refs)
     todo = [i for i, r in enumerate(out) if not r.excluded]
     wrapped = []
-    for done, i in enumerate(todo):
-        r = out[i]
+    done = 0
+    for block in _scan_blocks(out, todo):
         if progress is not None:
             progress(done, len(todo))
-        try:
-            reads = read_exposure(r)
-        except InputFileError as exc:
-            out[i] = set_aside(r, f"cannot read the reads ({str(exc).split(': ', 1)[-1]})")
+        done += len(block)
+        chosen = [out[i] for i in block]
+        reads = _read_block(chosen)
+        if reads is None:
+            good = []
+            for i in block:
+                try:
+                    good.append((i, read_exposure(out[i])[None]))
+                except InputFileError as exc:
+                    out[i] = set_aside(out[i], f"cannot read the reads ({str(exc).split(': ', 1)[-1]})")
+            block = [i for i, _ in good]
+            reads = np.concatenate([a for _, a in good]) if good else None
+        if reads is None:
             continue
-        summary = summarize_reads(reads, bias=references.bias, saturation=profile.saturation,
-                                  span=r.wrap, clip_level=clip_level(r, references.bias,
-                                                                     profile.saturation))
-        if summary.n_not_finite == summary.n_pixels:
-            out[i] = set_aside(r, "every pixel is NaN or infinite in every read")
-        elif summary.n_usable == 0:
-            kind = "saturated or clipped" if summary.n_clipped else "saturated"
-            out[i] = set_aside(r, f"every pixel is {kind} from read {summary.first_untrusted} on "
-                                  f"(fewer than 2 usable reads; detector.saturation "
-                                  f"{profile.saturation:g} ADU above bias)")
-        if summary.n_wrapped:
-            wrapped.append((r, summary.n_wrapped))
+        r0 = out[block[0]]
+        summaries = summarize_exposures(reads, bias=references.bias, saturation=profile.saturation,
+                                        span=r0.wrap,
+                                        clip_level=clip_level(r0, references.bias, profile.saturation))
+        del reads
+        for i, summary in zip(block, summaries):
+            r = out[i]
+            if summary.n_not_finite == summary.n_pixels:
+                out[i] = set_aside(r, "every pixel is NaN or infinite in every read")
+            elif summary.n_usable == 0:
+                kind = "saturated or clipped" if summary.n_clipped else "saturated"
+                out[i] = set_aside(r, f"every pixel is {kind} from read {summary.first_untrusted} on "
+                                      f"(fewer than 2 usable reads; detector.saturation "
+                                      f"{profile.saturation:g} ADU above bias)")
+            if summary.n_wrapped:
+                wrapped.append((r, summary.n_wrapped))
     if progress is not None and todo:
         progress(len(todo), len(todo))
     if wrapped:

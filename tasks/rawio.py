@@ -275,6 +275,17 @@ def _read_array(path, hdu, dtype=np.float64):
                    hdu.header.get("BLANK") if hdu.bitpix > 0 else None, dtype)
 
 
+def _scale_into(out, raw, ref):
+    """Write ``raw`` (the stored values of ``ref``'s data) scaled into ``out``, as :func:`_scaled`."""
+    np.copyto(out, raw, casting="unsafe")
+    if ref.bitpix > 0 and math.isfinite(ref.blank):
+        out[raw == int(ref.blank)] = np.nan
+    if ref.bscale != 1:
+        out *= ref.bscale
+    if ref.bzero != 0:
+        out += ref.bzero
+
+
 def _scaled(raw, bscale, bzero, blank, dtype=np.float64):
     out = raw.astype(dtype)
     if blank is not None:
@@ -763,11 +774,18 @@ def read_exposures(refs, profile=None, dtype=np.float32):
         try:
             data = np.memmap(file, dtype=_BITPIX[chosen[0].bitpix], mode="r", offset=first,
                              shape=((last - first) // item,))
-            for i, ref in zip(slots, chosen):
-                start = (ref.data_offset - first) // item
-                block = np.asarray(data[start:start + count]).reshape(ref.shape)
-                blank = int(ref.blank) if ref.bitpix > 0 and math.isfinite(ref.blank) else None
-                out[i] = _scaled(block, ref.bscale, ref.bzero, blank, dtype)
+            offsets = np.array([r.data_offset for r in chosen])
+            scaling = {(r.bscale, r.bzero, r.blank) for r in chosen}
+            if len(scaling) == 1 and np.array_equal(np.diff(slots), np.ones(len(slots) - 1)) \
+                    and np.array_equal(offsets - first, np.arange(len(chosen)) * count * item):
+                # consecutive exposures stored one after the other: converted in one pass
+                ref = chosen[0]
+                block = data[:len(chosen) * count].reshape((len(chosen),) + tuple(ref.shape))
+                _scale_into(out[slots[0]:slots[-1] + 1], block, ref)
+            else:
+                for i, ref in zip(slots, chosen):
+                    start = (ref.data_offset - first) // item
+                    _scale_into(out[i], data[start:start + count].reshape(ref.shape), ref)
             del data
         except (OSError, ValueError) as exc:
             raise InputFileError(f"{file}: cannot read the reads of the exposures "

@@ -13,8 +13,8 @@ import numpy as np
 from lightledger.pipeline import mask as dq
 from lightledger.pipeline.calibrate import calibrate_exposure
 from lightledger.pipeline.plausibility import assess_fits
-from lightledger.pipeline.rawreads import (clipped_reads, summarize_reads, untrusted_reads,
-                                           wrapped_reads)
+from lightledger.pipeline.rawreads import (ReadSummary, clipped_reads, summarize_exposures,
+                                           summarize_reads, untrusted_reads, wrapped_reads)
 
 BIAS, SAT = 1000.0, 30000.0
 
@@ -77,6 +77,62 @@ def test_integer_storage_that_wrapped_around():
     assert np.array_equal(untrusted_reads(stored, bias=BIAS, saturation=1e9, span=65536.0),
                           expected)
     assert summarize_reads(stored, bias=BIAS, saturation=1e9, span=65536.0).n_wrapped == 96
+
+
+def _summary_pixel_by_pixel(reads, bias, saturation, span, level):
+    """The slow, obvious reference of a read summary: every pixel's ramp walked read by read."""
+    n_reads, ny, nx = reads.shape
+    counts = dict(n_not_finite=0, n_saturated=0, n_clipped=0, n_wrapped=0, n_usable=0)
+    untrusted_from = []
+    for y in range(ny):
+        for x in range(nx):
+            ramp = [float(v) for v in reads[:, y, x]]
+            finite = [np.isfinite(v) for v in ramp]
+            top = max([v for v, f in zip(ramp, finite) if f], default=-np.inf)
+            at = [f and v == top for v, f in zip(ramp, finite)]
+            clip = any(at[k] and at[k + 1] for k in range(n_reads - 1)) \
+                and (level is None or top >= level)
+            sat = [v - bias >= saturation for v in ramp]
+            wrap = [span > 0 and k > 0 and ramp[k] - ramp[k - 1] < -0.5 * span for k in range(n_reads)]
+            bad, first_bad = False, n_reads
+            wrapped_here = False
+            for k in range(n_reads):
+                wrapped_here |= wrap[k]
+                if sat[k] or (clip and at[k]) or wrapped_here:
+                    bad = True
+                if bad and first_bad == n_reads:
+                    first_bad = k
+            good = sum(1 for k in range(n_reads) if finite[k] and k < first_bad)
+            counts["n_not_finite"] += not any(finite)
+            counts["n_saturated"] += any(sat)
+            counts["n_clipped"] += clip
+            counts["n_wrapped"] += wrapped_here
+            counts["n_usable"] += good >= 2
+            if any(finite):
+                untrusted_from.append(first_bad)
+    first = max(untrusted_from) if untrusted_from else n_reads
+    return ReadSummary(n_pixels=ny * nx, first_untrusted=first, **counts)
+
+
+def test_a_block_of_exposures_is_summarised_as_each_alone_pixel_by_pixel():
+    # every kind of read at once, exposure by exposure: NaN and infinite reads, saturation,
+    # a clip below the level, integer wrap-around, an exposure saturated from read 2 on
+    rng = np.random.default_rng(11)
+    block = np.stack([np.round(_ramps(rng, n_reads=5, shape=(6, 7), rate=9000.0)) for _ in range(4)])
+    block[0, 2:, 1, 1] = np.nan
+    block[0, :, 2, 2] = np.inf
+    block[1, :, 3, :] = np.nan
+    block[1, 3:, 0, 0] = block[1, 3, 0, 0]                 # a clip
+    block[2] = np.mod(block[2], 32768.0)                   # wraps from about read 3 on
+    block[3, 2:] = BIAS + SAT + 5.0                        # saturated everywhere from read 2
+    for span, level in ((0.0, None), (32768.0, BIAS + 0.5 * SAT)):
+        got = summarize_exposures(block.astype(np.float32), bias=BIAS, saturation=SAT,
+                                  span=span, clip_level=level)
+        for i in range(block.shape[0]):
+            want = _summary_pixel_by_pixel(block[i], BIAS, SAT, span, level)
+            assert got[i] == want, (i, span)
+            assert summarize_reads(block[i], bias=BIAS, saturation=SAT, span=span,
+                                   clip_level=level) == want
 
 
 def test_light_curves_that_cannot_be_trusted():

@@ -91,8 +91,9 @@ def _wrap_kernels(totals):
 
 
 def child(visit_path, workers, kernels):
-    """Reduce one visit in this process; print one JSON line of results."""
+    """Reduce one visit in this process, as the command line does; print one JSON line of results."""
     t_start = time.perf_counter()
+    import lightledger.tasks.cli  # noqa: F401  (one BLAS thread per process, before numpy loads)
     totals = {"kernels": 0.0}
     if kernels:
         _wrap_kernels(totals)
