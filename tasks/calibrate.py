@@ -24,6 +24,7 @@ Products in ``NOTEBOOK/calibrate-IDENT/``:
 """
 
 import time
+from pathlib import Path
 
 import luigi
 import numpy as np
@@ -217,24 +218,20 @@ class Calibrate(VisitTask):
         table_path = self.folder / "exposures.ecsv"
         write_ecsv(table_path, exposures, self.provenance(paths))
         from .figures import calibrate_figure
-        middle = paths[len(paths) // 2]
-        flux, var, bits, _ = read_chunk(middle)
+        middle = len(paths) // 2
+        flux, var, bits, _ = read_chunk(paths[middle])
         fig_path = self.folder / "calibrate.png"
-        first = read_chunk(middle, exposures_only=True)[0]
+        first = exposures[self.chunk_span(middle)[0]]
         ny, nx = bits[0].shape
         source = expected_source_rows(self.config, nx, ny, (int(first["origin_x"]), int(first["origin_y"])),
                                       float(first["scan_velocity"]), float(first["exposure_time"]))
         calibrate_figure(fig_path, flux[0], bits[0], exposures, source_rows=source,
                          scanning=bool(first["scan_velocity"]))
         counts = {name: int(np.sum(exposures[f"n_{name.lower()}"])) for name in dq.FLAGS}
-        inventory = Table.read(self.input().path, format="ascii.ecsv")
-        aside = inventory[np.asarray(inventory["excluded"], bool)]
+        aside = self._set_aside()
         metrics = {"exposures": len(exposures), "chunks": len(paths),
                    "exposures set aside": len(aside),
-                   **({"set aside (see inventory.ecsv)": [
-                       f"{row['exposure']} {row['file']}"
-                       + (f"[{row['index']}]" if row["index"] >= 0 else "") + f": {row['reason']}"
-                       for row in aside]} if len(aside) else {}),
+                   **({"set aside (see inventory.ecsv)": aside} if aside else {}),
                    "median background (e-/pixel)": float(np.median(exposures["background_level"])),
                    **{f"flagged {k.lower()} (pixel-exposures)": v for k, v in counts.items() if v}}
         facts = visit_facts(scanning=bool(np.any(np.asarray(exposures["scan_direction"]) != 0)),
@@ -244,6 +241,19 @@ class Calibrate(VisitTask):
                          extra_seconds=self.task_seconds(paths),
                          not_applying=not_applying("calibrate", self.params, facts))
         self.progress(len(exposures), len(exposures), "exposures calibrated")
+
+    def _set_aside(self):
+        """``"NUMBER FILE[index]: reason"`` of each set-aside exposure, from the run's inventory."""
+        plan = self.plan
+        if plan is not None and plan.inventory is not None:
+            rows = [(r.exposure, Path(r.file).name, r.index, r.reason) for r in plan.inventory
+                    if r.excluded]
+        else:
+            inventory = Table.read(self.input().path, format="ascii.ecsv")
+            rows = [(row["exposure"], row["file"], row["index"], row["reason"])
+                    for row in inventory[np.asarray(inventory["excluded"], bool)]]
+        return [f"{number} {name}" + (f"[{index}]" if index >= 0 else "") + f": {reason}"
+                for number, name, index, reason in rows]
 
     def final_product(self):
         return self.folder / "exposures.ecsv"
