@@ -55,6 +55,7 @@ from lightledger.pipeline.whitelight import event_template as _event_template
 
 from .base import ENTRY_NAME, VisitTask
 from .lightcurves import read_lightcurves, wide_table
+from .metadata import channel_text
 from .products import table_hdu, write_ecsv, write_fits
 
 __all__ = ["Detrend", "event_template", "grid_setup", "systematics_setup", "star_alone",
@@ -216,6 +217,27 @@ def star_alone(result, kind):
     return result.systematics * (1.0 - result.depth)
 
 
+def _event_line(event, template, t_fine, template_fine):
+    """The event model on a fine time grid, when it is linear in the event template.
+
+    ``event`` is a fit's event model at the exposures (model / star alone);
+    when it equals ``a + b template`` there (to 1e-8), the same relation on
+    ``template_fine`` is returned as ``(t_fine, values)``; otherwise None (a
+    phase curve, limb darkening of its own...) and the figure draws the model
+    through the exposures.
+    """
+    e = np.asarray(event, float)
+    s = np.asarray(template, float)
+    ok = np.isfinite(e) & np.isfinite(s)
+    if ok.sum() < 3 or np.ptp(s[ok]) <= 0:
+        return None
+    design = np.c_[np.ones(ok.sum()), s[ok]]
+    coef, *_ = np.linalg.lstsq(design, e[ok], rcond=None)
+    if np.max(np.abs(design @ coef - e[ok])) > 1e-8:
+        return None
+    return t_fine, coef[0] + coef[1] * np.asarray(template_fine, float)
+
+
 def channel_exclusions(visit, n_channels):
     """{channel: note} of the channels the visit description excludes (``[exclude] channels``)."""
     notes = {}
@@ -328,13 +350,43 @@ class Detrend(VisitTask):
                           ("grid.ecsv", table)):
             write_ecsv(folder / name, tab, prov)
             outputs.append(folder / name)
-        from .figures import detrend_figure, grid_figure
+        from .figures import detrend_channels_figure, detrend_figure, grid_figure
         wb = grid.fits[grid.best[0]][0]
         used = ~np.asarray(wb.fit_mask, bool)
         fig = folder / "detrend.png"
+        dim = (np.asarray(channels["dim"], bool) if "dim" in channels.colnames
+               else np.zeros(n_ch, bool))
+        # the event model as a line on a fine grid, at the white light's fitted shape
+        shape = {k: float(v) for k, v in
+                 grid.white_fits[grid.white_owner[grid.best[0]]].event.items()
+                 if k in ("t0", "a_rs", "inclination")}
+        t_fine = np.linspace(t.min(), t.max(), 3000)
+        tmpl, tmpl_fine = (_event_template(x, visit.event, **shape) for x in (t, t_fine))
+
+        def line(fit):
+            with np.errstate(all="ignore"):
+                return _event_line(fit.model / star_alone(fit, kind), tmpl, t_fine, tmpl_fine)
+
         detrend_figure(fig, t, curves.white_flux, np.sqrt(curves.white_variance), wb.model,
                        star_alone(wb, kind), used, np.asarray(depths["wave_mid"][1:]),
-                       depths["depth"][1:], depths["depth_error"][1:], visit.event["kind"])
+                       depths["depth"][1:], depths["depth_error"][1:], visit.event["kind"],
+                       lit=~dim, event_line=line(wb),
+                       label=f"white band {depths['wave_lo'][0]:.3f}-{depths['wave_hi'][0]:.3f} um")
+        fig_channels = folder / "detrend-channels.png"
+        c_flux = np.asarray(lc["flux"], float)
+        c_err = np.asarray(lc["error"], float)
+        c_model, c_star = np.full(c_flux.shape, np.nan), np.full(c_flux.shape, np.nan)
+        c_used = np.zeros(c_flux.shape, bool)
+        lines = []
+        for j in range(n_ch):
+            fit = grid.fits[grid.best[1 + j]][1 + j] if grid.best[1 + j] >= 0 else None
+            lines.append(None if fit is None else line(fit))
+            if fit is not None:
+                c_model[:, j], c_star[:, j] = fit.model, star_alone(fit, kind)
+                c_used[:, j] = ~np.asarray(fit.fit_mask, bool)
+        detrend_channels_figure(fig_channels, t, c_flux, c_err, c_model, c_star, c_used,
+                                [channel_text(channels, j) for j in range(n_ch)], dim=dim,
+                                event_lines=lines)
         fig2 = folder / "grid.png"
         grid_figure(fig2, [s.name for s in specs], grid.weight, grid.depth, grid.error,
                     np.asarray(depths["wave_mid"][1:]), grid.value, grid.value_error,
@@ -360,8 +412,8 @@ class Detrend(VisitTask):
                    **({"channels not fitted": {str(j): note for j, note in sorted(notes.items())}}
                       if notes else {})}
         self.progress(1, 1, "model grid")
-        self.write_entry(self.output().path, [lc_path], outputs, metrics, [fig, fig2], started,
-                         warnings=warnings)
+        self.write_entry(self.output().path, [lc_path], outputs, metrics,
+                         [fig, fig_channels, fig2], started, warnings=warnings)
 
     def _run_phase_curve(self, started, lc_path, lc, channels):
         """A visit with every transit and eclipse and the planet's flux over the orbit."""

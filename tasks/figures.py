@@ -12,7 +12,8 @@ from lightledger.pipeline import mask as dq  # noqa: E402
 
 from .products import save_figure  # noqa: E402
 
-__all__ = ["calibrate_figure", "extract_figure", "bin_figure", "detrend_figure", "flag_image",
+__all__ = ["calibrate_figure", "extract_figure", "bin_figure", "detrend_figure",
+           "detrend_channels_figure", "flag_image",
            "binned_points", "decimate_rows", "stage_spectrum", "overlay_png"]
 
 
@@ -391,33 +392,18 @@ def bin_figure(path, lc, channels, spectrum=None, lit=None):
     return save_figure(fig, path)
 
 
-def detrend_figure(path, time, white, white_error, white_model, white_systematics, used,
-                   wave_mid, depth, depth_error, kind):
-    """Raw and detrended white light curve with the fit, and the depth spectrum."""
-    fig, axes = plt.subplots(1, 3, figsize=(14, 4.8), constrained_layout=True)
-    t = _hours(time)
-    med = np.nanmedian(white)
-    axes[0].errorbar(t[used], white[used] / med, white_error[used] / med, fmt=".", color="tab:blue",
-                     label="fitted")
-    if np.any(~used):
-        axes[0].plot(t[~used], white[~used] / med, "x", color="0.6", label="left out")
-    order = np.argsort(t)
-    axes[0].plot(t[order], white_model[order] / med, "_", color="k", ms=8, label="model")
-    axes[0].set_xlabel("hours since the first exposure")
-    axes[0].set_ylabel("white flux / median")
-    axes[0].legend(fontsize=8)
-    detr = white / white_systematics
-    axes[1].errorbar(t[used], detr[used], white_error[used] / white_systematics[used], fmt=".",
-                     color="tab:green")
-    axes[1].plot(t[order], (white_model / white_systematics)[order], "_", color="k", ms=8)
-    axes[1].set_xlabel("hours since the first exposure")
-    axes[1].set_ylabel("detrended white flux")
-    scale = 1e6
-    axes[2].errorbar(wave_mid, np.asarray(depth) * scale, np.asarray(depth_error) * scale, fmt="o",
-                     color="tab:purple")
-    axes[2].set_xlabel("wavelength (um)")
-    axes[2].set_ylabel(f"{kind} depth (ppm)")
-    return save_figure(fig, path)
+def detrend_figure(*args, **kwargs):
+    """The white-band fit and the depth spectrum (:func:`.figures_detrend.detrend_figure`)."""
+    from .figures_detrend import detrend_figure as draw
+
+    return draw(*args, **kwargs)
+
+
+def detrend_channels_figure(*args, **kwargs):
+    """Every channel's fit (:func:`.figures_detrend.detrend_channels_figure`)."""
+    from .figures_detrend import detrend_channels_figure as draw
+
+    return draw(*args, **kwargs)
 
 
 # ---------------------------------------------------------------------------
