@@ -31,8 +31,9 @@ Products in ``NOTEBOOK/detrend-IDENT/``:
     one table per model (MODEL_NN) with that model's detrended light curves;
 ``detrended.ecsv``, ``depths.ecsv``, ``grid.ecsv``
     DETRENDED, DEPTHS and GRID as ECSV;
-``detrend.png``, ``grid.png``
-    the white light curve and the spectrum; the models' weights and spectra.
+``detrend.png``, ``detrend-channels.png``, ``grid.png``
+    the white light curve's fit in four views and the spectrum; every channel's
+    fit; the models' weights and spectra.
 """
 
 import dataclasses
@@ -342,7 +343,7 @@ class Detrend(VisitTask):
         model_hdus = []
         for m, spec in enumerate(specs):
             hdu = table_hdu(_detrended_table(lc, grid, np.full(n_ch + 1, m), kind), f"MODEL_{m:02d}")
-            hdu.header["MODEL"] = (spec.name, "systematics model of this table")
+            hdu.header["MODEL"] = (spec.name, "systematics model")
             model_hdus.append(hdu)
         write_fits(models_path, model_hdus, prov)
         outputs = [fits_path, models_path]
