@@ -69,11 +69,25 @@ def _detrend(p, f):
     elif f["n_orbits"] is not None and f["n_orbits"] <= 2:
         out["drop_first_orbit"] = f"the visit has {f['n_orbits']} orbit(s); at least 3 are needed"
     if f["kind"] != "eclipse" or f["phase_curve"] is False or p.get("fit") != "joint":
-        why = ("the event is a transit" if f["kind"] != "eclipse"
+        why = (f"the event is a {f['kind']}, not an eclipse" if f["kind"] != "eclipse"
                else "no phase curve is fitted" if f["phase_curve"] is False
                else "the fit is not joint")
         if "phase_curve_model" in p:
             out["phase_curve_model"] = why
+    models = tuple(p.get("models") or ())
+    if not f["scanning"] and models:
+        unused = sorted({tok for m in models for tok in m.split("+")
+                         if tok == "scan" or (tok.startswith("orbit") and tok != "orbit0")})
+        if unused:
+            out["models"] = (f"on a stare the tokens {', '.join(unused)} are left out "
+                             f"(one orbit, no scan directions)")
+    if len(models) == 1:
+        out["criterion"] = "a single model: nothing to rank or weight"
+    if f["kind"] != "phase-curve":
+        for key in ("harmonics", "fit_radius", "phase_bins"):
+            out[key] = "used by phase-curve events and programmes only"
+    else:
+        out["phase_curve"] = "a phase-curve event models the planet's flux itself"
     if p.get("limb_darkening") != "fit" and "limb_darkening_prior" in p:
         out["limb_darkening_prior"] = "the channels' limb darkening is not fitted"
     if p.get("limb_darkening") == "fit" and f["kind"] == "eclipse":

@@ -26,11 +26,16 @@ Products in ``NOTEBOOK/detrend-IDENT/``:
     each also a warning in the entry and on the console) and
     GRID (one row per model and light curve: chi-square, BIC, AIC, weight,
     depth, its three errors, shape parameters, the white light's fitted
-    event);
+    event) and COEFFICIENTS (per light curve, its top model's fitted
+    parameters with their covariance; :mod:`.detrendmeta`); the table
+    headers carry what a fitter needs (:mod:`.metadata`: target, ephemeris,
+    geometry, limb darkening, exposure duration; the white light's fitted
+    mid-time, a/Rs, inclination);
 ``grid-models.fits``
     one table per model (MODEL_NN) with that model's detrended light curves;
-``detrended.ecsv``, ``depths.ecsv``, ``grid.ecsv``
-    DETRENDED, DEPTHS and GRID as ECSV;
+``detrended.ecsv``, ``depths.ecsv``, ``grid.ecsv``, ``coefficients.ecsv``
+    DETRENDED, DEPTHS, GRID and COEFFICIENTS as ECSV, with the same facts
+    in their metadata;
 ``detrend.png``, ``detrend-channels.png``, ``grid.png``
     the white light curve's fit in four views and the spectrum; every channel's
     fit; the models' weights and spectra.
@@ -56,7 +61,10 @@ from lightledger.pipeline.whitelight import event_template as _event_template
 
 from .base import ENTRY_NAME, VisitTask
 from .lightcurves import read_lightcurves, wide_table
-from .metadata import channel_text
+from .applicability import not_applying, visit_facts
+from .detrendmeta import (DEPTHS_COLUMNS, DETRENDED_COLUMNS, GRID_COLUMNS, coefficients_table,
+                          describe, event_cards, fitted_event)
+from .metadata import channel_text, ecsv_meta, fits_cards, set_time_keywords
 from .products import table_hdu, write_ecsv, write_fits
 
 __all__ = ["Detrend", "event_template", "grid_setup", "systematics_setup", "star_alone",
@@ -309,6 +317,7 @@ class Detrend(VisitTask):
         depths["unphysical"] = quality.unphysical
         depths["noisy"] = quality.noisy
         depths["note"] = [notes.get(int(c), "") for c in depths["channel"]]
+        describe(depths, DEPTHS_COLUMNS)
         warnings = []
         for c, reason in zip(depths["channel"], quality.reasons):
             if reason:
@@ -320,11 +329,24 @@ class Detrend(VisitTask):
                                 f"of the range searched (the grid extended to what the exposures "
                                 f"can tell apart): this light curve does not constrain it")
         table = grid_table(grid, channels)
+        bands = [(int(r["channel"]), float(r["wave_lo"]), float(r["wave_hi"])) for r in depths]
+        coefs = coefficients_table(grid, bands)
+        event_fit = fitted_event(grid)
 
         prov = self.provenance([lc_path])
         folder = self.folder
         fits_path = folder / "detrended.fits"
-        hdus = [table_hdu(det, "DETRENDED"), table_hdu(depths, "DEPTHS"), table_hdu(table, "GRID")]
+        texp = (np.asarray(lc["exposure_time"], float) if "exposure_time" in lc.colnames
+                else np.full(t.size, np.nan))
+        facts = fits_cards(visit, t, texp if np.any(np.isfinite(texp)) else [0.0], n_ch)
+        hdus = [table_hdu(det, "DETRENDED"), table_hdu(depths, "DEPTHS"), table_hdu(table, "GRID"),
+                table_hdu(coefs, "COEFFICIENTS")]
+        for hdu in hdus:
+            for key, value, comment in facts + event_cards(event_fit):
+                hdu.header[key] = (value, comment)
+            hdu.header["LDCHAN"] = (params["limb_darkening"],
+                                    "channels' limb darkening (DEPTHS ld_u1, ld_u2)")
+        set_time_keywords(hdus[0])
         hdus[1].header["EVENT"] = (visit.event["kind"], "event whose depth was fitted")
         hdus[1].header["DEPTHIS"] = (depths.meta["depth_meaning"], "meaning of the depth column")
         hdus[1].header["CRITERN"] = (grid.criterion.upper(), "criterion weighting the models")
@@ -334,11 +356,8 @@ class Detrend(VisitTask):
                                      "curves with an unphysical depth")
         hdus[1].header["NNOISY"] = (int(np.sum(depths["noisy"])),
                                     "curves with residual rms above 5x expected")
-        for key, name in (("T0FIT", "t0"), ("ARSFIT", "a_rs"), ("INCFIT", "inclination")):
-            best = grid.white_fits[grid.white_owner[grid.best[0]]]
-            hdus[1].header[key] = (float(best.event[name]),
-                                   ("fitted " if name in best.event_errors else "a priori ") + name)
-        write_fits(fits_path, hdus, prov)
+        write_fits(fits_path, hdus, prov, header={"TIMESYS": "TDB", "TIMEREF": "SOLARSYSTEM",
+                                                   **{k: (v, c) for k, v, c in facts[:4]}})
         models_path = folder / "grid-models.fits"
         model_hdus = []
         for m, spec in enumerate(specs):
@@ -347,8 +366,16 @@ class Detrend(VisitTask):
             model_hdus.append(hdu)
         write_fits(models_path, model_hdus, prov)
         outputs = [fits_path, models_path]
+        meta = ecsv_meta(visit, t, texp if np.any(np.isfinite(texp)) else [0.0], channels)
+        meta["time_columns"] = {"time_bjd_tdb": meta["time_columns"]["time_bjd_tdb"]}
+        meta["fitted_event"] = event_fit
+        meta["channel_limb_darkening"] = params["limb_darkening"]
         for name, tab in (("detrended.ecsv", wide_table(det, n_ch, channels)), ("depths.ecsv", depths),
-                          ("grid.ecsv", table)):
+                          ("grid.ecsv", table), ("coefficients.ecsv", coefs)):
+            tab = tab.copy(copy_data=False)
+            depth_meta = {k: tab.meta[k] for k in ("depth_meaning", "depth_error") if k in tab.meta}
+            tab.meta.update(meta)
+            tab.meta.update(depth_meta)
             write_ecsv(folder / name, tab, prov)
             outputs.append(folder / name)
         from .figures import detrend_channels_figure, detrend_figure, grid_figure
@@ -413,8 +440,12 @@ class Detrend(VisitTask):
                    **({"channels not fitted": {str(j): note for j, note in sorted(notes.items())}}
                       if notes else {})}
         self.progress(1, 1, "model grid")
+        facts = visit_facts(scanning=not stare, n_orbits=len(np.unique(np.asarray(lc["orbit"]))),
+                            kind=kind, phase_curve=_wants_phase_curve(params["phase_curve"],
+                                                                      visit.event, t))
         self.write_entry(self.output().path, [lc_path], outputs, metrics,
-                         [fig, fig_channels, fig2], started, warnings=warnings)
+                         [fig, fig_channels, fig2], started, warnings=warnings,
+                         not_applying=not_applying("detrend", params, facts))
 
     def _run_phase_curve(self, started, lc_path, lc, channels):
         """A visit with every transit and eclipse and the planet's flux over the orbit."""
@@ -456,7 +487,8 @@ def _detrended_table(lc, grid, which, kind):
     det = Table()
     det["exposure"] = lc["exposure"]
     det["time_bjd_tdb"] = t
-    det["time_bjd_tdb"].unit = "d"
+    if "exposure_time" in lc.colnames:
+        det["exposure_time"] = np.asarray(lc["exposure_time"], float)
     det["used"] = ~np.asarray(white.fit_mask, bool) if white is not None else np.zeros(t.size, bool)
     w_star = star_alone(white, kind) if white is not None else nan
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -479,8 +511,7 @@ def _detrended_table(lc, grid, which, kind):
             cols["residual"][:, j] = (flux[:, j] - fit.model) / star
     for name, values in cols.items():
         det[name] = values
-    for name in ("white_systematics", "white_model", "systematics", "model"):
-        det[name].unit = "electron"
+    describe(det, DETRENDED_COLUMNS)
     return det
 
 
@@ -494,7 +525,7 @@ def _depths_table(lc, channels, grid, event):
     for c, (j, lo, hi) in enumerate(bands):
         m = int(grid.best[c])
         if m < 0:                           # not fitted
-            rows.append(_unfitted_row(j, lo, hi))
+            rows.append({**_unfitted_row(j, lo, hi), **_limb_darkening(grid, event, j)})
             continue
         fit = grid.fits[m][c]
         q = residual_quality(fit.residuals, fit.detrended_error, ~np.asarray(fit.fit_mask, bool),
@@ -517,16 +548,23 @@ def _depths_table(lc, channels, grid, event):
                      else np.nan,
                      # the shapes come from the model's white fit, which channels share
                      "shape_at_edge": ", ".join(
-                         grid.white_fits[grid.white_owner[m]].result.shapes_at_edge)})
+                         grid.white_fits[grid.white_owner[m]].result.shapes_at_edge),
+                     **_limb_darkening(grid, event, j)})
     depths = Table(rows=rows, names=list(rows[0]))
-    for name, unit in (("wave_lo", "um"), ("wave_hi", "um"), ("wave_mid", "um"), ("tau_min", "min")):
-        depths[name].unit = unit
-    depths.meta["event"] = event["kind"]
+    describe(depths, DEPTHS_COLUMNS)
     depths.meta["depth_meaning"] = "(rp/rs)^2" if event["kind"] == "transit" else "fp/(1+fp)"
     depths.meta["depth_error"] = (f"marginalised over {len(grid.specs)} models with "
                                   f"{grid.criterion.upper()} weights; each model's error: "
                                   f"{grid.error_kind}")
     return depths
+
+
+def _limb_darkening(grid, event, j):
+    """The quadratic limb darkening the fit of band ``j`` used (-1: the white light's)."""
+    if j < 0 or grid.limb_darkening is None:
+        return {"ld_u1": float(event["u1"]), "ld_u2": float(event["u2"])}
+    u1, u2 = grid.limb_darkening
+    return {"ld_u1": float(np.asarray(u1)[j]), "ld_u2": float(np.asarray(u2)[j])}
 
 
 def _unfitted_row(j, lo, hi):
@@ -575,9 +613,7 @@ def grid_table(grid, channels):
                 "inclination_error": float(err.get("inclination", np.nan)),
                 "status": "ok" if fit is not None else "failed"})
     table = Table(rows=rows, names=list(rows[0]))
-    for name, unit in (("t0", "d"), ("t0_error", "d"), ("inclination", "deg"),
-                       ("inclination_error", "deg")):
-        table[name].unit = unit
+    describe(table, GRID_COLUMNS)
     table.meta["criterion"] = grid.criterion
     table.meta["depth_error"] = grid.error_kind
     table.meta["failures"] = list(grid.failures)
