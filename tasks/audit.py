@@ -76,10 +76,12 @@ def _target(path):
         raise InputFileError(f"{path}: no such file or folder to audit")
     if path.is_file() and path.suffix == ".toml":
         from .config import load_visit
-        notebook = Path(load_visit(path).notebook)
+        from .programme import is_programme, load_programme
+        notebook = Path(load_programme(path).notebook if is_programme(path)
+                        else load_visit(path).notebook)
         if not notebook.is_dir():
-            raise InputFileError(f"{notebook}: the visit has no notebook yet; run lightledger reduce "
-                                 f"first")
+            raise InputFileError(f"{notebook}: {path.name} has no notebook yet; run lightledger "
+                                 f"reduce first")
         return "notebook", notebook.resolve()
     if path.is_file():
         return "product", path.resolve()

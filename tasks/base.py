@@ -56,9 +56,11 @@ from .config import load_visit
 from .digests import CACHE_NAME, DigestCache, sha256_of
 from .products import Provenance, known_digest, part_pattern, relative_input, write_json
 
-__all__ = ["VisitTask", "RunPlan", "make_plan", "register_plan", "visit_config", "raw_identity",
-           "stage_identity", "stage_dir", "stage_hash", "chunk_ranges", "chunk_length", "AUTO_CHUNK", "read_entry",
-           "ENTRY_NAME", "settings_to_text", "settings_from_text", "product_digest"]
+__all__ = ["FolderTask", "VisitTask", "guarded", "supersede", "remove_parts", "RunPlan",
+           "make_plan", "register_plan", "visit_config", "raw_identity", "stage_identity",
+           "stage_dir", "stage_hash", "content_identity", "stage_params", "user_name",
+           "chunk_ranges", "chunk_length", "AUTO_CHUNK", "read_entry", "ENTRY_NAME",
+           "settings_to_text", "settings_from_text", "product_digest"]
 
 ENTRY_NAME = "entry.json"
 #: Suffix of the hidden record a task writes beside its output once made.
@@ -216,10 +218,19 @@ def stage_params(visit, stage):
     return sorted((k, list(v) if isinstance(v, tuple) else v) for k, v in visit.stages[stage].items())
 
 
+def content_identity(stage, params, facts, upstream):
+    """Identity (hex) from what a stage used: its code version, parameters, facts and upstream.
+
+    ``params`` is a sorted list of [name, value], ``facts`` JSON-ready, and
+    ``upstream`` the identity (or colon-joined identities) it reads from; the
+    entry records all four, so that ``audit`` recomputes the identity.
+    """
+    return _hash(stage, STAGES[stage].version, params, facts, upstream)
+
+
 def stage_hash(visit, stage, upstream):
     """Identity (hex) of ``stage`` given the identity of what it reads from."""
-    return _hash(stage, STAGES[stage].version, stage_params(visit, stage), stage_facts(visit, stage),
-                 upstream)
+    return content_identity(stage, stage_params(visit, stage), stage_facts(visit, stage), upstream)
 
 
 def stage_identity(visit, stage):
@@ -418,7 +429,55 @@ def read_entry(path, stage=None):
 # the task base
 # ---------------------------------------------------------------------------
 
-class VisitTask(luigi.Task):
+class FolderTask:
+    """What a task that makes one notebook folder shares: locks, forcing, made-records.
+
+    A subclass (a :class:`luigi.Task`) provides ``folder``, ``output()``,
+    ``force_after``, ``run_id`` and ``forced``; its ``run()`` is wrapped
+    (:func:`guarded`): the folder's shared lock and the output's exclusive
+    lock are held while it runs, leftover temporary files of the output are
+    removed, a forced stage's old folder is moved aside first, the run
+    returns at once when another reducer made the output meanwhile, and the
+    output's made-record is written after it.
+    """
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        if "run" in cls.__dict__:
+            cls.run = guarded(cls.__dict__["run"])
+
+    def check_identity(self):
+        """Raise when the task's inputs no longer give its identity (default: nothing to check)."""
+
+    def made_by_this_run(self):
+        """True when this task's output was made by the run that scheduled it."""
+        return bool(self.run_id) and read_made_record(self.output().path).get("run") == self.run_id
+
+    def supersede_if_old(self):
+        """Move a forced stage's complete folder aside when its entry predates the run.
+
+        Done under the folder's exclusive lock, so never while another task
+        writes into it; a folder whose entry is newer than the run's start was
+        made again by a run that started later, or is being made (no entry):
+        it is kept.
+        """
+        folder = self.folder
+        entry = folder / ENTRY_NAME
+        try:
+            if os.stat(entry).st_mtime >= self.force_after:
+                return
+        except FileNotFoundError:
+            return
+        with locks.locked(locks.folder_lock_path(folder)):
+            try:
+                if os.stat(entry).st_mtime >= self.force_after:
+                    return
+            except FileNotFoundError:
+                return
+            supersede(folder)
+
+
+class VisitTask(FolderTask, luigi.Task):
     """Base of every stage task: a visit description, command-line settings, identities.
 
     Subclasses define ``stage``, ``requires()``, ``output()`` (one file of the
@@ -447,11 +506,6 @@ class VisitTask(luigi.Task):
 
     #: Stage this task belongs to; set by subclasses.
     stage = None
-
-    def __init_subclass__(cls, **kwargs):
-        super().__init_subclass__(**kwargs)
-        if "run" in cls.__dict__:
-            cls.run = _guarded(cls.__dict__["run"])
 
     # -- the plan ---------------------------------------------------------------
     @property
@@ -602,34 +656,6 @@ class VisitTask(luigi.Task):
             return read_entry(path, self.stage) is not None
         return True
 
-    def made_by_this_run(self):
-        """True when this task's output was made by the run that scheduled it."""
-        return bool(self.run_id) and read_made_record(self.output().path).get("run") == self.run_id
-
-    # -- forcing ---------------------------------------------------------------
-    def supersede_if_old(self):
-        """Move a forced stage's complete folder aside when its entry predates the run.
-
-        Done under the folder's exclusive lock, so never while another task
-        writes into it; a folder whose entry is newer than the run's start was
-        made again by a run that started later, or is being made (no entry):
-        it is kept.
-        """
-        folder = self.folder
-        entry = folder / ENTRY_NAME
-        try:
-            if os.stat(entry).st_mtime >= self.force_after:
-                return
-        except FileNotFoundError:
-            return
-        with locks.locked(locks.folder_lock_path(folder)):
-            try:
-                if os.stat(entry).st_mtime >= self.force_after:
-                    return
-            except FileNotFoundError:
-                return
-            supersede(folder)
-
     # -- progress, failure, entry -------------------------------------------------
     def progress(self, done, total, what, *, part=None):
         """Report progress to Luigi's scheduler and to the command line's bar of the stage.
@@ -778,8 +804,8 @@ def remove_parts(folder, name=None):
     return removed
 
 
-def _guarded(run):
-    """Wrap a task's ``run`` (plain or generator) with the checks and locks of :class:`VisitTask`."""
+def guarded(run):
+    """Wrap a task's ``run`` (plain or generator) with the checks and locks of :class:`FolderTask`."""
     if inspect.isgeneratorfunction(run):
         def wrapper(self):
             with _claim(self) as fresh:
@@ -797,6 +823,9 @@ def _guarded(run):
     wrapper.__doc__ = run.__doc__
     wrapper.__wrapped__ = run
     return wrapper
+
+
+_guarded = guarded
 
 
 @contextmanager
@@ -850,11 +879,15 @@ def _inventory_refs(path, raw):
     return _inventory_cached(str(path), stamp, str(raw))
 
 
-def _user():
+def user_name():
+    """The user's login name, or "unknown"."""
     try:
         return getpass.getuser()
     except Exception:
         return "unknown"
+
+
+_user = user_name
 
 
 #: Where the command line puts its progress reporter (one per process).

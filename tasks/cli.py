@@ -94,9 +94,11 @@ def _parser():
     red.add_argument("--until", choices=STAGE_ORDER, metavar="STAGE",
                      help="stop after this stage: " + ", ".join(STAGE_ORDER)
                           + " (default: run every stage)")
-    red.add_argument("--force", choices=STAGE_ORDER, action="append", default=[], metavar="STAGE",
+    red.add_argument("--force", choices=(*STAGE_ORDER, "joint"), action="append", default=[],
+                     metavar="STAGE",
                      help="run this stage and the ones after it again although complete, keeping "
-                          "the old entries renamed ...superseded-TIME; repeatable (default: none)")
+                          "the old entries renamed ...superseded-TIME; repeatable; 'joint' (a "
+                          "programme) makes only its joint fit again (default: none)")
     red.add_argument("--scheduler-host", default=None, metavar="HOST",
                      help="use Luigi's central scheduler (luigid) on HOST instead of a local one "
                           "(default: a local scheduler)")
@@ -162,9 +164,12 @@ def _parser():
     nb_list = nb_sub.add_parser("list", help="every entry: stage, when, identity, size, state, "
                                              "what it was made from")
     nb_list.add_argument("path", help="a notebook folder, a visit TOML or a stage folder")
-    nb_prune = nb_sub.add_parser("prune", help="remove superseded entries nothing current depends "
-                                               "on, and folders of interrupted runs")
-    nb_prune.add_argument("path", help="a notebook folder or a visit TOML")
+    nb_prune = nb_sub.add_parser("prune", help="remove superseded entries and older ones that "
+                                               "nothing current depends on (current: the newest "
+                                               "entry of each stage, the current chain, what a "
+                                               "programme's joint fit reads), and folders of "
+                                               "interrupted runs")
+    nb_prune.add_argument("path", help="a notebook folder, a visit or programme TOML")
     nb_prune.add_argument("--dry-run", action="store_true", help="only show what would go")
     nb_page = nb_sub.add_parser("page", help="write index.html and notebook.json from the entries")
     nb_page.add_argument("path", help="a notebook folder or a visit TOML")
@@ -340,10 +345,11 @@ def _cmd_notebook(args):
         print("* the current chain")
         return 0
     if args.action == "prune":
-        folder, removed, freed = notebook.prune(args.path, dry_run=args.dry_run)
+        reasons = {}
+        folder, removed, freed = notebook.prune(args.path, dry_run=args.dry_run, reasons=reasons)
         verb = "would remove" if args.dry_run else "removed"
         for name in removed:
-            print(f"{verb} {name}")
+            print(f"{verb} {name}: {reasons.get(name, '')}")
         print(f"{folder}: {verb} {len(removed)} folders, {_bytes(freed)}")
         return 0
     page = notebook.write_page(notebook._notebook_of(args.path))

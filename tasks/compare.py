@@ -38,12 +38,13 @@ import numpy as np
 
 from lightledger.pipeline.errors import InputFileError
 
+from .audit import resolve_recorded
 from .base import ENTRY_NAME, read_entry
 from .notebook import collect_entries, entry_sources, parameter_changes
 
 __all__ = ["compare", "main_product", "lineage"]
 
-_MAIN = ("detrended.fits", "lightcurves.fits", "spectra.fits", "exposures.ecsv")
+_MAIN = ("detrended.fits", "planet.fits", "lightcurves.fits", "spectra.fits", "exposures.ecsv")
 
 
 def main_product(folder):
@@ -182,6 +183,14 @@ def lineage(folder):
         seen.add(entry["path"])
         found.setdefault(entry["stage"], entry)
         stack += [by_path[p] for p in entry_sources(entry, entries) if p in by_path]
+    if start["stage"] == "joint":       # a programme's fit reads the visits' notebooks
+        for name, digest in (start.get("inputs") or {}).items():
+            source = (folder / str(name)).resolve()
+            if not source.is_file():
+                source, _ = resolve_recorded(folder, str(name), digest)
+            if source.parent.parent != folder.parent:
+                for stage, entry in lineage(source.parent).items():
+                    found.setdefault(f"{entry.get('visit', '?')}: {stage}", entry)
     return found
 
 
@@ -245,8 +254,14 @@ def _lineage_differences(a, b):
 
 
 def _ordered(stages):
+    """Stages in the reduction's order; a programme's visits' stages ("VISIT: stage") first."""
     from lightledger.pipeline.parameters import STAGE_ORDER
-    return sorted(stages, key=lambda s: (STAGE_ORDER.index(s) if s in STAGE_ORDER else 99, s))
+
+    def key(name):
+        visit, _, stage = name.rpartition(": ")
+        return (0 if visit else 1, visit, STAGE_ORDER.index(stage) if stage in STAGE_ORDER else 99,
+                stage)
+    return sorted(stages, key=key)
 
 
 # ---------------------------------------------------------------------------
@@ -316,6 +331,8 @@ def _numbers(a, b):
         return out + [f"numbers: {a.product.name} and {b.product.name} share no table to compare"]
     if "DEPTHS" in common:
         out += _depths(tables_a["DEPTHS"], tables_b["DEPTHS"])
+    if "PLANET" in common:
+        out += _planet(tables_a["PLANET"], tables_b["PLANET"])
     for kind in ("DETRENDED", "LIGHTCURVES"):
         if kind in common:
             out += _light_curves(tables_a[kind], tables_b[kind], kind, a.event() or b.event())
@@ -323,7 +340,7 @@ def _numbers(a, b):
         wave = tables_a.get("WAVELENGTH")
         out += _spectra(images_a, images_b, wave)
     for name in common:
-        if name in ("DEPTHS", "DETRENDED", "LIGHTCURVES"):
+        if name in ("DEPTHS", "DETRENDED", "LIGHTCURVES", "PLANET"):
             continue
         out += _generic(name, tables_a[name], tables_b[name])
     return out
@@ -344,6 +361,38 @@ def _depths(da, db):
         out.append(f"  {label:>5}  {wave}  {ra['depth'] * 1e6:9.1f} {rb['depth'] * 1e6:9.1f}  {z:+.2f}")
     if len(db) != len(da):
         out.append(f"  the depth tables have {len(da)} and {len(db)} rows")
+    return out
+
+
+#: Planet quantities of a phase-curve product compared (column, error column, scale, unit).
+_PLANET = (("transit_depth", "transit_depth_error", 1e6, "ppm"),
+           ("eclipse_depth", "eclipse_depth_error", 1e6, "ppm"),
+           ("night_flux", "night_flux_error", 1e6, "ppm"),
+           ("amplitude", "amplitude_error", 1e6, "ppm"),
+           ("offset_deg", "offset_error_deg", 1.0, "deg"))
+
+
+def _planet(pa, pb):
+    """Per channel, each planet quantity of A and B and their difference / combined error."""
+    out = ["planet (phase-curve fit): channel, quantity: A -> B (difference / combined error)"]
+    rows_b = {int(r["channel"]): r for r in pb}
+    for ra in pa:
+        rb = rows_b.get(int(ra["channel"]))
+        label = "white" if ra["channel"] < 0 else f"{int(ra['channel']):>5d}"
+        if rb is None:
+            out.append(f"  {label:>5}  only in A")
+            continue
+        parts = []
+        for col, ecol, scale, unit in _PLANET:
+            if col not in pa.colnames or col not in pb.colnames:
+                continue
+            a, b = float(ra[col]), float(rb[col])
+            if not (np.isfinite(a) or np.isfinite(b)):
+                continue
+            err = float(np.hypot(ra[ecol], rb[ecol])) if ecol in pa.colnames else np.nan
+            z = (b - a) / err if err > 0 else np.nan
+            parts.append(f"{col} {a * scale:.1f} -> {b * scale:.1f} {unit} ({z:+.2f})")
+        out.append(f"  {label:>5}  " + "; ".join(parts))
     return out
 
 

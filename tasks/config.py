@@ -33,7 +33,7 @@ from .problems import Problems
 
 __all__ = ["Key", "PROFILE_SCHEMA", "VISIT_SCHEMA", "RAW_KEYWORDS", "RAW_EXTENSIONS",
            "EXCLUDE_KINDS", "Profile", "Visit", "load_profile", "load_visit", "fits_text",
-           "read_toml"]
+           "read_toml", "check_schema"]
 
 #: Header keywords of the raw layout that a profile may rename.
 RAW_KEYWORDS = ("DATE-BEG", "TIMESYS", "XPOSURE", "OBSGEO-X", "OBSGEO-Y", "OBSGEO-Z",
@@ -233,8 +233,11 @@ def read_toml(path, what, problems):
         return None
 
 
-def _check(doc, schema, path, problems, prefix=""):
-    """Validate ``doc`` against ``schema``; a converted copy, None where a value failed."""
+def check_schema(doc, schema, path, problems, prefix=""):
+    """Validate ``doc`` against ``schema``; a converted copy, None where a value failed.
+
+    Every problem is added to ``problems`` (one line naming ``path`` and the key).
+    """
     out = {}
     suggested = set()
     for key in doc:
@@ -269,6 +272,9 @@ def _check(doc, schema, path, problems, prefix=""):
             problems.error(path, str(exc))
             out[key] = None
     return out
+
+
+_check = check_schema
 
 
 def _number(value, name, rule, integer=False):

@@ -25,6 +25,7 @@ and ``notebook prune`` commands.
 import base64
 import html
 import json
+import os
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -36,7 +37,8 @@ from .base import ENTRY_NAME, read_entry
 from .products import atomic_path
 
 __all__ = ["collect_entries", "render_page", "write_page", "parameter_changes", "current_chain",
-           "list_entries", "prune", "NotebookEntry"]
+           "current_roots", "list_entries", "prune", "NotebookEntry", "note_programme",
+           "programme_notebooks", "note_last_used"]
 
 _PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -139,7 +141,7 @@ h1 { font-size: 1.5em; } h2 { font-size: 1.1em; margin: 0; }
 .meta { color: #555; font-size: 0.9em; margin: 0.3em 0 0.6em; }
 .stage { display: inline-block; padding: 0 0.5em; border-radius: 4px; color: white; background: #666; }
 .calibrate { background: #4a6fa5; } .extract { background: #5a8f5a; }
-.bin { background: #a5774a; } .detrend { background: #8a4aa5; }
+.bin { background: #a5774a; } .detrend { background: #8a4aa5; } .joint { background: #a54a5a; }
 .badge { font-size: 0.8em; border: 1px solid #333; border-radius: 3px; padding: 0 0.3em; margin-left: 0.4em; }
 table { border-collapse: collapse; font-size: 0.9em; margin: 0.4em 0; }
 td, th { border-bottom: 1px solid #eee; padding: 2px 8px; text-align: left; }
@@ -420,32 +422,141 @@ def entry_sources(entry, entries):
     return sources
 
 
-def _needed(entries):
-    """Folder names that a current (not superseded) entry depends on, themselves included."""
+#: Hidden file of a visit's notebook naming the programme notebooks whose joint fits read it.
+PROGRAMMES_NAME = ".programmes.json"
+
+
+def note_programme(notebook, programme_notebook):
+    """Record in a visit's notebook that a programme's joint fit reads its entries.
+
+    The programme notebook is kept by its path relative to the visit's
+    notebook (so copying the programme's folder whole keeps the record true).
+    ``notebook prune`` of the visit's notebook then keeps every entry a
+    current joint entry of the programme was made from.
+    """
+    notebook = Path(notebook)
+    notebook.mkdir(parents=True, exist_ok=True)
+    rel = os.path.relpath(Path(programme_notebook).resolve(), notebook.resolve())
+    with locks.locked(locks.notebook_lock_path(notebook)):
+        known = programme_notebooks(notebook, relative=True)
+        if rel in known:
+            return
+        with atomic_path(notebook / PROGRAMMES_NAME) as tmp:
+            tmp.write_text(json.dumps(sorted(known + [rel]), indent=1) + "\n", encoding="utf-8")
+
+
+def programme_notebooks(notebook, *, relative=False):
+    """The programme notebooks recorded by :func:`note_programme` (paths; relative if asked)."""
+    try:
+        names = json.loads((Path(notebook) / PROGRAMMES_NAME).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return []
+    names = [n for n in names if isinstance(n, str)] if isinstance(names, list) else []
+    return names if relative else [(Path(notebook) / n).resolve() for n in names]
+
+
+#: Hidden file of a notebook naming the folders the last reductions used, by who reduced.
+LAST_USED_NAME = ".last-used.json"
+
+
+def note_last_used(notebook, who, folders):
+    """Record the stage folders a reduction ended with (made or reused), under ``who``.
+
+    ``who`` is ``"visit"`` for a visit's own reduction, or the programme
+    notebook's path relative to this one; each keeps its own last record.
+    """
+    notebook = Path(notebook)
+    if not notebook.is_dir():
+        return
+    with locks.locked(locks.notebook_lock_path(notebook)):
+        doc = _last_used(notebook)
+        doc[str(who)] = sorted(Path(f).name for f in folders)
+        with atomic_path(notebook / LAST_USED_NAME) as tmp:
+            tmp.write_text(json.dumps(doc, indent=1, sort_keys=True) + "\n", encoding="utf-8")
+
+
+def _last_used(notebook):
+    try:
+        doc = json.loads((Path(notebook) / LAST_USED_NAME).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    return {str(k): [n for n in v if isinstance(n, str)] for k, v in doc.items()
+            if isinstance(v, list)} if isinstance(doc, dict) else {}
+
+
+def current_roots(entries, notebook=None):
+    """Folder names of the entries a notebook treats as current.
+
+    The newest entry (not superseded) of every stage, the current chain,
+    and (given the notebook) the folders the last reductions ended with
+    (:func:`note_last_used`), so that going back to earlier settings keeps
+    the entries they reuse; everything these were made from is current too
+    (see :func:`prune`).
+    """
+    newest = {}
+    for e in entries:
+        if not e.get("superseded"):
+            newest[e["stage"]] = e["path"]
+    roots = set(newest.values()) | set(current_chain(entries))
+    if notebook is not None:
+        for names in _last_used(notebook).values():
+            roots.update(names)
+    return roots
+
+
+def _external_roots(notebook):
+    """Folder names of a visit notebook that current joint entries of programmes read."""
+    notebook = Path(notebook).resolve()
+    names = set()
+    for other in programme_notebooks(notebook):
+        if not Path(other).is_dir():
+            continue
+        theirs = collect_entries(other)
+        keep = current_roots(theirs, other)
+        for entry in theirs:
+            if entry["path"] not in keep:
+                continue
+            for name in (entry.get("inputs") or {}):
+                folder = (Path(other) / entry["path"] / str(name)).resolve().parent
+                if folder.parent == notebook:
+                    names.add(folder.name)
+    return names
+
+
+def _needed(entries, roots=None):
+    """Folder names the roots depend on, themselves included (default roots: every entry not
+    superseded)."""
     by_path = {e["path"]: e for e in entries}
     needed = set()
-    stack = [e["path"] for e in entries if not e.get("superseded")]
+    stack = list(roots) if roots is not None else [e["path"] for e in entries
+                                                   if not e.get("superseded")]
     while stack:
         name = stack.pop()
-        if name in needed:
+        if name in needed or name not in by_path:
             continue
         needed.add(name)
         stack += entry_sources(by_path[name], entries)
     return needed
 
 
-def prune(path, *, dry_run=False):
-    """Remove superseded entries nothing current depends on, and interrupted runs' folders.
+def prune(path, *, dry_run=False, reasons=None):
+    """Remove entries nothing current needs, and interrupted runs' folders.
 
-    Never removes an entry that a current (not superseded) entry was made
-    from, however far up its lineage, nor a folder a running reduction is
-    writing into (its lock is tried without waiting).  Returns
-    ``(notebook, removed folder names, bytes freed)``.
+    Current are the newest entry of every stage that was not superseded, the
+    current chain, the folders the last reductions ended with (made or
+    reused), and the entries a programme's current joint fit reads
+    (programmes recorded by :func:`note_programme`); every entry they were
+    made from, however far up their lineage, is kept.  Everything else goes:
+    superseded entries and older entries that nothing current references.
+    A folder a running reduction is writing into (its lock is tried without
+    waiting) is left.  Returns ``(notebook, removed folder names, bytes
+    freed)``; with ``dry_run`` nothing is removed.  ``reasons``, a dict
+    when given, receives why each folder goes.
     """
     notebook = _notebook_of(path)
     unreadable = []
     entries = collect_entries(notebook, unreadable=unreadable)
-    needed = _needed(entries)
+    needed = _needed(entries, current_roots(entries, notebook) | _external_roots(notebook))
     by_path = {e["path"]: e for e in entries}
     removed, freed = [], 0
     for folder in _stage_folder_names(notebook):
@@ -453,8 +564,11 @@ def prune(path, *, dry_run=False):
         if entry is None:
             # an interrupted run's partial folder; a garbage entry is left for the user to see
             doomed = folder.name not in unreadable and not (folder / ENTRY_NAME).exists()
+            why = "an interrupted run's folder (no entry)"
         else:
-            doomed = bool(entry.get("superseded")) and folder.name not in needed
+            doomed = folder.name not in needed
+            why = ("superseded" if entry.get("superseded") else
+                   "older entry that no current entry was made from")
         if not doomed:
             continue
         lock = locks.folder_lock_path(folder)
@@ -471,6 +585,8 @@ def prune(path, *, dry_run=False):
             locks.release(fd)
         removed.append(folder.name)
         freed += size
+        if reasons is not None:
+            reasons[folder.name] = why
     if removed and not dry_run:
         write_page(notebook)
     return notebook, removed, freed

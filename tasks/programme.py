@@ -29,12 +29,9 @@ fit, nothing else.  The programme page (``programme.html``) links every
 visit's page and shows the joint fit beside each visit's own.
 """
 
-import base64
-import getpass
-import hashlib
-import html
 import json
 import logging
+import os
 import shutil
 import socket
 import time
@@ -51,14 +48,17 @@ from lightledger.pipeline.errors import ConfigError, LightledgerError, Parameter
 from lightledger.pipeline.orbit import Ephemeris
 from lightledger.pipeline.parameters import STAGE_ORDER, STAGES, resolve
 
-from .base import ENTRY_NAME, PROGRESS, file_digest, settings_from_text, settings_to_text, \
-    visit_config
-from .config import Key, _check, read_toml
+from .base import (ENTRY_NAME, PROGRESS, FolderTask, content_identity, product_digest,
+                   read_entry, settings_from_text, settings_to_text, stage_params, user_name,
+                   visit_config)
+from .config import Key, check_schema, read_toml
 from .problems import Problems
-from .products import Provenance, atomic_path, relative_input, write_json
+from .products import Provenance, relative_input, write_json
+from .programmepage import write_programme_page
 
 __all__ = ["PROGRAMME_SCHEMA", "Programme", "load_programme", "is_programme", "JointDetrend",
-           "ProgrammeResult", "reduce_programme", "joint_dir"]
+           "ProgrammeResult", "reduce_programme", "joint_dir", "joint_identity", "joint_facts",
+           "joint_params", "write_programme_page"]
 
 PROGRAMME_SCHEMA = {
     "programme": {
@@ -136,7 +136,7 @@ def load_programme(path, settings=None):
         table = dict(table)
         visits = table.pop("visits", None)
         doc["programme"] = table
-    doc = _check(doc, PROGRAMME_SCHEMA, path, problems)
+    doc = check_schema(doc, PROGRAMME_SCHEMA, path, problems)
     files = []
     if not isinstance(visits, list) or not visits or not all(isinstance(v, str) and v
                                                              for v in visits):
@@ -191,22 +191,40 @@ def _split_settings(settings_text):
     return settings, visit_text
 
 
+def _json_ready(value):
+    return list(value) if isinstance(value, tuple) else value
+
+
+def joint_params(programme):
+    """The joint stage's resolved parameters as a sorted list of [name, value] (JSON-ready)."""
+    return sorted((k, _json_ready(v)) for k, v in programme.params.items())
+
+
+def joint_facts(programme, visit_text="[]"):
+    """What the joint stage uses besides its parameters and the visits' light curves.
+
+    The programme's name, the planet, and each visit's name and detrend
+    parameters (its systematics models), in the programme's order; part of the
+    joint identity, recorded in the entry so that ``audit`` can recompute it.
+    """
+    visits = []
+    for file in programme.visits:
+        visit = visit_config(file, visit_text)
+        visits.append([visit.name, stage_params(visit, "detrend")])
+    return [["programme", programme.name],
+            ["planet", sorted([k, _json_ready(v)] for k, v in programme.planet.items())],
+            ["visits", visits]]
+
+
 def joint_identity(programme, visit_text, bin_identities):
     """Identity hash (hex) of the programme's joint stage.
 
-    Over the joint stage's version and parameters, the planet, and each visit's
-    ``bin`` identity and detrend parameters (its systematics model).
+    Over the joint stage's version and parameters, :func:`joint_facts`, and
+    every visit's ``bin`` identity (the upstream, joined by colons), as a
+    visit's stage identity is (:func:`lightledger.tasks.base.content_identity`).
     """
-    parts = []
-    for file, ident in zip(programme.visits, bin_identities):
-        visit = visit_config(file, visit_text)
-        parts.append([ident, sorted((k, list(v) if isinstance(v, tuple) else v)
-                                    for k, v in visit.stages["detrend"].items())])
-    params = sorted((k, list(v) if isinstance(v, tuple) else v)
-                    for k, v in programme.params.items())
-    text = json.dumps(["joint", STAGES["joint"].version, params, sorted(programme.planet.items()),
-                       parts], sort_keys=True, default=str)
-    return hashlib.sha256(text.encode()).hexdigest()
+    return content_identity("joint", joint_params(programme), joint_facts(programme, visit_text),
+                            ":".join(bin_identities))
 
 
 def joint_dir(programme, visit_text, bin_identities):
@@ -214,8 +232,14 @@ def joint_dir(programme, visit_text, bin_identities):
     return programme.notebook / f"joint-{joint_identity(programme, visit_text, bin_identities)[:10]}"
 
 
-class JointDetrend(luigi.Task):
-    """Fit every visit's systematics and one shared planet per channel."""
+class JointDetrend(FolderTask, luigi.Task):
+    """Fit every visit's systematics and one shared planet per channel.
+
+    A notebook stage like the visits' (:class:`~lightledger.tasks.base.FolderTask`):
+    it makes its folder under the folder's lock, moves a forced folder aside
+    first, reuses what another reducer made meanwhile and leaves a
+    made-record beside its entry.
+    """
 
     programme = luigi.Parameter(description="path of the programme description (TOML)")
     settings = luigi.Parameter(default="[]",
@@ -231,27 +255,55 @@ class JointDetrend(luigi.Task):
 
     @property
     def config(self):
-        return load_programme(self.programme, settings_from_text(self.settings))
+        if "_config" not in self.__dict__:
+            self.__dict__["_config"] = load_programme(self.programme,
+                                                      settings_from_text(self.settings))
+        return self.__dict__["_config"]
 
     @property
-    def bin_chains(self):
-        return json.loads(self.chains)
+    def visit_text(self):
+        return _split_settings(self.settings)[1]
+
+    @property
+    def bin_identities(self):
+        return [c.split(":")[-1] for c in json.loads(self.chains)]
+
+    @property
+    def identity_hash(self):
+        if "_ident" not in self.__dict__:
+            self.__dict__["_ident"] = joint_identity(self.config, self.visit_text,
+                                                     self.bin_identities)
+        return self.__dict__["_ident"]
 
     @property
     def folder(self):
-        _, visit_text = _split_settings(self.settings)
-        return joint_dir(self.config, visit_text, [c.split(":")[-1] for c in self.bin_chains])
+        return Path(self.config.notebook) / f"joint-{self.identity_hash[:10]}"
+
+    @property
+    def forced(self):
+        return bool(self.force_from)
 
     def requires(self):
         from .lightcurves import Bin
 
-        _, visit_text = _split_settings(self.settings)
-        return [Bin(visit=str(v), settings=visit_text, chain=c, force_from=self.force_from,
-                    force_after=self.force_after if self.force_from else 0.0, run_id=self.run_id)
-                for v, c in zip(self.config.visits, self.bin_chains)]
+        visit_force = self.force_from if self.force_from in STAGE_ORDER else ""
+        return [Bin(visit=str(v), settings=self.visit_text, chain=c, force_from=visit_force,
+                    force_after=self.force_after if visit_force else 0.0, run_id=self.run_id)
+                for v, c in zip(self.config.visits, json.loads(self.chains))]
 
     def output(self):
         return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
+
+    def complete(self):
+        """The entry exists and is valid (and, when forced, newer than the run's start)."""
+        path = Path(self.output().path)
+        try:
+            st = os.stat(path)
+        except FileNotFoundError:
+            return False
+        if self.forced and st.st_mtime < self.force_after:
+            return False
+        return read_entry(path, self.stage) is not None
 
     def final_product(self):
         return self.folder / "planet.fits"
@@ -280,15 +332,14 @@ class JointDetrend(luigi.Task):
         return super().on_failure(exception)
 
     def run(self):
-        from lightledger.pipeline.programme import fit_programme
+        from lightledger.pipeline.programme import fit_programme, quantity
 
         from .lightcurves import read_lightcurves
         from .phasecurve import planet_model, visit_curves, write_phase_products
 
         started = time.time()
         prog = self.config
-        _, visit_text = _split_settings(self.settings)
-        visits = [visit_config(v, visit_text) for v in prog.visits]
+        visits = [visit_config(v, self.visit_text) for v in prog.visits]
         inputs = [task.final_product() for task in self.requires()]
         self.folder.mkdir(parents=True, exist_ok=True)
         lcs, curves, channels = [], [], None
@@ -322,160 +373,50 @@ class JointDetrend(luigi.Task):
                 done[0] += len(channels) + 1
         band = (float(lcs[0].meta.get("WLO", channels["wave_lo"][0])),
                 float(lcs[0].meta.get("WHI", channels["wave_hi"][-1])))
-        ident = self.folder.name.split("-", 1)[1]
-        prov = Provenance("joint", STAGES["joint"].version, ident, prog.params,
-                          {relative_input(p, self.folder): file_digest(p) for p in inputs},
+        prov = Provenance("joint", STAGES["joint"].version, self.identity_hash[:10], prog.params,
+                          {relative_input(p, self.folder): product_digest(p) for p in inputs},
                           visit=prog.name)
         outputs, figs, metrics = write_phase_products(
             self.folder, prov, fit, lcs, channels, band, planet, prog.params,
             names=[v.name for v in visits], alone=alone)
         if alone is not None:
-            w = [a.white for a in alone]
-            from lightledger.pipeline.programme import quantity
-            errs = [quantity(a, "eclipse_depth")[1] for a in w]
+            errs = [quantity(a.white, "eclipse_depth")[1] for a in alone]
             metrics["white eclipse depth error, best visit alone (ppm)"] = (
                 round(float(np.nanmin(errs)) * 1e6, 1) if np.any(np.isfinite(errs)) else None)
         self._write_entry(prog, inputs, outputs, metrics, figs, started)
-        write_programme_page(prog, self.folder)
 
-    def _write_entry(self, prog, inputs, outputs, metrics, figs, started):
-        try:
-            user = getpass.getuser()
-        except Exception:
-            user = "unknown"
+    def _write_entry(self, prog, inputs, outputs, metrics, figs, started, warnings=()):
+        """entry.json with the fields of a visit stage's entry (audit recomputes the identity)."""
+        made_from = [relative_input(Path(p).parent, prog.notebook) for p in inputs]
         entry = {
             "stage": "joint",
-            "identity": self.folder.name.split("-", 1)[1],
+            "identity": self.identity_hash[:10],
+            "identity_hash": self.identity_hash,
+            "upstream": ":".join(self.bin_identities),
             "folder": self.folder.name,
             "visit": prog.name,
             "visit_file": str(prog.path),
+            "target": prog.planet.get("name") or "",
+            "event": "phase-curve",
             "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-            "user": user,
+            "user": user_name(),
             "host": socket.gethostname(),
+            "run": self.run_id,
             "software_version": __version__,
             "stage_version": STAGES["joint"].version,
             "seconds": round(time.time() - started, 2),
-            "params": {k: list(v) if isinstance(v, tuple) else v for k, v in prog.params.items()},
+            "params": dict(joint_params(prog)),
+            "facts": joint_facts(prog, self.visit_text),
             "overrides": prog.overrides.get("joint", {}),
-            "made_from": [str(Path(p).parent) for p in inputs],
-            "inputs": {relative_input(p, self.folder): file_digest(p) for p in inputs},
-            "outputs": {Path(p).name: file_digest(p) for p in outputs},
+            "made_from": ", ".join(made_from),
+            "inputs": {relative_input(p, self.folder): product_digest(p) for p in inputs},
+            "outputs": {Path(p).name: product_digest(p) for p in [*outputs, *figs]},
             "metrics": metrics,
+            "not_applying": {},
             "figures": [Path(f).name for f in figs],
+            "warnings": [str(w) for w in warnings],
         }
         write_json(self.output().path, entry)
-
-
-# --------------------------------------------------------------------------
-# The programme page
-# --------------------------------------------------------------------------
-
-_STYLE = ("body{font-family:sans-serif;max-width:1100px;margin:1em auto;color:#222}"
-          "table{border-collapse:collapse;font-size:12px;margin:0.5em 0}"
-          "td,th{border:1px solid #ccc;padding:2px 6px;text-align:right}"
-          "th{background:#eee}img{max-width:100%;border:1px solid #ddd;margin:4px 0}"
-          "tr.joint td{font-weight:bold;background:#f4f8ff}")
-
-
-def _fmt(x, scale=1.0, digits=1):
-    if np.ma.is_masked(x):
-        return ""
-    try:
-        v = float(x) * scale
-    except (TypeError, ValueError):
-        return html.escape(str(x))
-    return "" if not np.isfinite(v) else f"{v:.{digits}f}"
-
-
-def write_programme_page(prog, folder):
-    """Write ``programme.html`` into the programme's notebook; returns its path.
-
-    The page links every visit's notebook page, shows the latest joint
-    entry's figures, the white-band and per-channel results, and the table
-    of each visit fitted alone beside the joint fit with the chi-square of
-    their consistency.  Self-contained: figures are embedded.
-    """
-    from astropy.table import Table
-
-    notebook = Path(prog.notebook)
-    notebook.mkdir(parents=True, exist_ok=True)
-    parts = [f"<h1>lightledger programme: {html.escape(prog.name)}</h1>",
-             f"<p>Programme description: {html.escape(str(prog.path))}</p><h2>Visits</h2><ul>"]
-    for file in prog.visits:
-        visit = visit_config(file)
-        page = Path(visit.notebook) / "index.html"
-        rel = Path(_relpath(page, notebook))
-        parts.append(f"<li><a href=\"{html.escape(str(rel))}\">{html.escape(visit.name)}</a> "
-                     f"({html.escape(str(file))})</li>")
-    parts.append("</ul>")
-    entry_file = Path(folder) / ENTRY_NAME
-    if entry_file.is_file():
-        entry = json.loads(entry_file.read_text(encoding="utf-8"))
-        parts.append(f"<h2>Joint fit <small>{html.escape(Path(folder).name)}, "
-                     f"{html.escape(entry['created'])}, {entry['seconds']} s</small></h2>")
-        parts.append("<table>" + "".join(
-            f"<tr><th style='text-align:left'>{html.escape(k)}</th><td>{html.escape(str(v))}</td></tr>"
-            for k, v in entry["metrics"].items()) + "</table>")
-        planet = Path(folder) / "planet.fits"
-        tab = Table.read(planet, hdu="PLANET")
-        cols = [("channel", 1, 0), ("wave_mid", 1, 3), ("transit_depth", 1e6, 0),
-                ("transit_depth_error", 1e6, 0), ("eclipse_depth", 1e6, 0),
-                ("eclipse_depth_error", 1e6, 0), ("night_flux", 1e6, 0),
-                ("night_flux_error", 1e6, 0), ("amplitude", 1e6, 0), ("amplitude_error", 1e6, 0),
-                ("offset_deg", 1, 1), ("offset_error_deg", 1, 1), ("rms_over_expected", 1, 3)]
-        parts.append("<h3>Planet per channel (ppm, degrees; channel -1 = white band)</h3>"
-                     + _html_table(tab, cols))
-        try:
-            alone = Table.read(planet, hdu="ALONE")
-            cons = Table.read(planet, hdu="CONSISTENCY")
-        except (KeyError, ValueError):
-            alone = cons = None
-        if alone is not None:
-            a_cols = [("name", None, 0), ("channel", 1, 0), ("transit_depth", 1e6, 0),
-                      ("transit_depth_error", 1e6, 0), ("eclipse_depth", 1e6, 0),
-                      ("eclipse_depth_error", 1e6, 0), ("night_flux", 1e6, 0),
-                      ("night_flux_error", 1e6, 0), ("amplitude", 1e6, 0),
-                      ("amplitude_error", 1e6, 0), ("offset_deg", 1, 1),
-                      ("offset_error_deg", 1, 1)]
-            white = alone[alone["channel"] == -1]
-            parts.append("<h3>Each visit alone beside the joint fit (white band; ppm)</h3>"
-                         + _html_table(white, a_cols, joint_row=True))
-            wc = cons[cons["channel"] == -1]
-            parts.append("<h3>Consistency of the visits with the joint fit (white band)</h3>"
-                         + _html_table(wc, [("quantity", None, 0), ("chi2", 1, 2),
-                                            ("n_visits", 1, 0)]))
-        for name in entry["figures"]:
-            png = Path(folder) / name
-            if png.is_file():
-                data = base64.b64encode(png.read_bytes()).decode("ascii")
-                parts.append(f"<h3>{html.escape(name)}</h3><img alt=\"{html.escape(name)}\" "
-                             f"src=\"data:image/png;base64,{data}\">")
-        links = ", ".join(f"<a href=\"{html.escape(Path(folder).name)}/{html.escape(n)}\">"
-                          f"{html.escape(n)}</a>" for n in entry["outputs"])
-        parts.append(f"<p>Products: {links}</p>")
-    page = (f"<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
-            f"<title>lightledger programme: {html.escape(prog.name)}</title>"
-            f"<style>{_STYLE}</style></head><body>" + "\n".join(parts) + "</body></html>\n")
-    path = notebook / "programme.html"
-    with atomic_path(path) as tmp:
-        tmp.write_text(page, encoding="utf-8")
-    return path
-
-
-def _relpath(target, start):
-    import os
-    return os.path.relpath(target, start)
-
-
-def _html_table(tab, cols, joint_row=False):
-    head = "".join(f"<th>{html.escape(c)}</th>" for c, _, _ in cols)
-    rows = []
-    for r in tab:
-        cls = " class='joint'" if joint_row and int(r["visit"]) == -1 else ""
-        cells = "".join(f"<td>{html.escape(str(r[c])) if s is None else _fmt(r[c], s, d)}</td>"
-                        for c, s, d in cols)
-        rows.append(f"<tr{cls}>{cells}</tr>")
-    return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
 
 
 # --------------------------------------------------------------------------
@@ -495,6 +436,9 @@ class ProgrammeResult:
     warnings: list = field(default_factory=list)
     set_aside: list = field(default_factory=list)
     status: int = 0
+    flags: list = field(default_factory=list)      # lines: results that cannot be trusted
+    notes: list = field(default_factory=list)
+    headlines: list = field(default_factory=list)  # headline figures of the joint entry
 
 
 def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), progress=None,
@@ -536,11 +480,11 @@ def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), prog
     """
     import uuid
 
-    from luigi.execution_summary import _partition_tasks
-
-    from .base import VisitTask, make_plan, register_plan
+    from .base import make_plan, register_plan
     from .check import check_visit, parse_settings
-    from .run import _check_force, _status, stage_task, sweep
+    from .notebook import note_last_used, note_programme, write_page
+    from .run import (check_force, exit_status, headlines, others_running, preload, ran_tasks,
+                      stage_task, sweep)
 
     started = time.time()
     settings = parse_settings(settings)
@@ -552,7 +496,10 @@ def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), prog
     if until not in STAGE_ORDER:
         raise LightledgerError(f"--until {until}: not a stage; stages are {', '.join(STAGE_ORDER)}")
     last = "bin" if until == "detrend" else until
-    force_from = _check_force(list(force or ()), until)
+    force_from = check_force(list(force or ()), until, extra=("joint",))
+    if force_from == "joint" and until != "detrend":
+        raise LightledgerError(f"--force joint with --until {until}: the run stops before the "
+                               "joint fit, so it cannot make it again")
     if workers < 1:
         raise LightledgerError("--workers must be at least 1")
     plans, warnings_, set_aside = [], [], []
@@ -575,17 +522,20 @@ def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), prog
         Path(plan.visit.notebook).mkdir(parents=True, exist_ok=True)
         sweep(plan.visit.notebook)
     prog.notebook.mkdir(parents=True, exist_ok=True)
+    sweep(prog.notebook)
     force_after = started if force_from else 0.0
     if until == "detrend":
+        # the old folder of a forced joint stage is moved aside by the task, under its lock
         task = JointDetrend(programme=str(prog.path), settings=settings_text,
                             chains=json.dumps([p.chain("bin") for p in plans]),
                             force_from=force_from, force_after=force_after, run_id=run_id)
-        if force_from and task.folder.exists():
-            from .base import supersede
-            supersede(task.folder)
+        for plan in plans:      # so that pruning a visit's notebook keeps what the fit reads
+            note_programme(plan.visit.notebook, prog.notebook)
         tasks = [task]
     else:
-        tasks = [stage_task(last, p, force_from=force_from, force_after=force_after,
+        visit_force = force_from if force_from in STAGE_ORDER else ""
+        tasks = [stage_task(last, p, force_from=visit_force,
+                            force_after=force_after if visit_force else 0.0,
                             run_id=run_id) for p in plans]
     failure_dirs = [Path(p.visit.notebook) / ".failures" / run_id for p in plans] \
         + [prog.notebook / ".failures" / run_id]
@@ -599,14 +549,24 @@ def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), prog
         kwargs.update(scheduler_host=scheduler[0], scheduler_port=scheduler[1])
     else:
         kwargs.update(local_scheduler=True)
+    if workers > 1 and not all(t.complete() for t in tasks):
+        preload(plans[0].visit)
     try:
         summary = luigi.build(tasks, **kwargs)
+        done = ran_tasks(summary)
+        # with a central scheduler, wait for other machines' workers still making what the
+        # programme needs (as a visit's reduction does)
+        deadline = time.monotonic() + 12 * 3600
+        while scheduler and not all(t.complete() for t in tasks) and others_running(summary) \
+                and not any(f.exists() and any(f.iterdir()) for f in failure_dirs) \
+                and time.monotonic() < deadline:
+            time.sleep(2.0)
+            summary = luigi.build(tasks, **kwargs)
+            done += ran_tasks(summary)
     finally:
         PROGRESS.pop("callback", None)
-    done = [t for t in _partition_tasks(summary.worker)["completed"]
-            if not isinstance(t, VisitTask) or t.made_by_this_run()]
-    ran_tasks = sorted((t.task_family, str(getattr(t, "visit", getattr(t, "programme", ""))))
-                       for t in done)
+    ran_list = sorted((t.task_family, str(getattr(t, "visit", getattr(t, "programme", ""))))
+                      for t in done)
     messages, statuses = [], []
     for folder in failure_dirs:
         if not folder.exists():
@@ -625,15 +585,30 @@ def reduce_programme(path, *, settings=(), workers=1, until=None, force=(), prog
     ok = all(t.complete() for t in tasks)
     if not ok and not messages:
         messages.append(f"lightledger: error: the reduction did not complete ({summary.status})")
-    from .notebook import write_page
     for plan in plans:
+        if ok:
+            stages_run = STAGE_ORDER[:STAGE_ORDER.index(last) + 1]
+            note_last_used(plan.visit.notebook,
+                           os.path.relpath(prog.notebook.resolve(),
+                                           Path(plan.visit.notebook).resolve()),
+                           [plan.folder(s) for s in stages_run])
         write_page(plan.visit.notebook)
     page = final = None
+    entries = []
     if until == "detrend":
+        if ok:
+            note_last_used(prog.notebook, "programme", [tasks[0].folder])
+        write_page(prog.notebook)
         page = write_programme_page(prog, tasks[0].folder)
         final = tasks[0].final_product() if ok else None
+        entries = [tasks[0].output().path]
     elif ok:
         final = tasks[-1].final_product()
-    return ProgrammeResult(ok=ok, final=final, page=page, ran=sorted(f for f, _ in ran_tasks),
-                           ran_tasks=ran_tasks, messages=messages, warnings=warnings_,
-                           set_aside=set_aside, status=0 if ok else _status(statuses))
+    flags = []
+    for path in entries:
+        entry = read_entry(path) or {}
+        flags += [f"lightledger: warning: {w}" for w in entry.get("warnings", [])]
+    return ProgrammeResult(ok=ok, final=final, page=page, ran=sorted(f for f, _ in ran_list),
+                           ran_tasks=ran_list, messages=messages, warnings=warnings_,
+                           set_aside=set_aside, status=0 if ok else exit_status(statuses),
+                           flags=flags, headlines=headlines(entries) if ok else [])

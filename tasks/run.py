@@ -13,11 +13,12 @@ from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER
 
 from . import locks
-from .base import (ENTRY_NAME, PROGRESS, VisitTask, make_plan, read_entry, register_plan,
+from .base import (ENTRY_NAME, PROGRESS, FolderTask, make_plan, read_entry, register_plan,
                    remove_parts, settings_to_text, visit_config)
 from .check import check_visit, parse_settings
 
-__all__ = ["RunResult", "reduce_visit", "stage_task", "sweep"]
+__all__ = ["RunResult", "reduce_visit", "stage_task", "sweep", "check_force", "exit_status",
+           "others_running", "ran_tasks", "preload"]
 
 
 @dataclass
@@ -49,13 +50,24 @@ def stage_task(stage, plan, *, force_from="", force_after=0.0, run_id=""):
                run_id=run_id)
 
 
-def _check_force(force, until):
-    """The first forced stage, or "" (a forced stage after ``until`` is a user's mistake)."""
+def check_force(force, until, *, extra=()):
+    """The first forced stage, or "" (a forced stage after ``until`` is a user's mistake).
+
+    ``extra`` names stages after the visit's (a programme's ``joint``), forced alone.
+    """
     if not force:
         return ""
+    order = [*STAGE_ORDER, *extra]
     for stage in force:
-        if stage not in STAGE_ORDER:
-            raise LightledgerError(f"--force {stage}: not a stage; stages are {', '.join(STAGE_ORDER)}")
+        if stage == "joint" and stage not in order:
+            raise LightledgerError("--force joint: a visit has no joint stage; only a programme "
+                                   "description's reduction fits its visits jointly")
+        if stage not in order:
+            raise LightledgerError(f"--force {stage}: not a stage; stages are {', '.join(order)}")
+    visit_stages = [s for s in force if s in STAGE_ORDER]
+    if not visit_stages:
+        return min(force, key=order.index)
+    force = visit_stages
     first = min(force, key=STAGE_ORDER.index)
     late = [s for s in force if STAGE_ORDER.index(s) > STAGE_ORDER.index(until)]
     if late:
@@ -140,7 +152,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     until = until or STAGE_ORDER[-1]
     if until not in STAGE_ORDER:
         raise LightledgerError(f"--until {until}: not a stage; stages are {', '.join(STAGE_ORDER)}")
-    force_from = _check_force(list(force or ()), until)
+    force_from = check_force(list(force or ()), until)
     if workers < 1:
         raise LightledgerError("--workers must be at least 1")
     # the validation pass: every problem of the visit at once, before any stage runs
@@ -189,7 +201,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     else:
         kwargs.update(local_scheduler=True)
     if workers > 1 and not task.complete():
-        _preload(visit)
+        preload(visit)
     try:
         summary = luigi.build([*repairs, task], **kwargs)
         ran = _ran_families(summary)
@@ -197,7 +209,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
         # needs when this worker runs out of work: wait for them, building again until the
         # chain completes (a dead worker's tasks return to pending and are taken here).
         deadline = time.monotonic() + 12 * 3600
-        while scheduler and not task.complete() and _others_running(summary) \
+        while scheduler and not task.complete() and others_running(summary) \
                 and not (failures.exists() and any(failures.iterdir())) \
                 and time.monotonic() < deadline:
             time.sleep(2.0)
@@ -223,10 +235,12 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     if not ok and not messages:
         messages.append(f"lightledger: error: the reduction did not complete ({summary.status})")
 
-    from .notebook import write_page
+    from .notebook import note_last_used, write_page
+    if ok:
+        note_last_used(notebook, "visit", [plan.folder(s) for s in stages])
     page = write_page(notebook)
     final = task.final_product() if ok else None
-    status = 0 if ok else _status(statuses)
+    status = 0 if ok else exit_status(statuses)
     lines = headlines([plan.folder(s) / ENTRY_NAME for s in stages]) if ok else []
     return RunResult(ok=ok, final=final, page=page, ran=sorted(ran), messages=messages,
                      warnings=[p.line for p in report.warnings],
@@ -276,7 +290,7 @@ def _entry_warnings(plan, until):
     return lines
 
 
-def _status(statuses):
+def exit_status(statuses):
     """Exit status of a failed run: 1 if a task met a bug, else 2 for the user's input, 3 if
     only the machine failed (disk full, file-size limit, permission denied)."""
     if not statuses or 1 in statuses:
@@ -290,7 +304,7 @@ def _check_progress(progress):
     return lambda done, total: progress("check", "exposures read", done, total)
 
 
-def _preload(visit):
+def preload(visit):
     """Load here what the tasks import on first use, before Luigi forks a process per task.
 
     A forked worker inherits every loaded module; a module first imported inside a task would
@@ -307,7 +321,7 @@ def _preload(visit):
         importlib.import_module(name)
 
 
-def _others_running(summary):
+def others_running(summary):
     """True when the build left tasks to workers of other processes or machines."""
     from luigi.execution_summary import _summary_dict
 
@@ -316,13 +330,22 @@ def _others_running(summary):
                 or sets["still_pending_ext"] or sets["still_pending_not_ext"])
 
 
-def _ran_families(summary):
-    """Families of the tasks that this build ran, sorted.
+def ran_tasks(summary):
+    """The tasks that this build ran.
 
     Not those found complete, nor those another reducer made while this one
     waited for the product's lock (their made-record names another run).
     """
     from luigi.execution_summary import _partition_tasks
 
-    return sorted(task.task_family for task in _partition_tasks(summary.worker)["completed"]
-                  if not isinstance(task, VisitTask) or task.made_by_this_run())
+    return [task for task in _partition_tasks(summary.worker)["completed"]
+            if not isinstance(task, FolderTask) or task.made_by_this_run()]
+
+
+def _ran_families(summary):
+    """Families of the tasks that this build ran, sorted (see :func:`ran_tasks`)."""
+    return sorted(task.task_family for task in ran_tasks(summary))
+
+
+# the names these had before they were shared with tasks/programme.py
+_check_force, _status, _others_running, _preload = check_force, exit_status, others_running, preload
