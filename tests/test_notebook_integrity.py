@@ -23,7 +23,7 @@ from lightledger.synthetic_data.render import render
 from lightledger.tasks import locks
 from lightledger.tasks.audit import audit
 from lightledger.tasks.cli import main as cli_main
-from lightledger.tasks.notebook import collect_entries, prune, render_page
+from lightledger.tasks.notebook import collect_entries, current_chain, prune, render_page
 from lightledger.tasks.run import reduce_visit
 
 pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("quick_figures")]
@@ -159,6 +159,37 @@ def test_force_reruns_the_stage_and_the_old_lineage_survives(reduced, tmp_path, 
     assert removed == would and freed > 0
     assert not list(notebook.glob("*.superseded-*"))
     assert audit(notebook).problems == []
+
+
+def test_prune_removes_older_entries_nothing_current_needs(reduced, tmp_path, capsys):
+    # Housekeeping by the notebook's own lineage (entry inputs by SHA-256): a tweak of the
+    # detrend stage makes a second detrend entry; while the last reduction used the first
+    # (settings put back: nothing runs), prune keeps both; once the last reduction uses the
+    # tweak again, the first is an older entry that nothing current needs: `notebook prune
+    # --dry-run` lists it with why and removes nothing, prune removes exactly it, and the
+    # notebook still audits clean.
+    visit, _ = reduced
+    copy = _copy(visit.parent, tmp_path / "copy")
+    notebook = copy.parent / "notebook"
+    first = {p.name for p in notebook.glob("detrend-*")}
+    tweak = [("detrend", "permutation_shifts", 50)]
+    assert _reduce(copy, settings=tweak).ran == ["Detrend"]
+    assert _reduce(copy).ran == []                   # back to the first settings: reused
+    assert prune(notebook, dry_run=True)[1] == []    # the last reduction's chain is current
+    assert _reduce(copy, settings=tweak).ran == []
+    detrends = {p.name for p in notebook.glob("detrend-*")}
+    assert len(detrends) == 2 and len(first) == 1
+    assert cli_main(["notebook", "prune", str(notebook), "--dry-run"]) == 0
+    out = capsys.readouterr().out
+    listed = {line.split()[2].rstrip(":") for line in out.splitlines()
+              if line.startswith("would remove ")}
+    assert listed == first, out
+    assert "older entry that no current entry was made from" in out
+    assert {p.name for p in notebook.glob("detrend-*")} == detrends      # nothing removed
+    _, removed, _ = prune(notebook)
+    assert set(removed) == first
+    assert {p.name for p in notebook.glob("detrend-*")} == detrends - first
+    assert len(list(notebook.glob("bin-*"))) == 1 and audit(notebook).problems == []
 
 
 def _forked_reduce(visit, out, kwargs, slow=0.0):
@@ -376,7 +407,9 @@ class _Lab:
             self.visit = target / "visit.toml"
             notebook = target / "notebook"
         elif kind == "prune":
+            kept = set(current_chain(collect_entries(notebook)))
             prune(notebook)
+            assert kept <= _entries(notebook)
         self.check(notebook, before, kind, completed)
 
     def check(self, notebook, before, kind, completed):
@@ -384,7 +417,9 @@ class _Lab:
         assert report.problems == [], report.problems
         after = _entries(notebook)
         if kind == "prune":
-            assert {n for n in before if ".superseded-" not in n} <= after
+            # what goes is superseded, or older and needed by nothing current (kept: the current
+            # chain, checked in step(); audit above shows nothing kept lost what it was made from)
+            assert after <= before
         else:
             for name in before - after:
                 # an entry may only leave its name by being superseded by a replacement
