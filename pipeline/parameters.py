@@ -251,7 +251,7 @@ STAGES = {
         Param("align", True, "bool",
               "resample each spectrum onto the reference grid with its own measured shift"),
     )),
-    "bin": StageSpec("bin", "6", "spectra to channel light curves", (
+    "bin": StageSpec("bin", "7", "spectra to channel light curves", (
         Param("edges", (), "floats", "channel edges in micrometres (takes precedence when given)",
               minimum=0.0),
         Param("width", 0.0, "float",
@@ -277,7 +277,7 @@ STAGES = {
               "orbit; 0 = found from the intervals (the break between the cadence and the "
               "occultation gaps, with a warning when it is ambiguous)", minimum=0.0),
     )),
-    "detrend": StageSpec("detrend", "7", "light curves divided by a systematics model", (
+    "detrend": StageSpec("detrend", "8", "light curves divided by a systematics model", (
         Param("models", (), "strs",
               "systematics models to fit, rank and marginalise over, each tokens joined by '+': "
               "visit0|visit1|visit2|visitexp, orbit0..orbit4, scan, ramp|ramp-first|ramp-shared, "

@@ -473,7 +473,8 @@ def _light_curves(ta, tb, kind, event):
                      f"{pa:8.1f} -> {pb:8.1f}")
     if len(series_a) != len(series_b):
         lines.append(f"  A has {len(series_a) - 1} channels and B {len(series_b) - 1}")
-    same_times = len(time_a) == len(time_b) and np.allclose(time_a, time_b, rtol=0, atol=1e-6)
+    same_times = len(time_a) == len(time_b) and np.allclose(time_a, time_b, rtol=0, atol=1e-6,
+                                                             equal_nan=True)
     if not same_times:
         lines.append(f"  the light curves have different exposures ({len(time_a)} and {len(time_b)}); "
                      f"no exposure-by-exposure difference")

@@ -60,15 +60,15 @@ from lightledger.pipeline.systematics import PhaseSinusoids, SystematicsInputs, 
 from lightledger.pipeline.whitelight import event_template as _event_template
 
 from .base import ENTRY_NAME, VisitTask
-from .lightcurves import read_lightcurves, wide_table
 from .applicability import not_applying, visit_facts
 from .detrendmeta import (DEPTHS_COLUMNS, DETRENDED_COLUMNS, GRID_COLUMNS, coefficients_table,
                           describe, event_cards, fitted_event)
+from .lightcurves import read_lightcurves, set_aside_rows, usable_rows, wide_table
 from .metadata import channel_text, ecsv_meta, fits_cards, set_time_keywords
 from .products import table_hdu, write_ecsv, write_fits
 
 __all__ = ["Detrend", "event_template", "grid_setup", "systematics_setup", "star_alone",
-           "channel_exclusions", "read_depths", "SINGLE_MODEL"]
+           "channel_exclusions", "read_depths", "SINGLE_MODEL", "with_reasons", "left_out_rows"]
 
 
 def event_template(bjd, event):
@@ -171,6 +171,52 @@ def grid_setup(lc, channels, event, params):
                    ld_prior=params["limb_darkening_prior"]
                    if params["limb_darkening"] == "fit" else None)
     return specs, curves, options, stare
+
+
+def left_out_rows(lc, params):
+    """The exposures of ``lc`` the detrend parameters leave out of every fit (the first orbit)."""
+    stare = bool(np.all(np.asarray(lc["scan_direction"]) == 0))
+    return _left_out(np.asarray(lc["orbit"], int), params, stare)
+
+
+#: Why an exposure of the visit is not in the fits, by what left it out.
+REASONS = {"outlier": "flux outlier (the white flux departs from its running median)",
+           "first_orbit": "first orbit left out (detrend.drop_first_orbit)",
+           "white_mask": "white flux unusable (white_mask)",
+           "other": "not fitted"}
+
+
+def with_reasons(det, lc, lc_all, left_out):
+    """DETRENDED of the fitted exposures, completed to every exposure of the visit.
+
+    Adds ``set_aside`` and ``reason`` (why the exposure is not ``used``: set
+    aside at input with its reason, a flux outlier, the first orbit left
+    out, an unusable white flux; '' where used) and a row, NaN-filled, for
+    each exposure set aside at input (``lc_all``, the whole LIGHTCURVES).
+    """
+    used = np.asarray(det["used"], bool)
+    flags = (("outlier", np.asarray(lc["flux_outlier"], bool)),
+             ("first_orbit", np.asarray(left_out, bool)),
+             ("white_mask", np.asarray(lc["white_mask"], bool)))
+    reasons = []
+    for i in range(len(det)):
+        if used[i]:
+            reasons.append("")
+            continue
+        parts = [REASONS[key] for key, flag in flags if flag[i]]
+        reasons.append("; ".join(parts) or REASONS["other"])
+    det["set_aside"] = np.zeros(len(det), bool)
+    det["reason"] = reasons
+    out = set_aside_rows(det, lc_all)
+    if out is not det:
+        aside = ~usable_rows(lc_all)
+        out["set_aside"] = aside
+        text = np.asarray(lc_all["reason"], str)
+        kept = iter(reasons)
+        out["reason"] = [f"set aside: {t}" if a else next(kept) for a, t in zip(aside, text)]
+    out["set_aside"].description = "True: exposure set aside at input (values NaN)"
+    out["reason"].description = "why the exposure is not used; empty when used"
+    return out
 
 
 def _left_out(orbit, params, stare):
@@ -284,9 +330,11 @@ class Detrend(VisitTask):
         started = time.time()
         visit, params = self.config, self.params
         lc_path = self.requires().final_product()
-        lc, channels = read_lightcurves(lc_path)
+        lc_all, channels = read_lightcurves(lc_path)
         if visit.event["kind"] == "phase-curve":
-            return self._run_phase_curve(started, lc_path, lc, channels)
+            return self._run_phase_curve(started, lc_path, lc_all, channels)
+        # exposures set aside at input keep their rows in LIGHTCURVES; they are not fitted
+        lc = lc_all[usable_rows(lc_all)]
         t = np.asarray(lc["time_bjd_tdb"], float)
         template = event_template(t, visit.event)
         if not np.any(template > 0):
@@ -307,7 +355,8 @@ class Detrend(VisitTask):
                         **options)
         n_ch = len(channels)
         kind = visit.event["kind"]
-        det = _detrended_table(lc, grid, grid.best, kind)
+        left_out = left_out_rows(lc, params)
+        det = with_reasons(_detrended_table(lc, grid, grid.best, kind), lc, lc_all, left_out)
         depths = _depths_table(lc, channels, grid, visit.event)
         # can the results be trusted? (pipeline/plausibility.py)
         quality = assess_fits(depths["depth"], depths["depth_error"],
@@ -361,7 +410,8 @@ class Detrend(VisitTask):
         models_path = folder / "grid-models.fits"
         model_hdus = []
         for m, spec in enumerate(specs):
-            hdu = table_hdu(_detrended_table(lc, grid, np.full(n_ch + 1, m), kind), f"MODEL_{m:02d}")
+            hdu = table_hdu(with_reasons(_detrended_table(lc, grid, np.full(n_ch + 1, m), kind), lc,
+                                         lc_all, left_out), f"MODEL_{m:02d}")
             hdu.header["MODEL"] = (spec.name, "systematics model")
             model_hdus.append(hdu)
         write_fits(models_path, model_hdus, prov)

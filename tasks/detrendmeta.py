@@ -51,6 +51,8 @@ DETRENDED_COLUMNS = {
     "systematics": ("electron", "channel star flux x systematics; vector over channels"),
     "model": ("electron", "channel full model (systematics x event); vector over channels"),
     "residual": ("", "(channel flux - full model) / systematics; vector over channels"),
+    "set_aside": ("", "True: exposure set aside at input (values NaN)"),
+    "reason": ("", "why the exposure is not used; empty when used"),
 }
 
 #: DEPTHS columns: (unit, description).

@@ -54,6 +54,8 @@ DETRENDED_COLUMNS = {
     "systematics": ("electron", "star's flux times the systematics (channel)"),
     "model": ("electron", "full model of the channel flux"),
     "residual": ("", "detrended minus the astrophysical model"),
+    "set_aside": ("", "True: exposure set aside at input (values NaN)"),
+    "reason": ("", "why the exposure is not used; empty when used"),
 }
 
 #: PLANET: one row per channel and the white band (channel -1).
@@ -172,9 +174,15 @@ def planet_model(event, params):
 
 
 def visit_curves(lc, event, detrend_params, name):
-    """A visit's light curves and systematics model from its LIGHTCURVES table."""
-    from .detrend import systematics_setup
+    """A visit's light curves and systematics model from its LIGHTCURVES table.
 
+    Exposures set aside at input (rows of LIGHTCURVES with ``set_aside``) are
+    not among the curves.
+    """
+    from .detrend import systematics_setup
+    from .lightcurves import usable_rows
+
+    lc = lc[usable_rows(lc)]
     inputs, model, _, left_out = systematics_setup(lc, event, detrend_params)
     bad = np.asarray(lc["flux_outlier"], bool) | left_out
     return VisitCurves(
@@ -271,13 +279,25 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
     (outputs, figures, metrics)
         Paths written, figure paths, headline figures for the entry.
     """
+    from .detrend import with_reasons
+    from .lightcurves import usable_rows
+
     eph = planet.ephemeris
+    lcs_all = lcs
+    lcs = [lc[usable_rows(lc)] for lc in lcs_all]        # the exposures fitted
     times = [np.asarray(lc["time_bjd_tdb"], float) for lc in lcs]
     outputs = []
     single = len(lcs) == 1
     for k, lc in enumerate(lcs):
         phase = np.mod((times[k] - eph.t0) / eph.period, 1.0)
         det = _detrended_table(lc, k, fit, phase)
+        # the first orbit was left out when none of its exposures entered the fit
+        first = np.asarray(lc["first_orbit"], bool)
+        left_out = first if first.any() and not np.any(det["used"][first]) else np.zeros_like(first)
+        det = with_reasons(det, lc, lcs_all[k], left_out)
+        if "phase" in det.colnames:       # a set-aside exposure's phase, from its time
+            t_all = np.asarray(det["time_bjd_tdb"], float)
+            det["phase"] = np.mod((t_all - eph.t0) / eph.period, 1.0)
         stem = "detrended" if single else f"detrended-{k + 1}"
         hdu = table_hdu(det, "DETRENDED")
         hdu.header["VISITNAM"] = (names[k][:60], "visit name")

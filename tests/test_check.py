@@ -204,8 +204,21 @@ def test_reduction_sets_aside_flags_and_goes_on(troubled_visit, capsys, science)
     assert len(inventory) == 24 and sorted(inventory["file"][inventory["excluded"]]) == sorted(damaged)
     assert all(inventory["reason"][inventory["excluded"]])
     lc = Table.read(next(notebook.glob("bin-*/lightcurves.fits")), hdu="LIGHTCURVES")
-    kept = inventory["exposure"][~inventory["excluded"]]
-    assert list(lc["exposure"]) == list(kept)          # numbers kept, gaps where set aside
+    # every exposure keeps its row (common practice: an observer's log lists every exposure),
+    # the set-aside ones flagged with the inventory's reason and no flux
+    assert list(lc["exposure"]) == list(inventory["exposure"])
+    aside = np.asarray(lc["set_aside"], bool)
+    assert list(aside) == list(np.asarray(inventory["excluded"], bool))
+    assert list(lc["reason"][aside]) == list(inventory["reason"][inventory["excluded"]])
+    assert sorted(lc["file"][aside]) == sorted(damaged)
+    white = np.ma.filled(lc["white_flux"], np.nan)
+    assert np.all(np.isnan(white[aside])) and np.all(lc["white_mask"][aside])
+    assert np.all(np.isfinite(white[~aside]))
+    det = Table.read(next(notebook.glob("detrend-*/detrended.fits")), hdu="DETRENDED")
+    assert list(det["exposure"]) == list(lc["exposure"])
+    assert list(det["set_aside"]) == list(aside) and not np.any(det["used"][aside])
+    assert all(r.startswith("set aside: ") for r in det["reason"][aside])
+    assert all(bool(r) != u for r, u in zip(det["reason"], det["used"]))    # a reason iff not used
     # the free-text name: ASCII in FITS headers, the original in JSON
     detrended = next(notebook.glob("detrend-*/detrended.fits"))
     assert fits.getheader(detrended)["LLVISIT"] == "Eclipse - damaged"
@@ -227,6 +240,50 @@ def test_reduction_sets_aside_flags_and_goes_on(troubled_visit, capsys, science)
     page = (notebook / "index.html").read_text(encoding="utf-8")
     assert "warning: " in page and "set aside" in page
     assert science.check_products(notebook) == []
+
+
+@pytest.mark.slow
+def test_set_aside_rows_leave_the_depths_as_excluding_by_hand(troubled_visit, capsys):
+    """Damaged exposures set aside give the depths of the same exposures excluded by hand.
+
+    Sources: common practice (an exposure left out must not change the fit of the others,
+    and a fitter needs every exposure's row with why it was left out); the by-hand
+    reduction is the independent path: the intact raw files with ``[exclude] files``.
+    """
+    import tomllib
+
+    from astropy.table import Table
+
+    visit, damaged = troubled_visit
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        status, _, text = _run(["reduce", visit], capsys)        # reused when already made
+        assert status == 0, text
+        by_hand = copy_visit(visit.parent.parent / "source", visit.parent.parent / "by-hand")
+        doc = tomllib.loads(visit.read_text())
+        listed = ", ".join(f'{{file = "{name}", reason = "guiding lost"}}' for name in sorted(damaged))
+        by_hand.write_text(visit.read_text().replace(
+            "[exclude]\n", f"[exclude]\nfiles = [{listed}]\n", 1))
+        assert doc["exclude"]["channels"]
+        status, _, text = _run(["reduce", by_hand], capsys)
+    assert status == 0, text
+    found = {}
+    for name, path in (("damaged", visit), ("by hand", by_hand)):
+        det_path = next((path.parent / "notebook").glob("detrend-*/detrended.fits"))
+        found[name] = (Table.read(det_path, hdu="DEPTHS").filled(np.nan),
+                       Table.read(det_path, hdu="DETRENDED").filled(np.nan))
+    (d1, t1), (d2, t2) = found["damaged"], found["by hand"]
+    # the same numbers to rounding: the set-aside rows take no part in binning or fitting
+    for col in ("depth", "depth_error", "rms_ppm"):
+        np.testing.assert_allclose(d1[col], d2[col], rtol=1e-9, equal_nan=True)
+    assert len(t1) == len(t2) == 24
+    a1, aside = np.asarray(t1["set_aside"], bool), np.asarray(t2["set_aside"], bool)
+    assert int(a1.sum()) == int(aside.sum()) == 3      # (a file cut short has no time: last row)
+    assert all("exclude.files" in r and "guiding lost" in r for r in t2["reason"][aside])
+    np.testing.assert_allclose(t1["white_detrended"][~a1], t2["white_detrended"][~aside],
+                               rtol=1e-9)
+    assert np.all(np.isnan(t2["white_detrended"][aside]))
+    assert np.all(np.isfinite(t2["time_bjd_tdb"][aside]))      # intact headers give the times
 
 
 # --------------------------------------------------------------------------------------------
