@@ -37,6 +37,7 @@ import numpy as np
 
 from .errors import ParameterError
 from .orbit import Ephemeris, orbit_state
+from .phasepost import posterior_draws
 from .transit import limb_darkened_blocked_fraction, occulted_fraction_uniform
 
 __all__ = ["planet_columns", "planet_names", "EventShapes", "event_shapes", "full_orbit_flux",
@@ -201,8 +202,10 @@ def full_orbit_flux(time, ephemeris, rp_rs, u1, u2, coefficients):
 class PhaseCurveSummary:
     """What a phase curve says about the planet; returned by :func:`summarise_planet`.
 
-    Every value is relative to the star's flux; every ``*_error`` is one
-    standard deviation from the covariance of the coefficients (first order).
+    Every value is relative to the star's flux.  The day and night sides are
+    the fit's, with errors from the covariance of the coefficients; the
+    extremes, the amplitude and the offset are posterior medians with half
+    their central 68 % interval (:func:`summarise_planet`).
 
     Attributes
     ----------
@@ -289,11 +292,25 @@ def summarise_planet(coefficients, covariance):
     so the maximum is :math:`c_0 + A`, the minimum :math:`c_0 - A`, the
     peak-to-trough amplitude :math:`2A` and the offset
     :math:`180° - \\xi_m` (Cowan & Agol 2008).  With more harmonics the
-    extremes are found on a grid of 4096 angles and refined by Newton steps.
-    Errors are :math:`\\sqrt{g^T C g}` with :math:`g` the gradient of each
-    quantity in the coefficients, by central differences (steps of 1e-3 of
-    each coefficient's standard deviation); the offset's error is
-    meaningless when the amplitude is not significant.
+    extremes are found on a grid of angles and refined (Newton steps for the
+    fitted coefficients, a parabola through the grid's best three points for
+    each draw).
+
+    The day and night sides are linear in the coefficients: their values are
+    the fit's and their errors :math:`\\sqrt{g^T C g}`.  The extremes, the
+    amplitude and the offset are not: a first harmonic measured with a
+    signal-to-noise ratio of a few gives a length biased upwards and an
+    angle with wide wings, which first-order errors misstate.  They are the
+    median and half the central 68 % interval of 10,000 draws of the
+    coefficients from their posterior with uniform priors on the first
+    harmonic's amplitude and angle (:func:`lightledger.pipeline.phasepost.
+    posterior_draws`; the offset's median and interval about the draws'
+    circular mean).  For a well measured curve they agree with first-order
+    propagation; for an amplitude consistent with zero the offset's error
+    approaches the width of a uniform angle (about 123 degrees).  Without a
+    first harmonic, or when its covariance is degenerate, every quantity is
+    the fit's with first-order errors (gradients by central differences,
+    steps of 1e-3 of each coefficient's standard deviation).
     """
     c = np.asarray(coefficients, dtype=float).ravel()
     C = np.asarray(covariance, dtype=float)
@@ -307,6 +324,27 @@ def summarise_planet(coefficients, covariance):
                          mx, mn, mx - mn, _offset_deg(xm)])
 
     q0 = quantities(c)
+    lin = _first_order_errors(quantities, c, C, q0)
+    err = lin.copy()
+    try:
+        draws = posterior_draws(c, C)
+    except ParameterError:          # no first harmonic, or its covariance is degenerate
+        draws = None
+    if draws is not None:
+        mx, mn, off = _draw_extrema(draws)
+        for k, x in ((2, mx), (3, mn), (4, mx - mn)):
+            q0[k], err[k] = _median_halfwidth(x)
+        q0[5], err[5] = _circular_median_halfwidth(off)
+    return PhaseCurveSummary(day=float(q0[0]), day_error=float(err[0]), night=float(q0[1]),
+                             night_error=float(err[1]), maximum=float(q0[2]),
+                             maximum_error=float(err[2]), minimum=float(q0[3]),
+                             minimum_error=float(err[3]), amplitude=float(q0[4]),
+                             amplitude_error=float(err[4]), offset_deg=float(q0[5]),
+                             offset_error_deg=float(err[5]))
+
+
+def _first_order_errors(quantities, c, C, q0):
+    """sqrt(g^T C g) of each quantity, g by central differences."""
     sd = np.sqrt(np.clip(np.diag(C), 0.0, None))
     G = np.zeros((q0.size, c.size))
     for j in range(c.size):
@@ -317,10 +355,64 @@ def summarise_planet(coefficients, covariance):
         diff = quantities(up) - quantities(dn)
         diff[5] = (diff[5] + 180.0) % 360.0 - 180.0     # angles wrap
         G[:, j] = diff / (2 * h)
-    err = np.sqrt(np.clip(np.einsum("ij,jk,ik->i", G, C, G), 0.0, None))
-    return PhaseCurveSummary(day=float(q0[0]), day_error=float(err[0]), night=float(q0[1]),
-                             night_error=float(err[1]), maximum=float(q0[2]),
-                             maximum_error=float(err[2]), minimum=float(q0[3]),
-                             minimum_error=float(err[3]), amplitude=float(q0[4]),
-                             amplitude_error=float(err[4]), offset_deg=float(q0[5]),
-                             offset_error_deg=float(err[5]))
+    return np.sqrt(np.clip(np.einsum("ij,jk,ik->i", G, C, G), 0.0, None))
+
+
+def _draw_extrema(draws, n_angle=720):
+    """Maximum, minimum and offset (deg) of F_p for each row of coefficient draws."""
+    h = (draws.shape[1] - 1) // 2
+    if h == 1:
+        A = np.hypot(draws[:, 1], draws[:, 2])
+        return (draws[:, 0] + A, draws[:, 0] - A,
+                _offset_deg_array(np.arctan2(draws[:, 2], draws[:, 1])))
+    grid = 2 * np.pi * np.arange(n_angle) / n_angle
+    step = grid[1]
+    cols = planet_columns(grid, h)                     # (n_angle, 1 + 2 h)
+    out = []
+    for sign in (1.0, -1.0):
+        vals, where = [], []
+        for a in range(0, draws.shape[0], 2000):       # blocks of draws bound the memory
+            f = sign * (draws[a:a + 2000] @ cols.T)
+            i = np.argmax(f, axis=1)
+            r = np.arange(f.shape[0])
+            y0, y1, y2 = f[r, i - 1], f[r, i], f[r, (i + 1) % n_angle]
+            den = y0 - 2 * y1 + y2
+            # parabola through the grid's best point and its neighbours
+            dx = np.where(den < 0, 0.5 * (y0 - y2) / np.where(den < 0, den, -1.0), 0.0)
+            x = grid[i] + dx * step
+            x = _newton_extremum(draws[a:a + 2000], x, h)
+            vals.append(np.einsum("nk,nk->n", draws[a:a + 2000], planet_columns(x, h)))
+            where.append(x)
+        out.append((np.concatenate(vals), np.concatenate(where)))
+    return out[0][0], out[1][0], _offset_deg_array(out[0][1])
+
+
+def _newton_extremum(c, x, h, steps=3):
+    """Newton steps towards the extremum of F_p near angles ``x``, one per row of ``c``."""
+    k = np.arange(1, h + 1)[None, :]
+    a, b = c[:, 1::2], c[:, 2::2]
+    for _ in range(steps):
+        kx = k * x[:, None]
+        d1 = np.sum(k * (-a * np.sin(kx) + b * np.cos(kx)), axis=1)
+        d2 = np.sum(k * k * (-a * np.cos(kx) - b * np.sin(kx)), axis=1)
+        x = x - np.where(d2 != 0, d1 / np.where(d2 != 0, d2, 1.0), 0.0)
+    return x
+
+
+def _offset_deg_array(angle_max):
+    return (np.rad2deg(np.pi - angle_max) + 180.0) % 360.0 - 180.0
+
+
+def _median_halfwidth(x):
+    """Median and half the central 68.27 % interval of draws."""
+    lo, mid, hi = np.percentile(x, [15.865, 50.0, 84.135])
+    return float(mid), float(0.5 * (hi - lo))
+
+
+def _circular_median_halfwidth(deg):
+    """Median and half the central 68.27 % interval of angles (deg), about their circular mean."""
+    rad = np.deg2rad(deg)
+    centre = np.rad2deg(np.arctan2(np.mean(np.sin(rad)), np.mean(np.cos(rad))))
+    d = (np.asarray(deg) - centre + 180.0) % 360.0 - 180.0
+    mid, half = _median_halfwidth(d)
+    return float((centre + mid + 180.0) % 360.0 - 180.0), half

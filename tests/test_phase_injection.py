@@ -20,6 +20,7 @@ import pytest
 
 from lightledger.pipeline.covariates import exposure_covariates
 from lightledger.pipeline.jointfit import PlanetModel
+from lightledger.pipeline.phasepost import posterior_draws
 from lightledger.pipeline.programme import VisitCurves, fit_programme, quantity
 from lightledger.pipeline.systematics import SystematicsInputs, standard_model
 from lightledger.synthetic_data import model as vm
@@ -150,8 +151,8 @@ def test_phase_pair_joint_fit_sharpens_the_eclipse(phase_pair):
     # visits would fail this.  (With the time scales chosen from the data and the radius
     # fitted, the joint and single errors differ by those choices too; the benchmark
     # reports that comparison over many seeds.)  Then the joint fit as the stage runs it:
-    # white day side, night side and amplitude within 2 sigma of the truth (the offset of
-    # two short visits is weakly constrained and its first-order error is not relied on).
+    # white day side and night side within 2 sigma of the truth, the amplitude inside its
+    # 95 % interval (the offset of two short visits is weakly constrained).
     visits, planet = phase_pair
     held = dataclasses.replace(planet, fit_radius=False)
     taus = [(m.scenario.orbit_ramp_tau / 86400.0,) for m, _ in visits]
@@ -166,8 +167,15 @@ def test_phase_pair_joint_fit_sharpens_the_eclipse(phase_pair):
         joint, _, truth = fit_curves(visits, planet, noise_seed=noise_seed,
                                      tau_grid=SUITE_TAU_GRID, channels=slice(0, None, 3))
         p = pulls(joint, truth)
-        for name in ("eclipse_depth", "night_flux", "amplitude"):
+        for name in ("eclipse_depth", "night_flux"):
             assert abs(p[name][0]) < 2, (name, p[name][0])
+        # the amplitude of two short visits is measured at a signal-to-noise ratio of a few:
+        # its posterior is asymmetric (bounded at 0), so the truth must lie inside the
+        # central 95 % of the posterior draws the summary is made from (common practice)
+        draws = posterior_draws(joint.white.planet, joint.white.planet_covariance)
+        lo, hi = np.percentile(2 * np.hypot(draws[:, 1], draws[:, 2]), [2.5, 97.5])
+        marks = truth["white_marks"]
+        assert lo < marks[2] - marks[3] < hi, (lo, marks[2] - marks[3], hi)
     # The eccentric orbit puts the eclipse away from phase 0.5 (Winn 2010; truth.py).
     eph = planet.ephemeris
     assert abs((truth["t_eclipse"] - eph.t0) / eph.period - 0.5) > 0.005
