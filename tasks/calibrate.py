@@ -33,6 +33,7 @@ from astropy.table import Table, vstack
 
 from lightledger.pipeline import mask as dq
 from lightledger.pipeline.calibrate import calibrate_exposure
+from lightledger.pipeline.chunkcal import ExposureSetup, calibrate_chunk
 
 from .applicability import not_applying, visit_facts
 from .base import ENTRY_NAME, VisitTask, chunk_ranges, settings_from_text
@@ -43,7 +44,7 @@ from .rawio import inventory_table, read_exposures
 from .references import load_references
 
 __all__ = ["Inventory", "CalibrateChunk", "Calibrate", "chunk_ranges", "read_chunk",
-           "calibrate_reads"]
+           "calibrate_reads", "calibrate_chunk_reads"]
 
 
 def _destripe_mode(setting, scan_velocity):
@@ -87,6 +88,43 @@ def calibrate_reads(visit, params, ref, exp, reads):
         storage_span=exp.wrap)
 
 
+def calibrate_chunk_reads(visit, params, ref, refs, reads, progress=None):
+    """Calibrate a chunk's exposures as :func:`calibrate_reads` does each, in blocks.
+
+    Parameters
+    ----------
+    visit, params, ref
+        As :func:`calibrate_reads`.
+    refs : sequence of rawio.ExposureRef
+        The chunk's exposures, of one frame shape.
+    reads : ndarray of shape (n_exposures, n_reads, ny, nx), ADU
+    progress : callable, optional
+        ``progress(done)`` with the exposures done so far.
+
+    Returns
+    -------
+    lightledger.pipeline.chunkcal.CalibratedChunk
+    """
+    ny, nx = refs[0].shape[1:]
+    levels = {}     # one array per storage kind, so that exposures alike share a block
+    for exp in refs:
+        if exp.bitpix not in levels:
+            levels[exp.bitpix] = clip_level(exp, ref.bias, visit.profile.saturation)
+    setups = [ExposureSetup(
+        read_times=tuple(float(t) for t in exp.read_times), scan_velocity=float(exp.scan_velocity),
+        source_rows=expected_source_rows(visit, nx, ny, exp.origin, exp.scan_velocity, exp.exposure_time),
+        destripe=_destripe_mode(params["destripe"], exp.scan_velocity),
+        clip_level=levels[exp.bitpix], storage_span=exp.wrap,
+        scan_options={"pad_rows": params["band_padding"]} if exp.scan_velocity else None)
+        for exp in refs]
+    return calibrate_chunk(
+        reads, setups, bias_adu=ref.bias, dark_rate=ref.dark, flat=ref.flat,
+        nonlinearity=ref.nonlinearity, bad_pixels=ref.bad_pixels, gain=visit.profile.gain,
+        read_noise=visit.profile.read_noise, saturation_adu=visit.profile.saturation,
+        ramp_method=params["ramp_method"], background_method=params["background_method"],
+        jump_threshold=params["break_threshold"], detect_clipping=True, progress=progress)
+
+
 class Inventory(VisitTask):
     """List the visit's exposures from the raw headers."""
 
@@ -125,23 +163,27 @@ class CalibrateChunk(VisitTask):
         n_visit = len(self.exposures())
         ny, nx = refs[0].shape[1:]
         ref = load_references(visit.profile, (ny, nx), refs[0].origin, visit.target["source_x"])
-        flux = np.empty((len(refs), ny, nx), np.float32)
-        var = np.empty_like(flux)
-        bits = np.empty((len(refs), ny, nx), np.uint16)
         rows = []
         chunk_reads = read_exposures(refs, visit.profile)     # each raw file opened once
+        self.progress(0, n_visit, "calibrating exposures", part=self.chunk)
+
+        def progress(done):
+            self.progress(done, n_visit, "calibrating exposures", part=self.chunk)
+
+        # blocks of exposures at once (pipeline.chunkcal), the numbers of calibrate_reads
+        cal = calibrate_chunk_reads(visit, params, ref, refs, chunk_reads, progress=progress)
+        del chunk_reads
+        flux, var, bits = cal.flux, cal.variance, cal.bits
         for i, exp in enumerate(refs):
-            self.progress(i, n_visit, "calibrating exposures", part=self.chunk)
-            cal = calibrate_reads(visit, params, ref, exp, chunk_reads[i])
-            flux[i], var[i], bits[i] = cal.flux, cal.variance, cal.bits
             row = {"exposure": exp.exposure, "start_mjd_utc": exp.start_mjd,
-                   "mid_offset": cal.mid_time_offset, "integration_time": cal.integration_time,
+                   "mid_offset": float(cal.mid_time_offset[i]),
+                   "integration_time": float(cal.integration_time[i]),
                    "exposure_time": exp.exposure_time, "scan_velocity": exp.scan_velocity,
                    "scan_direction": int(np.sign(exp.scan_velocity)),
-                   "background_level": cal.background_level,
+                   "background_level": float(cal.background_level[i]),
                    "origin_x": exp.origin[0], "origin_y": exp.origin[1],
                    "obsgeo": np.asarray(exp.obsgeo if exp.obsgeo else (np.nan,) * 3, float)}
-            row.update({f"n_{name.lower()}": cal.flag_counts.get(name, 0) for name in dq.FLAGS})
+            row.update({f"n_{name.lower()}": int(cal.flag_counts[name][i]) for name in dq.FLAGS})
             rows.append(row)
         self.progress(len(refs), n_visit, "calibrating exposures", part=self.chunk)
         exposures = Table(rows=rows, names=list(rows[0]))

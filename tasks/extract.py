@@ -265,20 +265,28 @@ class Extract(VisitTask):
         chunks = [self.stage_task(ExtractChunk, chunk=i) for i in range(self.chunk_count())]
         yield chunks
         started = time.time()     # run() starts again once the chunks are complete
-        # the chunks' spectra stay float32 (half the memory of the visit's float64 copy)
-        fluxes, variances, masks, tables = [], [], [], []
-        profile = None
+        # the chunks' spectra are copied into the visit's arrays as they are read (float32, no
+        # list of chunk copies to join): one copy of the visit's spectra in memory
+        tables, profile, flux = [], None, None
         for task in chunks:
+            start, stop = self.chunk_span(task.chunk)
             with fits.open(task.output().path, memmap=False) as hdul:
-                fluxes.append(np.asarray(hdul["FLUX"].data, np.float32))
-                variances.append(np.asarray(hdul["VARIANCE"].data, np.float32))
-                masks.append(np.asarray(hdul["MASK"].data, np.uint8))
+                part = hdul["FLUX"].data
+                if flux is None:
+                    n_visit = self.chunk_span(len(chunks) - 1)[1]
+                    flux = np.empty((n_visit, part.shape[1]), np.float32)
+                    var = np.empty_like(flux)
+                    mask = np.empty(flux.shape, np.uint8)
+                if part.shape != (stop - start, flux.shape[1]):
+                    raise LightledgerError(f"{task.output().path}: FLUX has shape {part.shape}, not "
+                                           f"({stop - start}, {flux.shape[1]}) of chunk {task.chunk}")
+                flux[start:stop] = part
+                var[start:stop] = hdul["VARIANCE"].data
+                mask[start:stop] = hdul["MASK"].data
                 tables.append(Table(hdul["EXPOSURES"].data))
                 if profile is None:
                     profile = np.asarray(hdul["PROFILE"].data, float)
                     profile_row = int(hdul[0].header.get("PROFROW", 0))
-        flux, var, mask = np.concatenate(fluxes), np.concatenate(variances), np.concatenate(masks)
-        del fluxes, variances, masks
         exposures = vstack(tables)
         header, refspec, _ = read_reference(self.input().path)
         wave = Table()
