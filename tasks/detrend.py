@@ -366,6 +366,8 @@ class Detrend(VisitTask):
         depths["unphysical"] = quality.unphysical
         depths["noisy"] = quality.noisy
         depths["note"] = [notes.get(int(c), "") for c in depths["channel"]]
+        depths["dim"] = np.r_[False, np.asarray(channels["dim"], bool) if "dim" in channels.colnames
+                              else np.zeros(n_ch, bool)]
         describe(depths, DEPTHS_COLUMNS)
         warnings = []
         for c, reason in zip(depths["channel"], quality.reasons):
@@ -468,7 +470,7 @@ class Detrend(VisitTask):
         fig2 = folder / "grid.png"
         grid_figure(fig2, [s.name for s in specs], grid.weight, grid.depth, grid.error,
                     np.asarray(depths["wave_mid"][1:]), grid.value, grid.value_error,
-                    visit.event["kind"])
+                    visit.event["kind"], criterion=grid.criterion)
         w = depths[0]
         order = np.argsort(-grid.weight[:, 0])
         metrics = {"white depth (ppm)": round(float(w["depth"]) * 1e6, 1),

@@ -87,6 +87,7 @@ DEPTHS_COLUMNS = {
     "unphysical": ("", "depth below -3 errors or hiding the whole flux"),
     "noisy": ("", "residual rms above 5x the expected"),
     "note": ("", "why a channel was not fitted, else empty"),
+    "dim": ("", "True for a channel with little light (bin CHANNELS dim)"),
 }
 
 #: GRID columns: (unit, description).

@@ -201,7 +201,7 @@ def extract_figure(path, wavelength, flux, exposures, profile_image, *, median_f
     profile_row : int
         Frame row of the profile image's first row.
     """
-    fig, axes = _figure(3, 2, (12, 11), hspace=0.5)
+    fig, axes = _figure(3, 2, (12, 11), hspace=0.5, right=0.9, wspace=0.4)
     n_exposures = len(flux)
     t = _hours(exposures["start_mjd_utc"])
     ax = axes[0, 0]
@@ -557,12 +557,14 @@ def overlay_png(stage, entries, *, dpi=90):
     return buffer.getvalue()
 
 
-def grid_figure(path, names, weight, depth, error, wave_mid, value, value_error, kind):
+def grid_figure(path, names, weight, depth, error, wave_mid, value, value_error, kind,
+                criterion="bic"):
     """The model grid: white-light weights per model, and every model's spectrum.
 
     ``weight``, ``depth``, ``error`` have shape (n_models, 1 + n_channels)
     (white light first); each model's spectrum is drawn with an opacity that
     grows with its mean channel weight, the marginalised spectrum in black.
+    ``criterion`` names the information criterion behind the weights.
     """
     fig, axes = plt.subplots(1, 2, figsize=(14, 0.9 + 0.28 * max(len(names), 6)), layout=None)
     fig.subplots_adjust(left=0.27, right=0.98, bottom=0.12, top=0.93, wspace=0.25)
@@ -573,17 +575,22 @@ def grid_figure(path, names, weight, depth, error, wave_mid, value, value_error,
     axes[0].set_yticks(y, names, fontsize=7)
     axes[0].invert_yaxis()
     axes[0].set_xlim(0, 1)
-    axes[0].set_xlabel("weight")
+    axes[0].set_xlabel(f"weight ({criterion.upper()})")
+    axes[0].set_title("weight of each systematics model", fontsize=9)
     axes[0].legend(fontsize=8, loc="lower right")
     scale = 1e6
     mean_w = np.mean(weight[:, 1:], axis=1)
+    drawn = False
     for m in range(len(names)):
         if np.all(np.isfinite(depth[m, 1:])):
             axes[1].plot(wave_mid, depth[m, 1:] * scale, "-", color="tab:gray",
-                         alpha=float(0.15 + 0.85 * mean_w[m]), lw=1)
+                         alpha=float(0.15 + 0.85 * mean_w[m]), lw=1,
+                         label=None if drawn else "each model (darker: more weight)")
+            drawn = True
     axes[1].errorbar(wave_mid, value[1:] * scale, value_error[1:] * scale, fmt="o", color="k",
                      label="marginalised")
     axes[1].set_xlabel("wavelength (um)")
     axes[1].set_ylabel(f"{kind} depth (ppm)")
+    axes[1].set_title("depth spectrum of each model and marginalised over them", fontsize=9)
     axes[1].legend(fontsize=8)
     return save_figure(fig, path)

@@ -68,6 +68,9 @@ def test_detrend_tables_carry_what_a_fitter_needs(which, request, science):
     depths = Table.read(path.parent / "depths.ecsv", format="ascii.ecsv")
     assert depths["wave_mid"].unit == "um" and depths["tau_min"].unit == "min"
     np.testing.assert_allclose(depths["ld_u1"], truth["U1"])   # limb_darkening = visit
+    # dim channels are flagged as in the light curves' CHANNELS
+    lc_channels = Table.read(visit.product("bin", "lightcurves.fits"), hdu="CHANNELS")
+    assert list(depths["dim"]) == [False] + list(lc_channels["dim"])
     wide = Table.read(path.parent / "detrended.ecsv", format="ascii.ecsv")
     lo, hi = float(channels["wave_min"][3]), float(channels["wave_max"][3])
     assert f"{lo:.4f}-{hi:.4f} um" in wide["detrended_03"].description
