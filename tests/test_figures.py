@@ -20,7 +20,7 @@ from lightledger.pipeline import mask as dq  # noqa: E402
 from lightledger.tasks.figures import binned_points, flag_image  # noqa: E402
 
 STAGE_FIGURES = {"calibrate": ["calibrate.png"], "extract": ["extract.png"], "bin": ["lightcurves.png"],
-                 "detrend": ["detrend.png", "detrend-channels.png"]}
+                 "detrend": ["detrend.png", "detrend-channels.png", "grid.png"]}
 
 
 def _chain(notebook, last):
