@@ -2,6 +2,7 @@
 
     python tests/benchmarks/bench_phase.py [--seed N] [--workers W] [--seeds K]
                                            [--skip-pixels] [--skip-study]
+                                           [--scenarios phase-orbit phase-pair] [--first-seed S]
 
 Part 1 (pixels): renders ``phase-orbit`` at its default size (21 orbits, 294
 exposures) and ``phase-pair`` (two visits of 5 orbits) into a temporary
@@ -19,7 +20,10 @@ directory, reads every raw file once (the I/O floor), reduces them
 Part 2 (light curves, many seeds): the injection-recovery study of
 tests/test_phase_injection.py at the scenarios' default sizes with the detrend
 stage's full ramp grid over ``--seeds`` noise seeds: the pulls' mean and
-scatter per quantity (aim: near 0 and 1), and for ``phase-pair`` the joint
+scatter per quantity (aim: near 0 and 1) and the fractions within 1 and 2
+(aim: 0.68 and 0.95; for a quantity measured at a signal-to-noise ratio of a
+few, e.g. the amplitude and offset of two short visits, the pulls are not
+Gaussian and the fractions say more than the scatter), and for ``phase-pair`` the joint
 fit's eclipse-depth error over the eclipse visit's own (the median over seeds,
 from the given variances and as reported).
 
@@ -151,16 +155,16 @@ def run_pixels(seed, workers, tmp):
     return out
 
 
-def run_study(n_seeds):
+def run_study(n_seeds, scenarios=("phase-orbit", "phase-pair"), first=0):
     inj = _injection_module()
     from lightledger.pipeline.programme import quantity
 
-    for name in ("phase-orbit", "phase-pair"):
+    for name in scenarios:
         visits, planet = inj.simulate_curves(name, seed=7)
         pulls = {k: [] for k in ("eclipse_depth", "night_flux", "amplitude", "offset_deg")}
         ratios, ratios_reported = [], []
         t0 = time.perf_counter()
-        for s in range(n_seeds):
+        for s in range(first, first + n_seeds):
             joint, alone, truth = inj.fit_curves(visits, planet, noise_seed=1000 + s,
                                                  alone=name == "phase-pair")
             for k, v in inj.pulls(joint, truth).items():
@@ -174,13 +178,14 @@ def run_study(n_seeds):
         print(f"\n{name}: {n_seeds} noise seeds at the default size, light-curve level "
               f"({time.perf_counter() - t0:.0f} s)")
         print(f"  {'pull':<15}{'white mean':>11}{'white sd':>9}{'chan mean':>10}{'chan sd':>9}"
-              f"{'|pull|<2':>10}")
+              f"{'|pull|<1':>10}{'|pull|<2':>10}")
         for k, v in pulls.items():
             z = np.array(v)                    # (seeds, 1 + channels)
             zc = z[:, 1:].ravel()
             zc = zc[np.isfinite(zc)]
             print(f"  {k:<15}{np.nanmean(z[:, 0]):>11.2f}{np.nanstd(z[:, 0]):>9.2f}"
-                  f"{np.mean(zc):>10.2f}{np.std(zc):>9.2f}{np.mean(np.abs(zc) < 2):>10.2f}")
+                  f"{np.mean(zc):>10.2f}{np.std(zc):>9.2f}{np.mean(np.abs(zc) < 1):>10.2f}"
+                  f"{np.mean(np.abs(zc) < 2):>10.2f}")
         if ratios:
             print(f"  joint / eclipse visit alone, white eclipse-depth error: median "
                   f"{np.median(ratios):.3f} from the variances, {np.median(ratios_reported):.3f} "
@@ -194,6 +199,10 @@ def main(argv=None):
     ap.add_argument("--seeds", type=int, default=20, help="noise seeds of the study")
     ap.add_argument("--skip-pixels", action="store_true")
     ap.add_argument("--skip-study", action="store_true")
+    ap.add_argument("--scenarios", nargs="+", default=["phase-orbit", "phase-pair"],
+                    choices=["phase-orbit", "phase-pair"], help="scenarios of the study")
+    ap.add_argument("--first-seed", type=int, default=0,
+                    help="first noise seed of the study (seeds 1000 + first ...)")
     args = ap.parse_args(argv)
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     if not args.skip_pixels:
@@ -203,7 +212,7 @@ def main(argv=None):
         finally:
             shutil.rmtree(tmp, ignore_errors=True)
     if not args.skip_study:
-        run_study(args.seeds)
+        run_study(args.seeds, tuple(args.scenarios), args.first_seed)
 
 
 if __name__ == "__main__":
