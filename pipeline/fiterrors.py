@@ -31,7 +31,8 @@ from .errors import ParameterError
 from .leastsq import weighted_lstsq
 from .rednoise import beta_factor, linearised_refit, residual_permutation
 
-__all__ = ["FitLinearisation", "DepthErrors", "ERROR_KINDS", "linearise_fit", "depth_errors"]
+__all__ = ["FitLinearisation", "DepthErrors", "ERROR_KINDS", "linearise_fit", "depth_errors",
+           "depth_response", "inherited_variance"]
 
 #: Depth errors a product may carry.
 ERROR_KINDS = ("covariance", "beta", "permutation", "largest")
@@ -55,6 +56,9 @@ class FitLinearisation:
         :math:`1/\\sigma^2`.
     fitted : ndarray of bool, shape (n_exposures,)
         True where the exposure entered the fit.
+    blocks : tuple of int
+        Columns of ``jacobian`` per kind: (basis with the constant, depth or
+        planet coefficients, shape parameters, event parameters).
     """
 
     jacobian: np.ndarray
@@ -62,6 +66,13 @@ class FitLinearisation:
     depth_gradient: np.ndarray
     weights: np.ndarray
     fitted: np.ndarray
+    blocks: tuple = ()
+
+    def covariance(self, scale=1.0):
+        """Covariance of the parameters, :math:`(J^T W J)^{-1}` times ``scale**2``."""
+        use = self.fitted
+        _, cov = weighted_lstsq(self.jacobian[use], np.zeros(int(use.sum())), self.weights[use])
+        return cov * float(scale) ** 2
 
     def depth_variance(self):
         """Unscaled variance of the depth from :math:`(J^T W J)^{-1}` on the fitted exposures."""
@@ -153,7 +164,68 @@ def linearise_fit(result, basis, template, variance, *, basis_derivatives=None,
     fitted = ~np.asarray(result.fit_mask, bool)
     w = np.where(fitted, 1.0 / np.where(fitted, var, 1.0), 0.0)
     return FitLinearisation(jacobian=J, parameters=p, depth_gradient=grad, weights=w,
-                            fitted=fitted)
+                            fitted=fitted, blocks=(nb, len(grad_event), shape_cols.shape[1],
+                                                   geo.shape[0]))
+
+
+def depth_response(linearisation):
+    r"""How the fitted depth moves with the data: :math:`h` with :math:`\Delta\delta = h \cdot \Delta f`.
+
+    For a least-squares fit linearised at its solution,
+    :math:`h = g^T (J^T W J)^{-1} J^T W` (``g`` the depth's gradient in the
+    parameters; exposures not fitted get 0).  A change of anything the fit
+    held fixed that moves the data-minus-model residual by :math:`\Delta r`
+    moves the depth by :math:`h \cdot \Delta r` (first order; common
+    practice for the propagation of errors through a linear estimator).
+
+    Returns
+    -------
+    ndarray of float, shape (n_exposures,)
+    """
+    use = linearisation.fitted
+    J = linearisation.jacobian[use]
+    w = linearisation.weights[use]
+    _, cov = weighted_lstsq(J, np.zeros(int(use.sum())), w)
+    h = np.zeros(use.size)
+    h[use] = (linearisation.depth_gradient @ cov @ J.T) * w
+    return h
+
+
+def inherited_variance(response, sources):
+    r"""Variance a fit's depth inherits from the errors of parameters another fit gave it.
+
+    A channel fitted with quantities taken from the white light curve (its
+    systematics divided out as a common mode, the ramp and trap time scales,
+    the mid-time) has a depth error conditional on them; their own errors,
+    shared by every channel, add
+
+    .. math:: \sigma^2 = \sum_s a_s C_s a_s^T, \qquad a_s = h R_s,
+
+    where :math:`h` is the depth's response to the data
+    (:func:`depth_response`), :math:`R_s` the change of the fit's residual
+    per unit of source :math:`s`'s parameters and :math:`C_s` their
+    covariance (first-order propagation of errors, common practice; the
+    sources taken as independent).
+
+    Parameters
+    ----------
+    response : ndarray of float, shape (n_exposures,)
+        :func:`depth_response` of the fit.
+    sources : sequence of (ndarray (n_exposures, n_params), ndarray (n_params, n_params))
+        :math:`R_s` (non-finite entries count as 0) and :math:`C_s`.
+
+    Returns
+    -------
+    float
+        The inherited variance (>= 0).
+    """
+    h = np.asarray(response, float)
+    total = 0.0
+    for R, C in sources:
+        R = np.asarray(R, float).reshape(h.size, -1)
+        a = h @ np.where(np.isfinite(R), R, 0.0)
+        total += float(a @ np.asarray(C, float) @ a)
+    return max(total, 0.0)
 
 
 @dataclass(frozen=True)
@@ -193,7 +265,7 @@ class DepthErrors:
         return float(value) if np.isfinite(value) else float(self.covariance)
 
 
-def depth_errors(result, linearisation, flux, *, n_shifts=100, depth_error=None):
+def depth_errors(result, linearisation, flux, *, n_shifts=100, depth_error=None, inherited=0.0):
     """Covariance, beta and permutation errors of a fit's depth.
 
     Parameters
@@ -210,6 +282,9 @@ def depth_errors(result, linearisation, flux, *, n_shifts=100, depth_error=None)
         exposures; 0 = not computed).
     depth_error : float, optional
         Covariance error to report (default ``result.depth_error``).
+    inherited : float, optional
+        Variance the depth inherits from parameters taken from another fit
+        (:func:`inherited_variance`), added to each of the three errors.
 
     Returns
     -------
@@ -236,5 +311,8 @@ def depth_errors(result, linearisation, flux, *, n_shifts=100, depth_error=None)
                                   mask=~fitted, n_shifts=int(n_shifts))
         perm = float(pe.error[0])
         shifts = int(pe.shifts.size)
+    extra = max(float(inherited), 0.0)
+    if extra > 0:
+        cov_err, beta_err, perm = (float(np.sqrt(x * x + extra)) for x in (cov_err, beta_err, perm))
     return DepthErrors(covariance=cov_err, beta=float(beta_err), beta_factor=float(beta),
                        permutation=perm, n_shifts=shifts)

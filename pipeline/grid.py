@@ -35,12 +35,13 @@ import numpy as np
 
 from .errors import AllMaskedError, LightledgerError, ParameterError
 from .fiterrors import ERROR_KINDS, depth_errors, linearise_fit
+from .inherited import inherited_error
 from .limbfit import fit_limb_darkening
 from .selection import CRITERIA, information_criteria, marginalise, model_weights
 from .systematics import SystematicsModel
 from .whitelight import event_template, fit_at_shapes, fit_white, radius_fixed_point
 
-__all__ = ["Curves", "GridFit", "rank_fits", "marginalise_fits", "fit_grid"]
+__all__ = ["Curves", "GridFit", "rank_fits", "marginalise_fits", "fit_grid", "inherited_error"]
 
 
 def rank_fits(chi2, n_params, n_points, *, criterion="bic"):
@@ -142,6 +143,10 @@ class GridFit:
     n_params, n_points : ndarray of int, shape (n_models, 1 + n_channels)
     error_covariance, error_beta, beta, error_permutation, error : ndarray of float, shape (n_models, 1 + n_channels)
         The depth error three ways, the beta factor, and the kind chosen.
+    error_inherited : ndarray of float, shape (n_models, 1 + n_channels)
+        The part of a channel's errors inherited from the white light's fit
+        (its common mode, shapes and event; :func:`inherited_error`), included
+        in each of the three (0 for the white light).
     value, value_error, within, between : ndarray of float, shape (1 + n_channels,)
         Marginalised depth, its error, and the two parts of the error (NaN for
         a channel whose every exposure is masked: it is not fitted).
@@ -180,6 +185,7 @@ class GridFit:
     beta: np.ndarray
     error_permutation: np.ndarray
     error: np.ndarray
+    error_inherited: np.ndarray
     value: np.ndarray
     value_error: np.ndarray
     within: np.ndarray
@@ -267,6 +273,7 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     models = [SystematicsModel(s.systematics(tau_grid=tau_grid, reference_rate=reference_rate,
                                              stare=stare).components + tuple(extra_components))
               for s in specs]
+    shape_names = [[name for name, _ in model.shape_params()] for model in models]
     white_inputs = curves.white_inputs()
     chan_inputs = [curves.channel_inputs(j) for j in range(n_ch)]
     extra_bad = _shared_mask(models, [white_inputs] + chan_inputs[:1], np.zeros(white_inputs.n, bool))
@@ -278,7 +285,8 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     u2 = np.full(n_ch, float(event["u2"])) if channel_ld is None else np.asarray(channel_ld[1], float)
     shape = (n_models, n_curves)
     table = {k: np.full(shape, np.nan) for k in ("chi2", "depth", "error_covariance", "error_beta",
-                                                 "beta", "error_permutation", "error")}
+                                                 "beta", "error_permutation", "error",
+                                                 "error_inherited")}
     n_params = np.zeros(shape, int)
     n_points = np.zeros(shape, int)
     failures = []
@@ -287,7 +295,7 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     total = len(set(owner)) + n_models
     done = 0
 
-    def record(m, c, res, errs):
+    def record(m, c, res, errs, inherited=0.0):
         label = "white light" if c == 0 else f"channel {c - 1}"
         if res.n_points <= res.n_params:
             failures.append(f"{specs[m].name} ({label}): {res.n_params} parameters for "
@@ -306,6 +314,7 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
         table["beta"][m, c] = errs.beta_factor
         table["error_permutation"][m, c] = errs.permutation
         table["error"][m, c] = errs.pick(error_kind)
+        table["error_inherited"][m, c] = inherited
         return True
 
     # 1. the white light, once per distinct white model
@@ -374,23 +383,32 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
                 t_j = tmpl[:, j]
                 if event["kind"] == "transit":
                     # the channel's transit at its own fitted radius (whitelight.radius_fixed_point)
-                    _, t_j, res, _ = radius_fixed_point(
+                    ev_j, t_j, res, _ = radius_fixed_point(
                         lambda ev, j=j: event_template(curves.inputs.time, ev, u1=float(u1[j]),
                                                        u2=float(u2[j])),
                         lambda tm, f=f, v=v, j=j: fit_at_shapes(
                             chan_inputs[j], f, v, tm, models[m], wf.shapes, mask=mask[:, j],
                             **opts)[0],
                         wf.event, t_j, res)
+                else:
+                    ev_j = wf.event
                 lin = linearise_fit(res, design.columns, t_j, v,
                                     planet_basis=opts.get("planet_basis"),
                                     planet_at_event=opts.get("planet_at_event"))
-                errs = depth_errors(res, lin, f, n_shifts=n_shifts)
+                extra = inherited_error(
+                    res, lin, t_j, curves.inputs.time, ev_j, (u1[j], u2[j]), wf,
+                    best_white if specs[m].common_mode else None, specs[m].common_mode,
+                    lambda shapes, f=f, v=v, j=j, t_j=t_j: fit_at_shapes(
+                        chan_inputs[j], f, v, t_j, models[m], shapes, mask=mask[:, j],
+                        **opts)[0].depth,
+                    shape_names[m]) ** 2
+                errs = depth_errors(res, lin, f, n_shifts=n_shifts, inherited=extra)
             except (LightledgerError, np.linalg.LinAlgError) as exc:
                 failures.append(f"{specs[m].name} (channel {j}): {exc}")
                 continue
             res = replace(res, systematics=res.systematics * g, model=res.model * g,
                           star=None if res.star is None else res.star * g)
-            record(m, 1 + j, res, errs)
+            record(m, 1 + j, res, errs, float(np.sqrt(extra)))
         done += 1
         if progress is not None:
             progress(done, total, f"channels: {specs[m].name}")
@@ -418,7 +436,8 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
                    weight=weight, depth=table["depth"], n_params=n_params, n_points=n_points,
                    error_covariance=table["error_covariance"], error_beta=table["error_beta"],
                    beta=table["beta"], error_permutation=table["error_permutation"],
-                   error=table["error"], value=value, value_error=value_error,
+                   error=table["error"], error_inherited=table["error_inherited"],
+                   value=value, value_error=value_error,
                    within=within, between=between, best=best, common_mode_model=cm_model if any(
                        s.common_mode for s in specs) else -1,
                    limb_darkening=(u1, u2), criterion=criterion, error_kind=error_kind, failures=tuple(failures))

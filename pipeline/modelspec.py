@@ -43,7 +43,8 @@ from .systematics import (DEFAULT_TAU_GRID, OrbitPolynomial, OrbitRamp, ScanOffs
                           SystematicsModel, VisitPolynomial)
 
 __all__ = ["ModelSpec", "parse_model", "parse_grid", "COVARIATES", "TOKENS",
-           "DEFAULT_SCAN_GRID", "DEFAULT_STARE_GRID"]
+           "DEFAULT_SCAN_GRID", "DEFAULT_STARE_GRID", "DEFAULT_PHASE_SCAN_GRID",
+           "DEFAULT_PHASE_STARE_GRID"]
 
 #: Covariates a model may decorrelate against (columns of the light-curve product).
 COVARIATES = ("dx", "dy", "width", "background")
@@ -89,6 +90,27 @@ DEFAULT_STARE_GRID = (
     "visit1+ramp+width+background",
     "visit1+cm-sys",
     "visit1+cm-res",
+)
+
+#: Default grid for a phase curve of low-Earth orbits with spatial scans: the
+#: planet's flux varies over the whole visit, so only a visit-long slope (or
+#: curvature) is tried beside the orbit-phase polynomial, the ramp variants and
+#: the charge-trapping ramp.  Every model is fitted to every light curve with
+#: its own shapes (a joint fit ties nothing to the white light), so the grid is
+#: kept short.
+DEFAULT_PHASE_SCAN_GRID = (
+    "visit1+orbit2+scan+ramp",
+    "visit1+orbit1+scan+ramp",
+    "visit2+orbit2+scan+ramp",
+    "visit1+orbit2+scan+ramp-shared",
+    "visit1+orbit1+scan+traps",
+)
+
+#: Default grid for a phase curve observed in one continuous stare.
+DEFAULT_PHASE_STARE_GRID = (
+    "visit1+ramp",
+    "visit2+ramp",
+    "visit1+ramp+dx+dy",
 )
 
 

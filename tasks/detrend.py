@@ -10,8 +10,11 @@ BIC or AIC and marginalises its depth over them with weights from the
 criterion, the error including the spread between models (Gibson 2014;
 Wakeford et al. 2016).  Each fit's depth error is computed three ways
 (covariance, beta factor, residual permutation); ``detrend.depth_errors``
-says which one is marginalised and carried.  For an eclipse fitted jointly,
-the phase curve is the planet's own flux hidden by the eclipse.
+says which one is marginalised and carried; a channel's errors include what it
+inherits from the white light's fit.  For an eclipse fitted jointly, the
+phase curve is the planet's own flux hidden by the eclipse.  A
+``phase-curve`` visit fits the full-orbit model once per model of its grid
+and marginalises every planet quantity (:mod:`lightledger.pipeline.phasegrid`).
 
 Products in ``NOTEBOOK/detrend-IDENT/``:
 
@@ -54,7 +57,8 @@ from lightledger.pipeline.diagnostics import residual_quality
 from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.grid import Curves, fit_grid
 from lightledger.pipeline.limbfit import table_limb_darkening
-from lightledger.pipeline.modelspec import DEFAULT_SCAN_GRID, DEFAULT_STARE_GRID, parse_grid
+from lightledger.pipeline.modelspec import (DEFAULT_PHASE_SCAN_GRID, DEFAULT_PHASE_STARE_GRID,
+                                            DEFAULT_SCAN_GRID, DEFAULT_STARE_GRID, parse_grid)
 from lightledger.pipeline.plausibility import assess_fits
 from lightledger.pipeline.systematics import PhaseSinusoids, SystematicsInputs, SystematicsModel
 from lightledger.pipeline.whitelight import event_template as _event_template
@@ -217,6 +221,31 @@ def with_reasons(det, lc, lc_all, left_out):
     out["set_aside"].description = "True: exposure set aside at input (values NaN)"
     out["reason"].description = "why the exposure is not used; empty when used"
     return out
+
+
+def phase_grid_models(lc, params):
+    """The models a phase-curve fit tries, and a warning line per model it cannot.
+
+    ``detrend.models``, or the default phase-curve grid for scans or stares;
+    common-mode models are left out (a joint fit of the planet has no white
+    light fitted first to divide out), with a warning naming them.
+
+    Returns
+    -------
+    (names, warnings) : (tuple of str, list of str)
+    """
+    stare = bool(np.all(np.asarray(lc["scan_direction"]) == 0))
+    specs = parse_grid(params["models"] or (DEFAULT_PHASE_STARE_GRID if stare
+                                            else DEFAULT_PHASE_SCAN_GRID))
+    names = tuple(s.name for s in specs if not s.common_mode)
+    dropped = [s.name for s in specs if s.common_mode]
+    warnings = ([f"detrend.models: common-mode models are not fitted to a phase curve "
+                 f"(no white light is divided out of a joint fit): {', '.join(dropped)}"]
+                if dropped else [])
+    if not names:
+        raise LightledgerError("detrend.models: a phase curve needs at least one model without "
+                               "a common-mode token (cm-sys, cm-res)")
+    return names, warnings
 
 
 def _left_out(orbit, params, stare):
@@ -501,23 +530,35 @@ class Detrend(VisitTask):
 
     def _run_phase_curve(self, started, lc_path, lc, channels):
         """A visit with every transit and eclipse and the planet's flux over the orbit."""
+        from lightledger.pipeline.phasegrid import fit_phase_grid
         from lightledger.pipeline.programme import fit_programme
 
         from .phasecurve import planet_model, visit_curves, write_phase_products
 
         visit, params = self.config, self.params
         planet = planet_model(visit.event, params)
-        curves = visit_curves(lc, visit.event, params, visit.name)
-        fit = fit_programme([curves], planet, progress=lambda done, total: self.progress(
-            done, total + 1, "white and channel light curves"))
+        names, warnings = phase_grid_models(lc, params)
+        fits, failures = [], []
+        total = len(names) * (len(channels) + 1) + 1
+        for m, name in enumerate(names):
+            curves = visit_curves(lc, visit.event, dict(params, models=(name,)), visit.name)
+            try:
+                fits.append(fit_programme([curves], planet, progress=lambda done, _t, m=m: (
+                    self.progress(m * (len(channels) + 1) + done, total, f"model {name}"))))
+            except (LightledgerError, np.linalg.LinAlgError) as exc:
+                fits.append(None)
+                failures.append(f"{name}: {exc}")
+        grid = fit_phase_grid(fits, names, criterion=params["criterion"], failures=failures)
         band = (float(lc.meta.get("WLO", channels["wave_lo"][0])),
                 float(lc.meta.get("WHI", channels["wave_hi"][-1])))
+        top = grid.top_fit()
         outputs, figs, metrics = write_phase_products(
-            self.folder, self.provenance([lc_path]), fit, [lc], channels, band, planet, params,
-            names=[visit.name])
-        metrics["exposures fitted"] = int(np.sum(~fit.white.visits[0].fit_mask))
-        self.progress(len(channels) + 2, len(channels) + 2, "white and channel light curves")
-        self.write_entry(self.output().path, [lc_path], outputs, metrics, figs, started)
+            self.folder, self.provenance([lc_path]), top, [lc], channels, band, planet, params,
+            names=[visit.name], grid=grid)
+        metrics["exposures fitted"] = int(np.sum(~top.white.visits[0].fit_mask))
+        self.progress(total, total, "model grid")
+        self.write_entry(self.output().path, [lc_path], outputs, metrics, figs, started,
+                         warnings=warnings)
 
 
 def _detrended_table(lc, grid, which, kind):
@@ -590,6 +631,7 @@ def _depths_table(lc, channels, grid, event):
                      "error_covariance": float(grid.error_covariance[m, c]),
                      "error_beta": float(grid.error_beta[m, c]),
                      "error_permutation": float(grid.error_permutation[m, c]),
+                     "error_inherited": float(grid.error_inherited[m, c]),
                      "rms_ppm": q.rms * 1e6,
                      "rms_dof_ppm": q.rms_dof * 1e6,
                      "expected_ppm": q.expected * 1e6,
@@ -625,7 +667,8 @@ def _unfitted_row(j, lo, hi):
     for name in ("depth", "depth_error", "error_models"):
         row[name] = nan
     row.update(best_model="", best_weight=nan)
-    for name in ("depth_best", "error_covariance", "error_beta", "error_permutation", "rms_ppm",
+    for name in ("depth_best", "error_covariance", "error_beta", "error_permutation",
+                 "error_inherited", "rms_ppm",
                  "rms_dof_ppm", "expected_ppm", "rms_over_expected", "beta", "reduced_chi2", "bic"):
         row[name] = nan
     row.update(n_params=0, n_used=0, tau_min=nan, shape_at_edge="")
@@ -658,6 +701,7 @@ def grid_table(grid, channels):
                 "error_covariance": float(grid.error_covariance[m, c]),
                 "error_beta": float(grid.error_beta[m, c]), "beta": float(grid.beta[m, c]),
                 "error_permutation": float(grid.error_permutation[m, c]),
+                "error_inherited": float(grid.error_inherited[m, c]),
                 "shapes": shapes,
                 "t0": float(ev.get("t0", np.nan)), "t0_error": float(err.get("t0", np.nan)),
                 "a_rs": float(ev.get("a_rs", np.nan)), "a_rs_error": float(err.get("a_rs", np.nan)),

@@ -34,8 +34,8 @@ from lightledger.pipeline.programme import (QUANTITIES, VisitCurves, consistency
 
 from .products import table_hdu, write_ecsv, write_fits
 
-__all__ = ["planet_model", "visit_curves", "write_phase_products", "DETRENDED_COLUMNS",
-           "PLANET_COLUMNS", "PHASE_COLUMNS", "BIN_COLUMNS", "DAYNIGHT_COLUMNS", "ALONE_COLUMNS",
+__all__ = ["planet_model", "visit_curves", "write_phase_products", "phase_grid_table",
+           "DETRENDED_COLUMNS", "PLANET_COLUMNS", "PLANET_GRID_COLUMNS", "PHASE_GRID_COLUMNS", "PHASE_COLUMNS", "BIN_COLUMNS", "DAYNIGHT_COLUMNS", "ALONE_COLUMNS",
            "CONSISTENCY_COLUMNS"]
 
 #: DETRENDED of a phase-curve fit (per exposure).
@@ -90,6 +90,39 @@ PLANET_COLUMNS = {
     "bic": ("", "Bayesian information criterion"),
     "n_params": ("", "free parameters of the fit"),
     "n_used": ("", "exposures in the fit"),
+}
+
+#: PLANET columns added when the phase curve was fitted with a grid of systematics models.
+PLANET_GRID_COLUMNS = {
+    "best_model": ("", "top-weighted systematics model of this light curve (its fit gives the "
+                       "fit-quality columns, DETRENDED and the PHASE tables)"),
+    "best_weight": ("", "that model's weight"),
+    "n_models": ("", "models fitted to this light curve"),
+    "eclipse_depth_models": ("", "part of eclipse_depth_error from the spread between models"),
+    "transit_depth_models": ("", "part of transit_depth_error from the spread between models"),
+    "amplitude_models": ("", "part of amplitude_error from the spread between models"),
+}
+
+#: GRID of a phase curve: one row per systematics model and light curve.
+PHASE_GRID_COLUMNS = {
+    "model": ("", "systematics model (tokens joined by '+')"),
+    "model_index": ("", "position of the model in the grid"),
+    "channel": ("", "channel number; -1 = the white band"),
+    "rank": ("", "1 = highest weight for this light curve"),
+    "n_params": ("", "free parameters of the fit"),
+    "n_points": ("", "exposures in the fit"),
+    "chi2": ("", "chi-square of the fit"),
+    "bic": ("", "chi2 + n_params ln(n_points)"),
+    "aic": ("", "chi2 + 2 n_params"),
+    "weight": ("", "exp(-criterion/2), normalised over the models of this light curve"),
+    **{name: ("deg" if name == "offset_deg" else "", f"{name} of this model's fit")
+       for name in ("rp_rs", "transit_depth", "eclipse_depth", "night_flux", "max_flux",
+                    "min_flux", "amplitude", "offset_deg")},
+    **{("offset_error_deg" if name == "offset_deg" else f"{name}_error"):
+       ("deg" if name == "offset_deg" else "", f"1-sigma error of {name} of this model's fit")
+       for name in ("rp_rs", "transit_depth", "eclipse_depth", "night_flux", "max_flux",
+                    "min_flux", "amplitude", "offset_deg")},
+    "status": ("", "ok, or failed (weight 0; grid.ecsv meta 'failures' says why)"),
 }
 
 #: PHASE_WHITE and PHASE_NN: the planet's flux per exposure.
@@ -245,12 +278,53 @@ def _planet_row(j, lo, hi, jf):
             "n_used": q.n_used}
 
 
+def _with_grid(row, grid, c):
+    """A PLANET row with every planet quantity marginalised over the grid (light curve ``c``)."""
+    from lightledger.pipeline.phasegrid import PLANET_QUANTITIES
+    out = dict(row)
+    for name in PLANET_QUANTITIES:
+        out[name] = float(grid.value[name][c])
+        out[_err_name(name)] = float(grid.error[name][c])
+    m = int(grid.best[c])
+    out["best_model"] = grid.names[m]
+    out["best_weight"] = float(grid.weight[m, c])
+    out["n_models"] = int(np.sum(np.isfinite(grid.chi2[:, c])))
+    for name in ("eclipse_depth", "transit_depth", "amplitude"):
+        out[f"{name}_models"] = float(grid.between[name][c])
+    return out
+
+
+def phase_grid_table(grid):
+    """GRID of a phase-curve fit: one row per model and light curve (channel -1 = white band)."""
+    from lightledger.pipeline.phasegrid import PLANET_QUANTITIES
+    rows = []
+    n_models, n_curves = grid.weight.shape
+    for c in range(n_curves):
+        ranks = np.empty(n_models, int)
+        ranks[np.argsort(-grid.weight[:, c], kind="stable")] = np.arange(1, n_models + 1)
+        for m, name in enumerate(grid.names):
+            row = {"model": name, "model_index": m, "channel": c - 1, "rank": int(ranks[m]),
+                   "n_params": int(grid.n_params[m, c]), "n_points": int(grid.n_points[m, c]),
+                   "chi2": float(grid.chi2[m, c]), "bic": float(grid.bic[m, c]),
+                   "aic": float(grid.aic[m, c]), "weight": float(grid.weight[m, c])}
+            for q in PLANET_QUANTITIES:
+                row[q] = float(grid.values[q][m, c])
+            for q in PLANET_QUANTITIES:
+                row[_err_name(q)] = float(grid.errors[q][m, c])
+            row["status"] = "ok" if np.isfinite(grid.chi2[m, c]) else "failed"
+            rows.append(row)
+    table = _table(rows, PHASE_GRID_COLUMNS)
+    table.meta["criterion"] = grid.criterion
+    table.meta["failures"] = list(grid.failures)
+    return table
+
+
 def _table(rows, columns):
     return _describe(Table(rows=rows, names=list(rows[0])), columns)
 
 
 def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, params, *,
-                         names, alone=None, figures=True):
+                         names, alone=None, figures=True, grid=None):
     """Write every phase-curve product of a fit into ``folder``.
 
     Parameters
@@ -273,6 +347,13 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
         Each visit fitted by itself (programmes).
     figures : bool
         Draw the figures.
+    grid : PhaseGrid, optional
+        The fits of a grid of systematics models
+        (:func:`lightledger.pipeline.phasegrid.fit_phase_grid`; ``fit`` is
+        then its :meth:`~lightledger.pipeline.phasegrid.PhaseGrid.top_fit`):
+        PLANET and DAYNIGHT carry the marginalised quantities, with the
+        :data:`PLANET_GRID_COLUMNS`, and a GRID table (``grid.ecsv``) lists
+        every model's fit.
 
     Returns
     -------
@@ -317,14 +398,15 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
     all_fits = [(-1, white_band[0], white_band[1], fit.white)] + [
         (j, float(channels["wave_lo"][j]), float(channels["wave_hi"][j]), jf)
         for j, jf in enumerate(fit.channels)]
-    planet_tab = _table([_planet_row(j, lo, hi, jf) for j, lo, hi, jf in all_fits],
-                        PLANET_COLUMNS)
-    daynight = _table([{"channel": j, "wave_lo": lo, "wave_hi": hi, "wave_mid": 0.5 * (lo + hi),
-                        "day_flux": quantity(jf, "eclipse_depth")[0],
-                        "day_error": quantity(jf, "eclipse_depth")[1],
-                        "night_flux": quantity(jf, "night_flux")[0],
-                        "night_error": quantity(jf, "night_flux")[1]}
-                       for j, lo, hi, jf in all_fits[1:]], DAYNIGHT_COLUMNS)
+    planet_rows = [_planet_row(j, lo, hi, jf) for j, lo, hi, jf in all_fits]
+    if grid is not None:
+        planet_rows = [_with_grid(row, grid, c) for c, row in enumerate(planet_rows)]
+    planet_tab = _table(planet_rows, {**PLANET_COLUMNS, **PLANET_GRID_COLUMNS})
+    daynight = _table([{"channel": row["channel"], "wave_lo": row["wave_lo"],
+                        "wave_hi": row["wave_hi"], "wave_mid": row["wave_mid"],
+                        "day_flux": row["eclipse_depth"], "day_error": row["eclipse_depth_error"],
+                        "night_flux": row["night_flux"], "night_error": row["night_flux_error"]}
+                       for row in planet_rows[1:]], DAYNIGHT_COLUMNS)
     points = [planet_flux_points(jf, times, eph.t0, eph.period) for _, _, _, jf in all_fits]
     bins = phase_resolved_spectrum(points, params["phase_bins"])
     bin_rows = []
@@ -360,6 +442,8 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
                 crow.append({"channel": j, "quantity": qname, "chi2": chi2, "n_visits": n})
         tables += [("ALONE", _table(rows, ALONE_COLUMNS)),
                    ("CONSISTENCY", _table(crow, CONSISTENCY_COLUMNS))]
+    if grid is not None:
+        tables.append(("GRID", phase_grid_table(grid)))
     tables += phase_tabs
     hdus = []
     for extname, tab in tables:
@@ -368,13 +452,16 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
         hdu.header["PERIOD"] = (eph.period, "[d] orbital period")
         hdu.header["ERRKIND"] = ("1-sigma", "error columns hold standard deviations")
         hdus.append(hdu)
-    write_fits(folder / "planet.fits", hdus, prov,
-               header={"NVISITS": (len(lcs), "visits fitted together"),
-                       "HARMONIC": (int(params["harmonics"]), "harmonics of the planet flux")})
+    header = {"NVISITS": (len(lcs), "visits fitted together"),
+              "HARMONIC": (int(params["harmonics"]), "harmonics of the planet flux")}
+    if grid is not None:
+        header["NMODELS"] = (len(grid.names), "systematics models in the grid")
+        header["CRITERN"] = (grid.criterion.upper(), "criterion weighting the models")
+    write_fits(folder / "planet.fits", hdus, prov, header=header)
     outputs.append(folder / "planet.fits")
     for extname, tab in tables:
         name = {"PLANET": "planet", "DAYNIGHT": "daynight", "PHASEBINS": "phasebins",
-                "ALONE": "alone", "CONSISTENCY": "consistency"}.get(extname)
+                "ALONE": "alone", "CONSISTENCY": "consistency", "GRID": "grid"}.get(extname)
         if name is None:
             name = "phasecurve-" + ("white" if extname == "PHASE_WHITE" else extname[6:])
         write_ecsv(folder / f"{name}.ecsv", tab, prov)
@@ -399,6 +486,13 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
                "median channel rms / expected":
                    _round(float(np.nanmedian(planet_tab["rms_over_expected"][1:])), 3),
                "visits": len(lcs)}
+    if grid is not None:
+        order = np.argsort(-grid.weight[:, 0])
+        metrics["models"] = len(grid.names)
+        metrics[f"white light ranking ({grid.criterion.upper()} weight)"] = [
+            f"{grid.names[m]} {grid.weight[m, 0]:.3f}" for m in order[:5] if grid.weight[m, 0] > 0]
+        metrics["channels' top models"] = sorted({grid.names[m] for m in grid.best[1:]})
+        metrics["failed fits"] = len(grid.failures)
     return outputs, figs, metrics
 
 

@@ -114,6 +114,23 @@ def test_single_phase_curve_visit(pair):
     assert len(planet) == len(EDGES)        # the white band and four channels
     assert np.isnan(np.ma.filled(planet["transit_depth_error"][0], np.nan))   # no transit in it
     assert (Path(result.final).parent / "detrended.fits").is_file()
+    # The planet is marginalised over the phase-curve grid (Wakeford et al. 2016: weights
+    # exp(-BIC/2) normalised per light curve, the weighted mean, the error adding the
+    # spread between models): check PLANET against its own GRID table.
+    grid = Table.read(result.final, hdu="GRID")
+    models = set(grid["model"])
+    assert len(models) == fits.getheader(result.final)["NMODELS"] >= 2
+    assert len(grid) == len(models) * len(planet)
+    for row in planet:
+        rows = grid[grid["channel"] == row["channel"]]
+        w = np.asarray(rows["weight"], float)
+        assert abs(w.sum() - 1) < 1e-9
+        d, e = np.asarray(rows["eclipse_depth"], float), np.asarray(rows["eclipse_depth_error"], float)
+        mean = np.sum(w * d)
+        assert row["eclipse_depth"] == pytest.approx(mean, rel=1e-9, abs=1e-12)
+        assert row["eclipse_depth_error"] == pytest.approx(
+            np.sqrt(np.sum(w * (e ** 2 + (d - mean) ** 2))), rel=1e-9)
+        assert row["best_model"] == rows["model"][np.argmax(w)]
 
 
 def test_programme_errors_are_one_line(pair, capsys):

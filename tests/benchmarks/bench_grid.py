@@ -154,8 +154,13 @@ def main(argv=None):
                         help="exposures per visit (default 60 for scans, 150 for the stare)")
     parser.add_argument("--scenarios", nargs="+", default=["scan-exponential", "scan-traps"],
                         choices=sorted(SCENARIOS))
+    parser.add_argument("--keep", type=Path, default=None,
+                        help="keep the rendered visits and their notebooks in this directory")
     args = parser.parse_args(argv)
-    with tempfile.TemporaryDirectory(prefix="bench-grid-") as root:
+    if args.keep is not None:
+        args.keep.mkdir(parents=True, exist_ok=True)
+    with tempfile.TemporaryDirectory(prefix="bench-grid-") as tmp:
+        root = tmp if args.keep is None else args.keep
         for label in args.scenarios:
             n_exp = args.exposures or (150 if label == "stare" else 60)
             rows = []

@@ -1,0 +1,215 @@
+"""Phase-curve parameters marginalised over a grid of systematics models.
+
+A phase curve (the planet's flux over the whole orbit, with its transits and
+eclipses; :func:`lightledger.pipeline.programme.fit_programme`) is fitted once
+per systematics model of a grid.  Each light curve (the white band and every
+channel) ranks the models by BIC or AIC, weights them by
+:math:`e^{-\\mathrm{IC}/2}` normalised, and marginalises every planet
+quantity (radius ratio, transit and eclipse depths, night side, extremes,
+amplitude, offset of the maximum) over them: the weighted mean, with an
+error that adds the spread between models to their own errors (Gibson 2014;
+Wakeford et al. 2016; :func:`lightledger.pipeline.grid.rank_fits`,
+:func:`lightledger.pipeline.grid.marginalise_fits`).
+
+The same function serves one visit and a programme of visits fitted jointly:
+give it one fit per model, all of the same visits and channels.
+
+Pure functions; inputs are not modified.  Fluxes are relative to the star's.
+"""
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import AllMaskedError, ParameterError
+from .grid import marginalise_fits, rank_fits
+
+__all__ = ["PLANET_QUANTITIES", "planet_quantity", "PhaseGrid", "fit_phase_grid"]
+
+#: Planet quantities marginalised over the models, as in a phase-curve product's PLANET table.
+PLANET_QUANTITIES = ("rp_rs", "transit_depth", "eclipse_depth", "night_flux", "max_flux",
+                     "min_flux", "amplitude", "offset_deg")
+
+
+def planet_quantity(fit, name):
+    """(value, error) of one of :data:`PLANET_QUANTITIES` from a JointFit (NaN if not measured).
+
+    The radius ratio and transit depth are NaN when the radius was not fitted
+    (no transit in the data); the planet's flux quantities are NaN when its
+    flux was not fitted.
+    """
+    nan = (float("nan"), float("nan"))
+    if name in ("rp_rs", "transit_depth"):
+        if not fit.fitted_radius:
+            return nan
+        return ((fit.rp_rs, fit.rp_rs_error) if name == "rp_rs"
+                else (fit.transit_depth, fit.transit_depth_error))
+    s = fit.summary
+    if s is None:
+        return nan
+    return {"eclipse_depth": (s.day, s.day_error), "night_flux": (s.night, s.night_error),
+            "max_flux": (s.maximum, s.maximum_error), "min_flux": (s.minimum, s.minimum_error),
+            "amplitude": (s.amplitude, s.amplitude_error),
+            "offset_deg": (s.offset_deg, s.offset_error_deg)}[name]
+
+
+@dataclass(frozen=True)
+class PhaseGrid:
+    """Phase-curve fits of several systematics models, ranked and marginalised.
+
+    Light curves are indexed ``0`` for the white band and ``1 + j`` for
+    channel ``j``.
+
+    Attributes
+    ----------
+    names : tuple of str
+        The models.
+    fits : tuple
+        One ProgrammeFit per model (None where it failed).
+    chi2, bic, aic, weight : ndarray of float, shape (n_models, 1 + n_channels)
+    n_params, n_points : ndarray of int, shape (n_models, 1 + n_channels)
+    values, errors : dict of str to ndarray of float, shape (n_models, 1 + n_channels)
+        Each quantity of :data:`PLANET_QUANTITIES` and its error per fit.
+    value, error, within, between : dict of str to ndarray of float, shape (1 + n_channels,)
+        Marginalised value, its error, and the error's two parts (the models'
+        own errors, the spread between models); NaN where no model with
+        weight measured the quantity.
+    best : ndarray of int, shape (1 + n_channels,)
+        Top-weighted model of each light curve.
+    criterion : str
+    failures : tuple of str
+    """
+
+    names: tuple
+    fits: tuple
+    chi2: np.ndarray
+    bic: np.ndarray
+    aic: np.ndarray
+    weight: np.ndarray
+    n_params: np.ndarray
+    n_points: np.ndarray
+    values: dict
+    errors: dict
+    value: dict
+    error: dict
+    within: dict
+    between: dict
+    best: np.ndarray
+    criterion: str
+    failures: tuple
+
+    def fit_of(self, m, c):
+        """JointFit of model ``m`` on light curve ``c`` (0 = white band)."""
+        fit = self.fits[m]
+        return fit.white if c == 0 else fit.channels[c - 1]
+
+    def top_fit(self):
+        """A ProgrammeFit made of each light curve's top-weighted model's fit."""
+        from .programme import ProgrammeFit
+        n_ch = self.weight.shape[1] - 1
+        return ProgrammeFit(white=self.fit_of(self.best[0], 0),
+                            channels=tuple(self.fit_of(self.best[1 + j], 1 + j)
+                                           for j in range(n_ch)))
+
+
+def _marginalise_measured(values, errors, weights):
+    """Marginalise each light curve over the models that measured the quantity.
+
+    A model of non-zero weight without the quantity (NaN: e.g. an amplitude
+    its fit could not define) drops out and the rest are renormalised; a
+    light curve whose models all lack it gets NaN.
+    """
+    ok = np.isfinite(values) & np.isfinite(errors) & (weights > 0)
+    w = np.where(ok, weights, 0.0)
+    total = w.sum(axis=0)
+    has = total > 0
+    out = [np.full(values.shape[1], np.nan) for _ in range(4)]
+    if np.any(has):
+        wn = w[:, has] / total[has]
+        m = marginalise_fits(np.where(ok, values, 0.0)[:, has], np.where(ok, errors, 0.0)[:, has],
+                             wn)
+        for arr, part in zip(out, (m.value, m.error, m.within, m.between)):
+            arr[has] = part
+    return out
+
+
+def fit_phase_grid(fits, names, *, criterion="bic", failures=()):
+    """Rank phase-curve fits of several models per light curve and marginalise the planet.
+
+    Parameters
+    ----------
+    fits : sequence of ProgrammeFit or None
+        One fit per model (:func:`lightledger.pipeline.programme.fit_programme`
+        with that model for every visit), all of the same visits and
+        channels; None for a model whose fit failed (weight 0).
+    names : sequence of str
+        The models' names, in the order of ``fits``.
+    criterion : {"bic", "aic"}
+    failures : sequence of str, optional
+        Lines describing failed fits, kept in the result.
+
+    Returns
+    -------
+    PhaseGrid
+
+    Raises
+    ------
+    AllMaskedError
+        When every model failed.
+
+    Notes
+    -----
+    BIC = chi2 + k ln N and AIC = chi2 + 2k per light curve, k and N from
+    each joint fit (every visit's systematics columns and shape parameters,
+    the planet's coefficients, the radius when fitted; the fitted exposures
+    of every visit); weights :math:`\\propto e^{-\\mathrm{IC}/2}`
+    (Gibson 2014).  The marginalised error is
+    :math:`\\sqrt{\\sum W \\sigma^2 + \\sum W (x - \\bar x)^2}` (Wakeford et
+    al. 2016).  Cost: negligible beside the fits.
+    """
+    fits, names = tuple(fits), tuple(str(n) for n in names)
+    if len(fits) != len(names) or not fits:
+        raise ParameterError(f"give one name per fit and at least one fit; got {len(fits)} fits "
+                             f"and {len(names)} names")
+    good = [f for f in fits if f is not None]
+    if not good:
+        raise AllMaskedError("no systematics model could be fitted to the phase curve: "
+                             + "; ".join(list(failures)[:3]))
+    n_ch = {len(f.channels) for f in good}
+    if len(n_ch) != 1:
+        raise ParameterError("every model's fit must have the same channels")
+    n_curves = 1 + n_ch.pop()
+    shape = (len(fits), n_curves)
+    chi2 = np.full(shape, np.nan)
+    n_params = np.zeros(shape, int)
+    n_points = np.zeros(shape, int)
+    values = {q: np.full(shape, np.nan) for q in PLANET_QUANTITIES}
+    errors = {q: np.full(shape, np.nan) for q in PLANET_QUANTITIES}
+    for m, fit in enumerate(fits):
+        if fit is None:
+            continue
+        for c, jf in enumerate((fit.white,) + tuple(fit.channels)):
+            if not np.isfinite(jf.chi2) or jf.n_points <= jf.n_params:
+                continue
+            chi2[m, c], n_params[m, c], n_points[m, c] = jf.chi2, jf.n_params, jf.n_points
+            for q in PLANET_QUANTITIES:
+                values[q][m, c], errors[q][m, c] = planet_quantity(jf, q)
+    if not np.all(np.any(np.isfinite(chi2), axis=0)):
+        raise AllMaskedError("no systematics model could be fitted to every light curve of the "
+                             "phase curve")
+    bic, aic, weight = rank_fits(chi2, n_params, n_points, criterion=criterion)
+    value, error, within, between = {}, {}, {}, {}
+    for q in PLANET_QUANTITIES:
+        x = values[q]
+        if q == "offset_deg":
+            # an angle: take it on the branch nearest the top model's, back to [-180, 180)
+            ref = x[np.argmax(weight, axis=0), np.arange(n_curves)]
+            x = ref + (x - ref + 180.0) % 360.0 - 180.0
+        value[q], error[q], within[q], between[q] = _marginalise_measured(x, errors[q], weight)
+        if q == "offset_deg":
+            value[q] = (value[q] + 180.0) % 360.0 - 180.0
+    return PhaseGrid(names=names, fits=fits, chi2=chi2, bic=bic, aic=aic, weight=weight,
+                     n_params=n_params, n_points=n_points, values=values, errors=errors,
+                     value=value, error=error, within=within, between=between,
+                     best=np.argmax(weight, axis=0), criterion=criterion,
+                     failures=tuple(failures))

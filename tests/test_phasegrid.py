@@ -1,0 +1,82 @@
+"""Tests of lightledger.pipeline.phasegrid: phase-curve quantities marginalised over models.
+
+Sources: the marginalisation of Wakeford et al. 2016 (ApJ 819, 10; weights
+exp(-BIC/2) normalised, Gibson 2014, MNRAS 445, 3401; BIC of Schwarz 1978)
+computed by hand below; angles averaged on one branch (common practice).
+"""
+
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+
+from lightledger.pipeline.errors import AllMaskedError, ParameterError
+from lightledger.pipeline.phasegrid import fit_phase_grid, planet_quantity
+from lightledger.pipeline.programme import ProgrammeFit
+
+
+def _joint(chi2, k, n, day, day_err, offset=10.0, radius=None):
+    summary = SimpleNamespace(day=day, day_error=day_err, night=0.1 * day, night_error=day_err,
+                              maximum=day, maximum_error=day_err, minimum=0.0,
+                              minimum_error=day_err, amplitude=day, amplitude_error=day_err,
+                              offset_deg=offset, offset_error_deg=5.0)
+    return SimpleNamespace(chi2=chi2, n_params=k, n_points=n, summary=summary,
+                           fitted_radius=radius is not None,
+                           rp_rs=np.nan if radius is None else radius[0],
+                           rp_rs_error=np.nan if radius is None else radius[1],
+                           transit_depth=np.nan if radius is None else radius[0] ** 2,
+                           transit_depth_error=np.nan if radius is None else
+                           2 * radius[0] * radius[1])
+
+
+def test_two_models_by_hand():
+    # Model A: chi2 50, k 10, N 100; model B: chi2 45, k 12, N 100.
+    # BIC_A = 50 + 10 ln 100 = 96.0517, BIC_B = 45 + 12 ln 100 = 100.2620 (Schwarz 1978).
+    # W_A = 1 / (1 + exp(-(100.2620 - 96.0517)/2)) = 1 / (1 + exp(-2.10517))
+    # = 1 / (1 + 0.121827) = 0.891405, W_B = 0.108595 (Gibson 2014).  Day side
+    # 400 +- 30 ppm (A), 460 +- 40 ppm (B): mean = 0.891405*400 + 0.108595*460 =
+    # 406.5157 ppm; within = sqrt(0.891405*900 + 0.108595*1600) = 31.2413; between =
+    # sqrt(0.891405*6.5157^2 + 0.108595*53.4843^2) = 18.6678; error =
+    # sqrt(within^2 + between^2) = 36.3938 ppm (Wakeford et al. 2016).
+    a = ProgrammeFit(white=_joint(50.0, 10, 100, 400e-6, 30e-6),
+                     channels=(_joint(50.0, 10, 100, 400e-6, 30e-6),))
+    b = ProgrammeFit(white=_joint(45.0, 12, 100, 460e-6, 40e-6),
+                     channels=(_joint(30.0, 12, 100, 460e-6, 40e-6),))
+    grid = fit_phase_grid([a, b], ["A", "B"])
+    np.testing.assert_allclose(grid.weight[:, 0], [0.891405, 0.108595], atol=2e-6)
+    np.testing.assert_allclose(grid.value["eclipse_depth"][0], 406.5157e-6, atol=2e-10)
+    np.testing.assert_allclose(grid.within["eclipse_depth"][0], 31.2413e-6, atol=2e-10)
+    np.testing.assert_allclose(grid.between["eclipse_depth"][0], 18.6678e-6, atol=2e-10)
+    np.testing.assert_allclose(grid.error["eclipse_depth"][0], 36.3938e-6, atol=2e-10)
+    # the channel ranks on its own: B's chi2 is 20 lower for 2 more parameters,
+    # BIC_B - BIC_A = -20 + 2 ln 100 = -10.7897, W_B = 1 / (1 + exp(-5.39483)) = 0.995481
+    np.testing.assert_allclose(grid.weight[1, 1], 0.995481, atol=2e-6)
+    assert grid.best.tolist() == [0, 1]
+    top = grid.top_fit()
+    assert top.white is a.white and top.channels[0] is b.channels[0]
+    # no transit in either fit: the radius is not measured
+    assert np.isnan(grid.value["transit_depth"][0]) and np.isnan(grid.error["rp_rs"][1])
+
+
+def test_offsets_are_averaged_on_one_branch_and_failed_fits_drop_out():
+    # Offsets of +179 and -179 degrees are 2 degrees apart, not 358: the mean of
+    # two equal-weight models is 180 (= -180), their spread 1 degree.
+    a = ProgrammeFit(white=_joint(50.0, 10, 100, 4e-4, 3e-5, offset=179.0), channels=())
+    b = ProgrammeFit(white=_joint(50.0, 10, 100, 4e-4, 3e-5, offset=-179.0), channels=())
+    grid = fit_phase_grid([a, b, None], ["A", "B", "C"], failures=["C: singular"])
+    np.testing.assert_allclose(grid.weight[:, 0], [0.5, 0.5, 0.0])
+    assert abs(abs(grid.value["offset_deg"][0]) - 180.0) < 1e-9
+    np.testing.assert_allclose(grid.between["offset_deg"][0], 1.0)
+    assert grid.failures == ("C: singular",)
+    with pytest.raises(AllMaskedError, match="no systematics model"):
+        fit_phase_grid([None], ["A"])
+    with pytest.raises(ParameterError, match="one name per fit"):
+        fit_phase_grid([a], ["A", "B"])
+
+
+def test_planet_quantity_reads_the_joint_fit():
+    jf = _joint(1.0, 1, 10, 5e-4, 1e-5, radius=(0.1, 0.001))
+    assert planet_quantity(jf, "transit_depth") == pytest.approx((0.01, 2e-4))
+    assert planet_quantity(jf, "max_flux") == (5e-4, 1e-5)
+    assert np.isnan(planet_quantity(SimpleNamespace(summary=None, fitted_radius=False),
+                                    "amplitude")[0])
