@@ -32,7 +32,7 @@ from .leastsq import weighted_lstsq
 from .rednoise import beta_factor, linearised_refit, residual_permutation
 
 __all__ = ["FitLinearisation", "DepthErrors", "ERROR_KINDS", "linearise_fit", "depth_errors",
-           "depth_response", "inherited_variance"]
+           "depth_response", "inherited_variance", "event_alone_error"]
 
 #: Depth errors a product may carry.
 ERROR_KINDS = ("covariance", "beta", "permutation", "largest")
@@ -166,6 +166,29 @@ def linearise_fit(result, basis, template, variance, *, basis_derivatives=None,
     return FitLinearisation(jacobian=J, parameters=p, depth_gradient=grad, weights=w,
                             fitted=fitted, blocks=(nb, len(grad_event), shape_cols.shape[1],
                                                    geo.shape[0]))
+
+
+def event_alone_error(linearisation):
+    """Depth error the fit would have with nothing but a constant beside the event.
+
+    From the linearisation's constant and depth columns only (unscaled): the
+    reference against which a systematics model's depth error says how far
+    the model's columns trade with the event (the square of their ratio is the
+    depth's variance inflation factor, common practice for collinear
+    regressors).  With the planet's flux fitted, the planet's columns stand
+    in for the depth.
+
+    Returns
+    -------
+    float
+    """
+    nb, ne = linearisation.blocks[:2] if linearisation.blocks else (1, 1)
+    use = linearisation.fitted
+    cols = np.r_[0, np.arange(nb, nb + ne)]
+    J = linearisation.jacobian[use][:, cols]
+    _, cov = weighted_lstsq(J, np.zeros(int(use.sum())), linearisation.weights[use])
+    g = linearisation.depth_gradient[cols]
+    return float(np.sqrt(max(g @ cov @ g, 0.0)))
 
 
 def depth_response(linearisation):

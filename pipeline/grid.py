@@ -34,7 +34,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from .errors import AllMaskedError, LightledgerError, ParameterError
-from .fiterrors import ERROR_KINDS, depth_errors, linearise_fit
+from .fiterrors import ERROR_KINDS, depth_errors, event_alone_error, linearise_fit
 from .inherited import inherited_error
 from .limbfit import fit_limb_darkening
 from .selection import CRITERIA, information_criteria, marginalise, model_weights
@@ -198,6 +198,13 @@ class GridFit:
     failures: tuple
 
 
+#: Largest ratio of a fit's depth error to that of the event alone (with only a
+#: constant beside it) for which the model is said to measure the depth: a
+#: variance inflation factor of 100, far beyond the 10 that flags
+#: collinear regressors (common practice).
+MAX_ERROR_INFLATION = 10.0
+
+
 def _shared_mask(models, inputs_list, base):
     """Exposures where any model's columns (at its first grid values) are not finite."""
     bad = base.copy()
@@ -295,7 +302,7 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     total = len(set(owner)) + n_models
     done = 0
 
-    def record(m, c, res, errs, inherited=0.0):
+    def record(m, c, res, errs, lin, inherited=0.0):
         label = "white light" if c == 0 else f"channel {c - 1}"
         if res.n_points <= res.n_params:
             failures.append(f"{specs[m].name} ({label}): {res.n_params} parameters for "
@@ -303,6 +310,12 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
             return False
         if not (np.isfinite(res.depth) and np.isfinite(errs.pick(error_kind))):
             failures.append(f"{specs[m].name} ({label}): the depth or its error is not finite")
+            return False
+        inflation = errs.covariance / (event_alone_error(lin) * max(res.error_scale, 1.0))
+        if inflation > MAX_ERROR_INFLATION:
+            failures.append(f"{specs[m].name} ({label}): the depth is not determined (its error "
+                            f"is {inflation:.0f} times that of the event alone: the model's "
+                            f"systematics can mimic the event)")
             return False
         fits[m][c] = res
         table["chi2"][m, c] = res.chi2
@@ -328,7 +341,8 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
             failures.append(f"{specs[m].white_name} (white light): {exc}")
             wf = None
         if wf is not None and not record(m, 0, wf.result, depth_errors(
-                wf.result, wf.linearisation, curves.white_flux, n_shifts=n_shifts)):
+                wf.result, wf.linearisation, curves.white_flux, n_shifts=n_shifts),
+                wf.linearisation):
             wf = None
         white_fits[m] = wf
         done += 1
@@ -408,7 +422,7 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
                 continue
             res = replace(res, systematics=res.systematics * g, model=res.model * g,
                           star=None if res.star is None else res.star * g)
-            record(m, 1 + j, res, errs, float(np.sqrt(extra)))
+            record(m, 1 + j, res, errs, lin, float(np.sqrt(extra)))
         done += 1
         if progress is not None:
             progress(done, total, f"channels: {specs[m].name}")

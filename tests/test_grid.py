@@ -124,3 +124,29 @@ def test_grid_bookkeeping(fitted):
     # every fit has its three errors; the permutation error was computed
     assert np.all(np.isfinite(grid.error_permutation[ok]))
     assert np.all(grid.error_beta[ok] >= grid.error_covariance[ok])
+
+
+def test_a_model_whose_systematics_mimic_the_event_gets_no_weight():
+    # A decorrelation covariate shaped like the transit (the template itself) makes
+    # the depth collinear with a systematics column (at 30 times the noise, the
+    # columns' 1 % difference through the multiplicative model is not seen): its error
+    # inflates far beyond the variance-inflation factor of 10 that flags collinear
+    # regressors (common practice), so the model is reported as failed and weighs
+    # nothing, while the same model without it measures the depth.
+    from lightledger.pipeline.whitelight import event_template
+    curves, event, truth, ref = _curves("exponential", 0)
+    rng = np.random.default_rng(5)
+    k = 30.0
+    noisy = dict(white_flux=curves.white_flux + (k - 1) * np.sqrt(curves.white_variance)
+                 * rng.standard_normal(curves.white_flux.shape),
+                 white_variance=curves.white_variance * k * k,
+                 flux=curves.flux + (k - 1) * np.sqrt(curves.variance)
+                 * rng.standard_normal(curves.flux.shape), variance=curves.variance * k * k)
+    shape = event_template(curves.inputs.time, event)
+    cov = dict(curves.inputs.covariates, dx=shape)
+    curves = dataclasses.replace(curves, inputs=dataclasses.replace(curves.inputs, covariates=cov),
+                                 **noisy)
+    grid = fit_grid(parse_grid(["visit1+scan+ramp", "visit1+scan+ramp+dx"]), curves, event,
+                    n_shifts=0, free=())
+    assert np.all(grid.weight[1] == 0) and np.all(grid.weight[0] == 1)
+    assert any("the depth is not determined" in f for f in grid.failures)
