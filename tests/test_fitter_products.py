@@ -101,7 +101,9 @@ def test_coefficients_are_the_fits_covariance(which, request):
         # the depth and its error are those of the top model in DEPTHS
         assert row["model"] == d["best_model"] or d["channel"] == -1
         assert values[k] == pytest.approx(float(d["depth_best"]), rel=1e-9)
-        assert np.sqrt(c[k, k]) == pytest.approx(float(d["error_covariance"]), rel=1e-6)
+        # (a channel's error_covariance adds what it inherits from the white fit)
+        assert np.hypot(np.sqrt(c[k, k]), float(d["error_inherited"])) == pytest.approx(
+            float(d["error_covariance"]), rel=1e-6)
         assert values[0] > 0                                     # the flux level, electrons
     # the white light's free mid-time: its value and error as in the header and GRID
     white = coefs[coefs["channel"] == -1][0]
