@@ -34,6 +34,12 @@ from .rednoise import beta_factor, linearised_refit, residual_permutation
 __all__ = ["FitLinearisation", "DepthErrors", "ERROR_KINDS", "linearise_fit", "depth_errors",
            "depth_response", "inherited_variance", "event_alone_error"]
 
+#: Width (in its logarithm) of the Gaussian that holds each shape parameter (a time
+#: scale) near its chosen value in the linearised errors: a time scale the light
+#: curve does not constrain contributes the depth's change over a factor e**2, not
+#: a first-order extrapolation over many e-folds.
+SHAPE_LOG_PRIOR = 2.0
+
 #: Depth errors a product may carry.
 ERROR_KINDS = ("covariance", "beta", "permutation", "largest")
 
@@ -68,18 +74,31 @@ class FitLinearisation:
     fitted: np.ndarray
     blocks: tuple = ()
 
-    def covariance(self, scale=1.0):
-        """Covariance of the parameters, :math:`(J^T W J)^{-1}` times ``scale**2``."""
+    def _system(self, prior=True):
+        """The fitted rows of the Jacobian and their weights, with (``prior``) one row per
+        shape parameter holding it within :data:`SHAPE_LOG_PRIOR` of its value."""
         use = self.fitted
-        _, cov = weighted_lstsq(self.jacobian[use], np.zeros(int(use.sum())), self.weights[use])
+        J, w = self.jacobian[use], self.weights[use]
+        ns = self.blocks[2] if self.blocks and prior else 0
+        if ns:
+            first = self.blocks[0] + self.blocks[1]
+            rows = np.zeros((ns, J.shape[1]))
+            rows[np.arange(ns), first + np.arange(ns)] = 1.0
+            J = np.concatenate([J, rows])
+            w = np.concatenate([w, np.full(ns, SHAPE_LOG_PRIOR ** -2)])
+        return J, w
+
+    def covariance(self, scale=1.0, prior=True):
+        """Covariance of the parameters, :math:`(J^T W J + P)^{-1}` times ``scale**2``
+        (``P`` the shape parameters' prior precision, 0 without ``prior``)."""
+        J, w = self._system(prior)
+        _, cov = weighted_lstsq(J, np.zeros(J.shape[0]), w)
         return cov * float(scale) ** 2
 
-    def depth_variance(self):
-        """Unscaled variance of the depth from :math:`(J^T W J)^{-1}` on the fitted exposures."""
-        use = self.fitted
-        _, cov = weighted_lstsq(self.jacobian[use], np.zeros(int(use.sum())), self.weights[use])
+    def depth_variance(self, prior=True):
+        """Unscaled variance of the depth from :meth:`covariance` on the fitted exposures."""
         g = self.depth_gradient
-        return float(g @ cov @ g)
+        return float(g @ self.covariance(prior=prior) @ g)
 
 
 def linearise_fit(result, basis, template, variance, *, basis_derivatives=None,
@@ -208,7 +227,7 @@ def depth_response(linearisation):
     use = linearisation.fitted
     J = linearisation.jacobian[use]
     w = linearisation.weights[use]
-    _, cov = weighted_lstsq(J, np.zeros(int(use.sum())), w)
+    cov = linearisation.covariance()
     h = np.zeros(use.size)
     h[use] = (linearisation.depth_gradient @ cov @ J.T) * w
     return h

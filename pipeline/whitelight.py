@@ -320,9 +320,7 @@ def _event_errors(lin, free, scale):
     """One-sigma errors of the free event parameters from the linearisation."""
     if not free:
         return {}
-    from .leastsq import weighted_lstsq
-    use = lin.fitted
-    _, cov = weighted_lstsq(lin.jacobian[use], np.zeros(int(use.sum())), lin.weights[use])
+    cov = lin.covariance()              # the time scales held as for the depth's error
     k = lin.jacobian.shape[1] - len(free)
     return {name: float(np.sqrt(cov[k + j, k + j]) * scale) for j, name in enumerate(free)}
 

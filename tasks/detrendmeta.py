@@ -30,7 +30,6 @@ shapes and event, so theirs are conditional on them.
 import numpy as np
 from astropy.table import Table
 
-from lightledger.pipeline.leastsq import weighted_lstsq
 
 __all__ = ["DETRENDED_COLUMNS", "DEPTHS_COLUMNS", "GRID_COLUMNS", "COEFFICIENT_COLUMNS",
            "describe", "fitted_event", "event_cards", "coefficients", "coefficients_table"]
@@ -224,8 +223,7 @@ def coefficients(fit, white=None):
         nonlinear = [k for k, _ in fit.shapes]
         n_lin = lin.parameters.size - len(nonlinear)
         if n_lin in (coef.size, coef.size + 1):
-            use = lin.fitted
-            _, cov = weighted_lstsq(lin.jacobian[use], np.zeros(int(use.sum())), lin.weights[use])
+            cov = lin.covariance()      # as the depth error (time scales held within their prior)
             has_depth = n_lin == coef.size + 1
             keep = list(range(n_lin))
             extra = [(j, k) for j, k in enumerate(nonlinear) if k.startswith("event.")]

@@ -10,6 +10,7 @@ Kreidberg et al. 2014 (channels divided by the white light's systematics).
 from types import SimpleNamespace
 
 import numpy as np
+import pytest
 
 from lightledger.pipeline.eventfit import fit_event
 from lightledger.pipeline.fiterrors import depth_response, linearise_fit
@@ -72,3 +73,27 @@ def test_common_mode_error_matches_monte_carlo():
     total = np.median(np.sqrt(own ** 2 + inh ** 2))
     assert abs(scatter / total - 1) < 0.12, (scatter, total, np.median(own), np.median(inh))
     assert scatter > 1.3 * np.median(own), (scatter, np.median(own))
+
+
+def test_an_unconstrained_time_scale_adds_a_bounded_error():
+    # A time scale the light curve cannot tell (its column a hair from the event's)
+    # would extrapolate the depth's error linearly over many e-folds; the linearised
+    # errors hold each time scale within SHAPE_LOG_PRIOR (in its logarithm) of its
+    # value, the Gaussian-prior (Laplace) covariance (J^T W J + P)^-1 (common
+    # practice), computed here independently with numpy's inverse.
+    from lightledger.pipeline.fiterrors import SHAPE_LOG_PRIOR, FitLinearisation
+    rng = np.random.default_rng(2)
+    ones = np.ones(N)
+    depth_col = -S_TEMPLATE
+    shape_col = 0.5 * depth_col + 1e-9 * rng.standard_normal(N)
+    J = np.column_stack([ones, depth_col, shape_col])
+    w = np.full(N, 1e4)
+    lin = FitLinearisation(jacobian=J, parameters=np.zeros(3), depth_gradient=np.array([0, 1, 0.]),
+                           weights=w, fitted=np.ones(N, bool), blocks=(1, 1, 1, 0))
+    info = J.T @ (w[:, None] * J) + np.diag([0, 0, SHAPE_LOG_PRIOR ** -2])
+    expect = np.linalg.inv(info)[1, 1]
+    assert lin.depth_variance() == pytest.approx(expect, rel=1e-6)
+    # the shape moves the model like half a unit of depth: at most 0.5 * prior more
+    cond = 1 / (depth_col @ (w * depth_col) - (ones @ (w * depth_col)) ** 2 / w.sum())
+    assert lin.depth_variance() < cond + (0.5 * SHAPE_LOG_PRIOR) ** 2
+    assert lin.depth_variance(prior=False) > 1e3 * lin.depth_variance()
