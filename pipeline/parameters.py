@@ -319,9 +319,19 @@ STAGES = {
               "sinusoids) hidden by the eclipse, depth at mid-eclipse; 'systematic' = independent "
               "sinusoids multiplying the systematics", choices=("planet", "systematic")),
     ) + _PHASE_CURVE),
-    "joint": StageSpec("joint", "2", "the visits of a programme fitted together: each its own "
-                       "systematics (its [stages.detrend]), one planet per channel",
-                       _PHASE_CURVE),
+    "joint": StageSpec("joint", "3", "the visits of a programme fitted together: each its own "
+                       "systematics, one planet per channel, over a grid of systematics models",
+                       (Param("models", (), "strs",
+                              "systematics models of the joint fit's grid, each fitted to every "
+                              "visit (tokens as detrend.models; common-mode tokens are not "
+                              "fitted jointly); empty = the default phase-curve grid of the "
+                              "visits' kind (a programme of scans and stares pairs the k-th "
+                              "model of each)", validate=_check_model),
+                        Param("criterion", "bic", "str",
+                              "information criterion that ranks and weights the joint fit's "
+                              "models: 'bic' (Schwarz) or 'aic' (Akaike)",
+                              choices=("bic", "aic")))
+                       + _PHASE_CURVE),
 }
 
 #: Stages in the order the reduction runs them.

@@ -58,7 +58,7 @@ from .programmepage import write_programme_page
 
 __all__ = ["PROGRAMME_SCHEMA", "Programme", "load_programme", "is_programme", "JointDetrend",
            "ProgrammeResult", "reduce_programme", "joint_dir", "joint_identity", "joint_facts",
-           "joint_params", "write_programme_page"]
+           "joint_params", "joint_members", "write_programme_page"]
 
 PROGRAMME_SCHEMA = {
     "programme": {
@@ -232,6 +232,55 @@ def joint_dir(programme, visit_text, bin_identities):
     return programme.notebook / f"joint-{joint_identity(programme, visit_text, bin_identities)[:10]}"
 
 
+def _kind(lc):
+    """'stare' when no exposure of a light-curve table was scanned, else 'scan'."""
+    return "stare" if bool(np.all(np.asarray(lc["scan_direction"]) == 0)) else "scan"
+
+
+def joint_members(params, kinds):
+    """The joint fit's grid: ``([(label, [model string per visit]), ...], warnings)``.
+
+    Every member fits each visit with the same model string, so the grid
+    costs one joint fit per model (not one per combination of the visits'
+    models).  ``joint.models`` names them; empty, the default phase-curve grid
+    of the visits' kind (scans or stares); a programme of scans and stares
+    pairs the k-th model of each kind's grid.  Common-mode models are left out
+    (a joint fit divides no white light out of its channels), with a warning.
+
+    Parameters
+    ----------
+    params : dict
+        The joint stage's parameters.
+    kinds : list of {"scan", "stare"}
+        Each visit's kind.
+    """
+    from lightledger.pipeline.modelspec import (DEFAULT_PHASE_SCAN_GRID,
+                                                DEFAULT_PHASE_STARE_GRID, parse_grid)
+
+    defaults = {"scan": DEFAULT_PHASE_SCAN_GRID, "stare": DEFAULT_PHASE_STARE_GRID}
+    if params["models"]:
+        grids = {k: tuple(params["models"]) for k in defaults}
+    else:
+        grids = defaults
+    kept, dropped = {}, []
+    for kind, texts in grids.items():
+        specs = parse_grid(texts)
+        kept[kind] = [s.name for s in specs if not s.common_mode]
+        dropped += [s.name for s in specs if s.common_mode and s.name not in dropped]
+    warnings = ([f"joint.models: common-mode models are not fitted jointly (no white light is "
+                 f"divided out of a joint fit): {', '.join(dropped)}"] if dropped else [])
+    size = min(len(kept[k]) for k in set(kinds))
+    if size == 0:
+        raise LightledgerError("joint.models: the joint fit needs at least one model without a "
+                               "common-mode token (cm-sys, cm-res)")
+    members = []
+    for k in range(size):
+        strings = [kept[kind][k] for kind in kinds]
+        label = strings[0] if len(set(strings)) == 1 else " | ".join(strings)
+        members.append((label, strings))
+    return members, warnings
+
+
 class JointDetrend(FolderTask, luigi.Task):
     """Fit every visit's systematics and one shared planet per channel.
 
@@ -332,6 +381,7 @@ class JointDetrend(FolderTask, luigi.Task):
         return super().on_failure(exception)
 
     def run(self):
+        from lightledger.pipeline.phasegrid import fit_phase_grid
         from lightledger.pipeline.programme import fit_programme, quantity
 
         from .lightcurves import read_lightcurves
@@ -342,7 +392,7 @@ class JointDetrend(FolderTask, luigi.Task):
         visits = [visit_config(v, self.visit_text) for v in prog.visits]
         inputs = [task.final_product() for task in self.requires()]
         self.folder.mkdir(parents=True, exist_ok=True)
-        lcs, curves, channels = [], [], None
+        lcs, channels = [], None
         event = dict(prog.planet, kind="phase-curve")
         for visit, path in zip(visits, inputs):
             lc, ch = read_lightcurves(path)
@@ -353,9 +403,10 @@ class JointDetrend(FolderTask, luigi.Task):
                                        f"{visits[0].path}; give the visits the same "
                                        "[stages.bin] edges")
             lcs.append(lc)
-            curves.append(visit_curves(lc, event, visit.stages["detrend"], visit.name))
         planet = planet_model(event, prog.params)
-        n_fits = (len(channels) + 1) * (len(visits) + 1 if len(visits) > 1 else 1)
+        members, warnings = joint_members(prog.params, [_kind(lc) for lc in lcs])
+        n_curves = len(channels) + 1
+        n_fits = n_curves * (len(members) + (len(visits) if len(visits) > 1 else 0))
         done = [0]
 
         def step(what):
@@ -363,27 +414,41 @@ class JointDetrend(FolderTask, luigi.Task):
                 self.progress(done[0] + d, n_fits, what)
             return report
 
-        fit = fit_programme(curves, planet, progress=step("joint fit"))
-        done[0] += len(channels) + 1
+        fits, failures, curves_of = [], [], []
+        for label, strings in members:
+            curves = [visit_curves(lc, event, dict(v.stages["detrend"], models=(m,)), v.name)
+                      for lc, v, m in zip(lcs, visits, strings)]
+            curves_of.append(curves)
+            try:
+                fits.append(fit_programme(curves, planet, progress=step(f"joint fit, {label}")))
+            except (LightledgerError, np.linalg.LinAlgError) as exc:
+                fits.append(None)
+                failures.append(f"{label}: {exc}")
+            done[0] += n_curves
+        grid = fit_phase_grid(fits, [label for label, _ in members],
+                              criterion=prog.params["criterion"], failures=failures)
+        top = grid.top_fit()
         alone = None
         if len(visits) > 1:
+            # each visit alone, with the white light's top-weighted model (for comparison)
             alone = []
-            for c in curves:
+            for c in curves_of[int(grid.best[0])]:
                 alone.append(fit_programme([c], planet, progress=step(f"{c.name} alone")))
-                done[0] += len(channels) + 1
+                done[0] += n_curves
         band = (float(lcs[0].meta.get("WLO", channels["wave_lo"][0])),
                 float(lcs[0].meta.get("WHI", channels["wave_hi"][-1])))
         prov = Provenance("joint", STAGES["joint"].version, self.identity_hash[:10], prog.params,
                           {relative_input(p, self.folder): product_digest(p) for p in inputs},
                           visit=prog.name)
         outputs, figs, metrics = write_phase_products(
-            self.folder, prov, fit, lcs, channels, band, planet, prog.params,
-            names=[v.name for v in visits], alone=alone)
+            self.folder, prov, top, lcs, channels, band, planet, prog.params,
+            names=[v.name for v in visits], alone=alone, grid=grid)
         if alone is not None:
             errs = [quantity(a.white, "eclipse_depth")[1] for a in alone]
             metrics["white eclipse depth error, best visit alone (ppm)"] = (
                 round(float(np.nanmin(errs)) * 1e6, 1) if np.any(np.isfinite(errs)) else None)
-        self._write_entry(prog, inputs, outputs, metrics, figs, started)
+        warnings += [f"joint grid: model not fitted: {line}" for line in failures]
+        self._write_entry(prog, inputs, outputs, metrics, figs, started, warnings=warnings)
 
     def _write_entry(self, prog, inputs, outputs, metrics, figs, started, warnings=()):
         """entry.json with the fields of a visit stage's entry (audit recomputes the identity)."""

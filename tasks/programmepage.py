@@ -76,6 +76,22 @@ def write_programme_page(prog, folder):
         parts.append("<h3>Planet per channel (ppm, degrees; channel -1 = white band)</h3>"
                      + _html_table(tab, cols))
         try:
+            grid = Table.read(planet, hdu="GRID")
+        except (KeyError, ValueError):
+            grid = None
+        if grid is not None:
+            g_cols = [("model", None, 0), ("rank", 1, 0), ("weight", 1, 3), ("n_params", 1, 0),
+                      ("chi2", 1, 1), ("bic", 1, 1), ("aic", 1, 1), ("transit_depth", 1e6, 0),
+                      ("transit_depth_error", 1e6, 0), ("eclipse_depth", 1e6, 0),
+                      ("eclipse_depth_error", 1e6, 0), ("amplitude", 1e6, 0),
+                      ("amplitude_error", 1e6, 0), ("offset_deg", 1, 1), ("status", None, 0)]
+            white = grid[grid["channel"] == -1]
+            white = white[np.argsort(np.asarray(white["rank"]), kind="stable")]
+            parts.append("<h3>Grid of systematics models (white band; ppm): every model fitted "
+                         "to every visit, ranked by the information criterion (weight); the "
+                         "planet per channel above is marginalised over it</h3>"
+                         + _html_table(white, g_cols))
+        try:
             alone = Table.read(planet, hdu="ALONE")
             cons = Table.read(planet, hdu="CONSISTENCY")
         except (KeyError, ValueError):

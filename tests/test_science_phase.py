@@ -21,6 +21,10 @@ pytestmark = pytest.mark.slow
 
 EDGES = [1.31, 1.45, 1.6, 1.78, 1.99]
 SETTINGS = [("bin", "edges", tuple(EDGES))]
+#: The programme's: a joint grid of two models keeps the suite short (the default grid is
+#: the benchmark's).
+JOINT_MODELS = ("visit1+orbit2+scan+ramp", "visit1+orbit1+scan+ramp")
+PROGRAMME_SETTINGS = SETTINGS + [("joint", "models", JOINT_MODELS)]
 
 
 @pytest.fixture(scope="module")
@@ -32,7 +36,7 @@ def pair(tmp_path_factory):
     programme = render("phase-pair", out, seed=2, n_orbits=3, n_exposures=3 * 9)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        result = reduce_programme(programme, settings=SETTINGS, workers=1)
+        result = reduce_programme(programme, settings=PROGRAMME_SETTINGS, workers=1)
     assert result.ok, "\n".join(result.messages)
     return out, programme, result
 
@@ -75,12 +79,34 @@ def test_programme_products_pages_and_truth(pair, science):
                   phasecurve.ALONE_COLUMNS, phasecurve.CONSISTENCY_COLUMNS):
         assert [c for c in table if f"`{c}`" not in readme] == []
 
+    # The joint grid: every model fitted to both visits, ranked per light curve, the planet
+    # marginalised over it (Wakeford et al. 2016: weights exp(-BIC/2) normalised, the
+    # weighted mean, an error adding the spread between models), checked against the GRID
+    # table the product carries; the programme page shows it.
+    planet = Table.read(result.final, hdu="PLANET")
+    grid = Table.read(result.final, hdu="GRID")
+    assert set(grid["model"]) == set(JOINT_MODELS) and len(grid) == 2 * len(planet)
+    for row in planet:
+        rows = grid[grid["channel"] == row["channel"]]
+        w = np.asarray(rows["weight"], float)
+        bic = np.asarray(rows["bic"], float)
+        assert abs(w.sum() - 1) < 1e-9
+        assert w == pytest.approx(np.exp(-(bic - bic.min()) / 2) / np.sum(np.exp(
+            -(bic - bic.min()) / 2)), rel=1e-9, abs=1e-15)
+        d, e = np.asarray(rows["eclipse_depth"], float), np.asarray(rows["eclipse_depth_error"],
+                                                                      float)
+        mean = np.sum(w * d)
+        assert row["eclipse_depth"] == pytest.approx(mean, rel=1e-9, abs=1e-12)
+        assert row["eclipse_depth_error"] == pytest.approx(
+            np.sqrt(np.sum(w * (e ** 2 + (d - mean) ** 2))), rel=1e-9)
+        assert row["best_model"] == rows["model"][np.argmax(w)]
+
     page = result.page.read_text(encoding="utf-8")
+    assert "Grid of systematics models" in page and all(m in page for m in JOINT_MODELS)
     for link in re.findall(r'href="([^"]+index\.html)"', page):
         assert (result.page.parent / link).is_file()
     assert page.count("index.html") == 2 and "Consistency" in page
 
-    planet = Table.read(result.final, hdu="PLANET")
     white = planet[planet["channel"] == -1][0]
     head = fits.getheader(out / "visit-eclipse" / "truth.fits", "CHANNELS")
     for col, key in (("eclipse_depth", "WECLIPSE"), ("night_flux", "WNIGHT")):
@@ -164,14 +190,14 @@ def test_tweak_of_one_visit_reruns_its_later_stages_and_the_joint_fit(pair):
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            result = reduce_programme(programme, settings=SETTINGS, workers=1)
+            result = reduce_programme(programme, settings=PROGRAMME_SETTINGS, workers=1)
         assert result.ok, "\n".join(result.messages)
         ran = result.ran_tasks
         assert {f for f, _ in ran} == {"ExtractReference", "ExtractChunk", "Extract", "Bin",
                                         "JointDetrend"}
         assert all(v == str(visit.resolve()) for f, v in ran if f != "JointDetrend")
         assert [v for f, v in ran if f == "JointDetrend"] == [str(programme.resolve())]
-        again = reduce_programme(programme, settings=SETTINGS, workers=1)
+        again = reduce_programme(programme, settings=PROGRAMME_SETTINGS, workers=1)
         assert again.ok and again.ran_tasks == []
     finally:
         visit.write_text(text)
@@ -225,7 +251,7 @@ def test_joint_stage_is_a_notebook_stage_forced_audited_compared_pruned(pair):
     # ... and a forced run
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        forced = reduce_programme(programme, settings=SETTINGS, workers=1, force=["joint"])
+        forced = reduce_programme(programme, settings=PROGRAMME_SETTINGS, workers=1, force=["joint"])
     assert forced.ok, "\n".join(forced.messages)
     assert forced.ran_tasks == [("JointDetrend", str(programme.resolve()))]
     old = [p for p in _joint_folders(notebook) if p.name.startswith(folder.name + ".superseded-")]
@@ -260,7 +286,7 @@ def test_joint_stage_is_a_notebook_stage_forced_audited_compared_pruned(pair):
 
 def _settings_text():
     from lightledger.tasks.base import settings_to_text
-    return settings_to_text(SETTINGS)
+    return settings_to_text(PROGRAMME_SETTINGS)
 
 
 def _chains(programme):
@@ -270,5 +296,26 @@ def _chains(programme):
     from lightledger.tasks.programme import load_programme
 
     text = settings_to_text(SETTINGS)
-    prog = load_programme(programme, SETTINGS)
+    prog = load_programme(programme, PROGRAMME_SETTINGS)
     return json.dumps([make_plan(visit_config(v, text), text).chain("bin") for v in prog.visits])
+
+
+def test_joint_grid_members():
+    # Which models the joint fit tries (the README's rule): the same model string for every
+    # visit; by default the phase-curve grid of the visits' kind, a programme of scans and
+    # stares pairing the k-th model of each; common-mode models (nothing divides a white
+    # light out of a joint fit) are left out with a warning.
+    from lightledger.pipeline.modelspec import DEFAULT_PHASE_SCAN_GRID, DEFAULT_PHASE_STARE_GRID
+    from lightledger.pipeline.parameters import resolve
+    from lightledger.tasks.programme import joint_members
+
+    params = resolve("joint")
+    members, warnings_ = joint_members(params, ["scan", "scan"])
+    assert [m for m, _ in members] == list(DEFAULT_PHASE_SCAN_GRID) and warnings_ == []
+    assert all(strings == [m, m] for m, strings in members)
+    members, _ = joint_members(params, ["scan", "stare"])
+    assert len(members) == min(len(DEFAULT_PHASE_SCAN_GRID), len(DEFAULT_PHASE_STARE_GRID))
+    assert members[0][1] == [DEFAULT_PHASE_SCAN_GRID[0], DEFAULT_PHASE_STARE_GRID[0]]
+    given = resolve("joint", {"models": ("visit1+ramp", "visit1+cm-sys")})
+    members, warnings_ = joint_members(given, ["stare", "stare"])
+    assert [m for m, _ in members] == ["visit1+ramp"] and "cm-sys" in warnings_[0]
