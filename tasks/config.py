@@ -653,7 +653,9 @@ def _load_visit(path, settings, problems):
             continue
         given += [(path, stage, key, value) for key, value in table.items()]
     for stage, key, value in settings or ():
-        shown = ("[" + ", ".join(f"{v:g}" for v in value) + "]" if isinstance(value, (list, tuple))
+        shown = ("[" + ", ".join(f"{v:g}" if isinstance(v, (int, float)) and not isinstance(v, bool)
+                                 else str(v) for v in value) + "]"
+                 if isinstance(value, (list, tuple))
                  else str(value).lower() if isinstance(value, bool) else value)
         given.append((f"--set {stage}.{key}={shown}", stage, key, value))
     stages = {stage: resolve(stage, None) for stage in STAGE_ORDER}

@@ -85,6 +85,19 @@ def test_valid_documents_load(visit_dir):
     assert visit.notebook == visit_dir / "notebook"
 
 
+def test_set_takes_a_list_of_model_strings(visit_dir):
+    # `--set detrend.models=A,B` as the command line parses it (parse_assignment): a list of
+    # strings is a value like any other (it once crashed while being echoed), and a bad
+    # model string is one line naming the option.
+    from lightledger.pipeline.parameters import parse_assignment
+
+    given = parse_assignment("detrend.models=visit1+scan+ramp,visit1+ramp")
+    visit = load_visit(visit_dir / "visit.toml", [given])
+    assert visit.stages["detrend"]["models"] == ("visit1+scan+ramp", "visit1+ramp")
+    with pytest.raises(ConfigError, match=r"--set detrend\.models=\[visit1\+nonsense\]"):
+        load_visit(visit_dir / "visit.toml", [("detrend", "models", ("visit1+nonsense",))])
+
+
 def test_missing_file_names_the_file(tmp_path):
     with pytest.raises(ConfigError, match=r"nothere\.toml: visit description not found"):
         load_visit(tmp_path / "nothere.toml")

@@ -172,7 +172,7 @@ def test_prune_removes_older_entries_nothing_current_needs(reduced, tmp_path, ca
     copy = _copy(visit.parent, tmp_path / "copy")
     notebook = copy.parent / "notebook"
     first = {p.name for p in notebook.glob("detrend-*")}
-    tweak = [("detrend", "permutation_shifts", 50)]
+    tweak = [("detrend", "models", ("visit1+scan+ramp",))]      # one model: a short fit
     assert _reduce(copy, settings=tweak).ran == ["Detrend"]
     assert _reduce(copy).ran == []                   # back to the first settings: reused
     assert prune(notebook, dry_run=True)[1] == []    # the last reduction's chain is current
