@@ -233,8 +233,11 @@ def joint_dir(programme, visit_text, bin_identities):
 
 
 def _kind(lc):
-    """'stare' when no exposure of a light-curve table was scanned, else 'scan'."""
-    return "stare" if bool(np.all(np.asarray(lc["scan_direction"]) == 0)) else "scan"
+    """'stare' when no usable exposure of a light-curve table was scanned, else 'scan'."""
+    from .lightcurves import usable_rows
+
+    direction = np.asarray(lc["scan_direction"])[usable_rows(lc)]
+    return "stare" if bool(np.all(direction == 0)) else "scan"
 
 
 def joint_members(params, kinds):
