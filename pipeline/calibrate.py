@@ -264,22 +264,9 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
     if scanning and destripe == "frame":
         raise ParameterError("destripe='frame' is for staring exposures; use 'off' or 'differences' for scans")
 
-    bias = _frame(_value(bias_adu, "adu", "bias_adu"), shape, "bias_adu", 0.0)
-    dark = _frame(_value(dark_rate, "electron / s", "dark_rate"), shape, "dark_rate", 0.0)
-    fl = _frame(flat, shape, "flat", 1.0)
-    badref = np.zeros(shape, bool) if bad_pixels is None else \
-        np.asarray(_frame(bad_pixels, shape, "bad_pixels", 0)) != 0
-    nl = None
-    if nonlinearity is not None:
-        nl = np.asarray(nonlinearity, dtype=float)
-        if nl.ndim == 2:
-            nl = nl[None]
-        if nl.shape[1:] != shape and nl.ndim == 3:
-            raise ParameterError(f"nonlinearity must have shape (K, {ny}, {nx}); got {nl.shape}")
-
-    ref_bad = ~np.isfinite(bias) | ~np.isfinite(dark) | ~np.isfinite(fl) | (fl <= 0)
-    if nl is not None:
-        ref_bad |= ~np.all(np.isfinite(nl), axis=0)
+    bias, dark, fl, badref, nl, ref_bad = reference_frames(
+        shape, bias_adu=bias_adu, dark_rate=dark_rate, flat=flat, bad_pixels=bad_pixels,
+        nonlinearity=nonlinearity)
 
     above = r - bias
     saturated = None
@@ -371,3 +358,43 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
     return CalibratedExposure(flux=flux, variance=var, bits=bits, background=bkg,
                               background_level=level, integration_time=float(t[-1]),
                               mid_time_offset=mid, flag_counts=dq.count_by_flag(bits))
+
+
+def reference_frames(shape, *, bias_adu, dark_rate, flat, bad_pixels, nonlinearity):
+    """Broadcast and check the reference frames of one subarray.
+
+    Parameters
+    ----------
+    shape : tuple of int
+        ``(ny, nx)`` of the subarray.
+    bias_adu, dark_rate, flat, bad_pixels, nonlinearity
+        As in :func:`calibrate_exposure` (scalars, frames or `None`).
+
+    Returns
+    -------
+    bias : ndarray, ADU
+    dark : ndarray, electron / s
+    flat : ndarray
+    listed_bad : ndarray of bool
+        Pixels the bad-pixel list names.
+    nonlinearity : ndarray of shape (K, ny, nx) or None
+    unusable : ndarray of bool
+        Pixels whose references are not finite, or whose flat is not positive.
+    """
+    ny, nx = shape
+    bias = _frame(_value(bias_adu, "adu", "bias_adu"), shape, "bias_adu", 0.0)
+    dark = _frame(_value(dark_rate, "electron / s", "dark_rate"), shape, "dark_rate", 0.0)
+    fl = _frame(flat, shape, "flat", 1.0)
+    badref = np.zeros(shape, bool) if bad_pixels is None else \
+        np.asarray(_frame(bad_pixels, shape, "bad_pixels", 0)) != 0
+    nl = None
+    if nonlinearity is not None:
+        nl = np.asarray(nonlinearity, dtype=float)
+        if nl.ndim == 2:
+            nl = nl[None]
+        if nl.shape[1:] != shape and nl.ndim == 3:
+            raise ParameterError(f"nonlinearity must have shape (K, {ny}, {nx}); got {nl.shape}")
+    unusable = ~np.isfinite(bias) | ~np.isfinite(dark) | ~np.isfinite(fl) | (fl <= 0)
+    if nl is not None:
+        unusable |= ~np.all(np.isfinite(nl), axis=0)
+    return bias, dark, fl, badref, nl, unusable

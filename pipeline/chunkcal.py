@@ -33,7 +33,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import mask as dq
-from .calibrate import BACKGROUND_METHODS, RAMP_METHODS, _frame, _value, calibrate_exposure
+from .calibrate import (BACKGROUND_METHODS, RAMP_METHODS, _frame, _value, calibrate_exposure,
+                        reference_frames)
 from .clipping import _clipped_mean_columns
 from .destripe import destripe as _destripe
 from .detector import linearize
@@ -242,21 +243,9 @@ def _staring_block(raw, setup, *, bias_adu, dark_rate, flat, nonlinearity, bad_p
     rn = _value(read_noise, "electron", "read_noise")
     if np.any(~np.isfinite(rn)) or np.any(rn < 0):
         raise ParameterError("read_noise must be finite and >= 0 electrons per read")
-    bias = _frame(_value(bias_adu, "adu", "bias_adu"), shape, "bias_adu", 0.0)
-    dark = _frame(_value(dark_rate, "electron / s", "dark_rate"), shape, "dark_rate", 0.0)
-    fl = _frame(flat, shape, "flat", 1.0)
-    badref = np.zeros(shape, bool) if bad_pixels is None else \
-        np.asarray(_frame(bad_pixels, shape, "bad_pixels", 0)) != 0
-    nl = None
-    if nonlinearity is not None:
-        nl = np.asarray(nonlinearity, dtype=float)
-        if nl.ndim == 2:
-            nl = nl[None]
-        if nl.shape[1:] != shape and nl.ndim == 3:
-            raise ParameterError(f"nonlinearity must have shape (K, {ny}, {nx}); got {nl.shape}")
-    ref_bad = ~np.isfinite(bias) | ~np.isfinite(dark) | ~np.isfinite(fl) | (fl <= 0)
-    if nl is not None:
-        ref_bad |= ~np.all(np.isfinite(nl), axis=0)
+    bias, dark, fl, badref, nl, ref_bad = reference_frames(
+        shape, bias_adu=bias_adu, dark_rate=dark_rate, flat=flat, bad_pixels=bad_pixels,
+        nonlinearity=nonlinearity)
 
     # reads first, then exposures: the block is one tall frame of n * ny rows for the
     # per-pixel steps
