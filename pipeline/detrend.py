@@ -36,7 +36,7 @@ from .diagnostics import BinnedRms, binned_rms
 from .errors import ParameterError
 from .eventfit import DetrendResult, fit_event, with_shapes
 from .eventshapes import eclipse_template, phase_curve_basis, transit_template
-from .shapesearch import search_shapes
+from .shapesearch import ramp_limits, search_shapes
 from .systematics import (DEFAULT_TAU_GRID, OrbitRamp, SystematicsInputs, orbit_phase_basis,
                           polynomial_basis, ramp_basis, scan_direction_basis, standard_model)
 
@@ -101,7 +101,8 @@ def fit_light_curve(inputs, flux, variance, template, model, *, mask=None, **eve
                          **event_options)
 
     params = model.shape_params()
-    search = search_shapes(evaluate, params, limits=_ramp_limits(inputs, model, mask))
+    limits = ramp_limits(inputs, model, mask, (OrbitRamp,))
+    search = search_shapes(evaluate, params, limits=limits)
     result = search.result
     if not params:
         return result
@@ -163,22 +164,6 @@ def fit_at_fitted_radius(fit, template_of, flux, variance, template, *, mask=Non
         template = new
         res = fit(flux, variance, template, mask=mask)
     return res
-
-
-def _ramp_limits(inputs, model, mask):
-    """The time scales an orbit ramp can be told from: from the first exposure's time
-    after its orbit's start to the longest time into an orbit (days).  A shorter
-    ramp is an offset of the first exposure, a longer one a slope."""
-    if inputs.orbit_time is None:
-        return {}
-    t = np.asarray(inputs.orbit_time, float)
-    keep = np.isfinite(t) & (t > 0)
-    if mask is not None:
-        keep &= ~np.asarray(mask, bool)
-    if not keep.any():
-        return {}
-    span = (float(t[keep].min()), float(t[keep].max()))
-    return {f"{c.label}.tau": span for c in model.components if isinstance(c, OrbitRamp)}
 
 
 def tied_phase_curve(time, t0, period):

@@ -30,7 +30,7 @@ from scipy.optimize import minimize_scalar
 
 from .errors import ParameterError
 
-__all__ = ["ShapeSearch", "search_shapes"]
+__all__ = ["ShapeSearch", "ramp_limits", "search_shapes"]
 
 
 @dataclass(frozen=True)
@@ -180,3 +180,37 @@ def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None):
                     if grids[n].size > 1 and values[n] in (float(grids[n][0]), float(grids[n][-1])))
     extended = tuple(n for n, _ in params if added[n])
     return ShapeSearch(values, run(values), from_data, count[0], at_edge, extended)
+
+
+def ramp_limits(inputs, model, mask, ramp_types):
+    """Limits of the orbit ramps' time scales that the exposures can tell apart (days).
+
+    From the first fitted exposure's time into its orbit to the longest: a shorter
+    ramp is an offset of the first exposure, a longer one a slope.
+
+    Parameters
+    ----------
+    inputs : SystematicsInputs
+        Its ``orbit_time`` (days since each orbit's start, or `None`).
+    model : SystematicsModel
+    mask : array_like of bool or None
+        True where an exposure is not fitted.
+    ramp_types : tuple of type
+        Component classes whose ``tau`` is limited.
+
+    Returns
+    -------
+    dict
+        ``{"<label>.tau": (shortest, longest)}`` for ``search_shapes(limits=)``;
+        empty when no exposure has a time into its orbit.
+    """
+    if inputs.orbit_time is None:
+        return {}
+    t = np.asarray(inputs.orbit_time, float)
+    keep = np.isfinite(t) & (t > 0)
+    if mask is not None:
+        keep &= ~np.asarray(mask, bool)
+    if not keep.any():
+        return {}
+    span = (float(t[keep].min()), float(t[keep].max()))
+    return {f"{c.label}.tau": span for c in model.components if isinstance(c, ramp_types)}

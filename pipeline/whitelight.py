@@ -31,7 +31,7 @@ from .errors import ParameterError
 from .eventfit import fit_event, with_shapes
 from .fiterrors import linearise_fit
 from .components import TiedOrbitRamp
-from .shapesearch import search_shapes
+from .shapesearch import ramp_limits, search_shapes
 from .systematics import OrbitRamp
 from .transit import eclipse_flux, transit_flux
 
@@ -208,7 +208,7 @@ def fit_white(inputs, flux, variance, model, event, *, free=("t0",), mask=None, 
                          **event_options)
 
     shapes, chi_prev = {}, np.inf
-    limits = _ramp_limits(inputs, model, mask)
+    limits = ramp_limits(inputs, model, mask, (OrbitRamp, TiedOrbitRamp))
     for _cycle in range(max(int(max_cycles), 1)):
         search = search_shapes(lambda values: fit(current, values), params, limits=limits)
         shapes = search.values
@@ -290,23 +290,6 @@ def radius_fixed_point(template_of, fit, event, template, result, *, max_iter=8,
         result = fit(template)
         n += 1
     return event, template, result, n
-
-
-def _ramp_limits(inputs, model, mask):
-    """The time scales an orbit ramp (free or tied amplitudes) can be told from: from the
-    first fitted exposure's time into its orbit to the longest (days); a shorter ramp is
-    an offset of the first exposure, a longer one a slope (as for the single-model fit)."""
-    if inputs.orbit_time is None:
-        return {}
-    t = np.asarray(inputs.orbit_time, float)
-    keep = np.isfinite(t) & (t > 0)
-    if mask is not None:
-        keep &= ~np.asarray(mask, bool)
-    if not keep.any():
-        return {}
-    span = (float(t[keep].min()), float(t[keep].max()))
-    return {f"{c.label}.tau": span for c in model.components
-            if isinstance(c, (OrbitRamp, TiedOrbitRamp))}
 
 
 def _ramp_tau(model, shapes):
