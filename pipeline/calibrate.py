@@ -243,16 +243,7 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         raise ParameterError(f"reads_adu must have shape (n_reads >= 2, ny, nx); got {r.shape}")
     n_reads, ny, nx = r.shape
     shape = (ny, nx)
-    t = _value(read_times, "s", "read_times")
-    if t.shape != (n_reads,) or not np.all(np.isfinite(t)) or np.any(np.diff(t) <= 0):
-        raise ParameterError(f"read_times must be finite, strictly increasing, shape ({n_reads},)")
-    t = t - t[0]
-    g = float(_value(gain, "electron / adu", "gain"))
-    if not (np.isfinite(g) and g > 0):
-        raise ParameterError(f"gain must be a finite number > 0 electrons per ADU; got {gain}")
-    rn = _value(read_noise, "electron", "read_noise")
-    if np.any(~np.isfinite(rn)) or np.any(rn < 0):
-        raise ParameterError("read_noise must be finite and >= 0 electrons per read")
+    t, g, rn = detector_numbers(read_times, n_reads, gain, read_noise)
     v = float(_value(scan_velocity, "1 / s", "scan_velocity"))
     if not np.isfinite(v):
         raise ParameterError(f"scan_velocity must be a finite number of rows/s (0 = staring); got {scan_velocity}")
@@ -398,3 +389,26 @@ def reference_frames(shape, *, bias_adu, dark_rate, flat, bad_pixels, nonlineari
     if nl is not None:
         unusable |= ~np.all(np.isfinite(nl), axis=0)
     return bias, dark, fl, badref, nl, unusable
+
+
+def detector_numbers(read_times, n_reads, gain, read_noise):
+    """Check the read times, gain and read noise of a ramp of ``n_reads`` reads.
+
+    Returns
+    -------
+    t : ndarray, s
+        Read times since the first read.
+    gain : float, electron / ADU
+    read_noise : float or ndarray, electron per read
+    """
+    t = _value(read_times, "s", "read_times")
+    if t.shape != (n_reads,) or not np.all(np.isfinite(t)) or np.any(np.diff(t) <= 0):
+        raise ParameterError(f"read_times must be finite, strictly increasing, shape ({n_reads},)")
+    t = t - t[0]
+    g = float(_value(gain, "electron / adu", "gain"))
+    if not (np.isfinite(g) and g > 0):
+        raise ParameterError(f"gain must be a finite number > 0 electrons per ADU; got {gain}")
+    rn = _value(read_noise, "electron", "read_noise")
+    if np.any(~np.isfinite(rn)) or np.any(rn < 0):
+        raise ParameterError("read_noise must be finite and >= 0 electrons per read")
+    return t, g, rn

@@ -34,7 +34,7 @@ import numpy as np
 
 from . import mask as dq
 from .calibrate import (BACKGROUND_METHODS, RAMP_METHODS, _frame, _value, calibrate_exposure,
-                        reference_frames)
+                        detector_numbers, reference_frames)
 from .clipping import _clipped_mean_columns
 from .destripe import destripe as _destripe
 from .detector import linearize
@@ -233,16 +233,7 @@ def _staring_block(raw, setup, *, bias_adu, dark_rate, flat, nonlinearity, bad_p
     """
     n, n_reads, ny, nx = raw.shape
     shape = (ny, nx)
-    t = _value(np.asarray(setup.read_times), "s", "read_times")
-    if t.shape != (n_reads,) or not np.all(np.isfinite(t)) or np.any(np.diff(t) <= 0):
-        raise ParameterError(f"read_times must be finite, strictly increasing, shape ({n_reads},)")
-    t = t - t[0]
-    g = float(_value(gain, "electron / adu", "gain"))
-    if not (np.isfinite(g) and g > 0):
-        raise ParameterError(f"gain must be a finite number > 0 electrons per ADU; got {gain}")
-    rn = _value(read_noise, "electron", "read_noise")
-    if np.any(~np.isfinite(rn)) or np.any(rn < 0):
-        raise ParameterError("read_noise must be finite and >= 0 electrons per read")
+    t, g, rn = detector_numbers(np.asarray(setup.read_times), n_reads, gain, read_noise)
     bias, dark, fl, badref, nl, ref_bad = reference_frames(
         shape, bias_adu=bias_adu, dark_rate=dark_rate, flat=flat, bad_pixels=bad_pixels,
         nonlinearity=nonlinearity)
