@@ -225,7 +225,7 @@ def event_coverage(visit, refs):
     """
     from lightledger.pipeline.timing import interpolated_barycentric_times
 
-    from .detrend import event_template
+    from .detrendsetup import event_template
 
     event, target = visit.event, visit.target
     if event.get("kind") == "phase-curve":

@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 from astropy.io import fits
 
-from .detrend import read_depths
+from .detrendtables import read_depths
 from .run import reduce_visit
 
 __all__ = ["run_demo", "truth_summary", "DEMO_SCENARIO"]
