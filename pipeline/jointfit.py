@@ -175,6 +175,15 @@ class JointFit:
         planet's coefficients and the radius when fitted) and fitted
         exposures.
     visits : tuple of VisitFit
+    covariance : ndarray of float, shape (n, n)
+        Covariance of every linear parameter fitted (scaled by
+        ``error_scale``; the visits' shape parameters marginalised to first
+        order), in the order of ``parameter_names``.
+    parameter_names : tuple of str
+        ``"VISIT:NAME"`` for visit ``VISIT``'s (1 = first) systematics
+        coefficients (the active columns of :attr:`VisitFit.coefficient_names`),
+        then the planet's coefficients (:attr:`planet_names`) when the
+        planet's flux was fitted and ``rp_rs`` when the radius was.
     """
 
     rp_rs: float
@@ -194,6 +203,8 @@ class JointFit:
     n_params: int
     n_points: int
     visits: tuple = field(default_factory=tuple)
+    covariance: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    parameter_names: tuple = ()
 
 
 # --------------------------------------------------------------------------
@@ -312,6 +323,10 @@ def _assemble(prep, sol, des, planet, fit_rp, fit_pl, shapes_by_visit, n_shapes)
     rp = float(sol["rp"])
     rp_err = float(np.sqrt(cov[-1, -1])) if fit_rp else float("nan")
     vfits = []
+    names = [f"{j + 1}:{name}" for j, d in enumerate(des)
+             for name, on in zip(d["names"], d["active"]) if on]
+    names += list(planet_names(h)) if fit_pl else []
+    names += ["rp_rs"] if fit_rp else []
     for j, (p, d) in enumerate(zip(prep, des)):
         a = sol["a"][sol["offsets"][j]:sol["offsets"][j + 1]]
         sh = sol["sh"][j]
@@ -341,4 +356,5 @@ def _assemble(prep, sol, des, planet, fit_rp, fit_pl, shapes_by_visit, n_shapes)
         summary=summary, fitted_radius=bool(fit_rp), fitted_planet=bool(fit_pl), chi2=chi2,
         reduced_chi2=float(red), error_scale=scale,
         bic=float(chi2 + n_params * np.log(n_points)), n_params=int(n_params),
-        n_points=int(n_points), visits=tuple(vfits))
+        n_points=int(n_points), visits=tuple(vfits), covariance=cov,
+        parameter_names=tuple(names))

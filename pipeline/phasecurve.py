@@ -220,6 +220,12 @@ class PhaseCurveSummary:
     offset_deg, offset_error_deg : float
         Orbital angle by which the maximum precedes mid-eclipse, degrees in
         [-180, 180), positive eastward.
+    amplitude_error_lo, amplitude_error_hi : float
+        Median minus the 15.9th percentile and 84.1st percentile minus the
+        median of the amplitude's draws (both the first-order error when
+        there are no draws); ``amplitude_error`` is their mean.
+    offset_error_lo_deg, offset_error_hi_deg : float
+        The same for the offset, degrees (about the draws' circular mean).
     """
 
     day: float
@@ -234,6 +240,10 @@ class PhaseCurveSummary:
     amplitude_error: float
     offset_deg: float
     offset_error_deg: float
+    amplitude_error_lo: float = float("nan")
+    amplitude_error_hi: float = float("nan")
+    offset_error_lo_deg: float = float("nan")
+    offset_error_hi_deg: float = float("nan")
 
 
 def _extrema(c):
@@ -305,7 +315,10 @@ def summarise_planet(coefficients, covariance):
     coefficients from their posterior with uniform priors on the first
     harmonic's amplitude and angle (:func:`lightledger.pipeline.phasepost.
     posterior_draws`; the offset's median and interval about the draws'
-    circular mean).  For a well measured curve they agree with first-order
+    circular mean), with the two distances from the median to the ends of
+    that interval beside it (``*_error_lo``, ``*_error_hi``: the interval is
+    not symmetric about a Rice-biased length or a wrapped angle).  For a
+    well measured curve they agree with first-order
     propagation; for an amplitude consistent with zero the offset's error
     approaches the width of a uniform angle (about 123 degrees).  Without a
     first harmonic, or when its covariance is degenerate, every quantity is
@@ -326,6 +339,7 @@ def summarise_planet(coefficients, covariance):
     q0 = quantities(c)
     lin = _first_order_errors(quantities, c, C, q0)
     err = lin.copy()
+    lo, hi = lin.copy(), lin.copy()
     try:
         draws = posterior_draws(c, C)
     except ParameterError:          # no first harmonic, or its covariance is degenerate
@@ -333,14 +347,17 @@ def summarise_planet(coefficients, covariance):
     if draws is not None:
         mx, mn, off = _draw_extrema(draws)
         for k, x in ((2, mx), (3, mn), (4, mx - mn)):
-            q0[k], err[k] = _median_halfwidth(x)
-        q0[5], err[5] = _circular_median_halfwidth(off)
+            q0[k], lo[k], hi[k] = _median_interval(x)
+        q0[5], lo[5], hi[5] = _circular_median_interval(off)
+        err[2:] = 0.5 * (lo[2:] + hi[2:])
     return PhaseCurveSummary(day=float(q0[0]), day_error=float(err[0]), night=float(q0[1]),
                              night_error=float(err[1]), maximum=float(q0[2]),
                              maximum_error=float(err[2]), minimum=float(q0[3]),
                              minimum_error=float(err[3]), amplitude=float(q0[4]),
                              amplitude_error=float(err[4]), offset_deg=float(q0[5]),
-                             offset_error_deg=float(err[5]))
+                             offset_error_deg=float(err[5]), amplitude_error_lo=float(lo[4]),
+                             amplitude_error_hi=float(hi[4]), offset_error_lo_deg=float(lo[5]),
+                             offset_error_hi_deg=float(hi[5]))
 
 
 def _first_order_errors(quantities, c, C, q0):
@@ -403,16 +420,17 @@ def _offset_deg_array(angle_max):
     return (np.rad2deg(np.pi - angle_max) + 180.0) % 360.0 - 180.0
 
 
-def _median_halfwidth(x):
-    """Median and half the central 68.27 % interval of draws."""
+def _median_interval(x):
+    """Median of draws, and its distances to the ends of their central 68.27 % interval."""
     lo, mid, hi = np.percentile(x, [15.865, 50.0, 84.135])
-    return float(mid), float(0.5 * (hi - lo))
+    return float(mid), float(mid - lo), float(hi - mid)
 
 
-def _circular_median_halfwidth(deg):
-    """Median and half the central 68.27 % interval of angles (deg), about their circular mean."""
+def _circular_median_interval(deg):
+    """:func:`_median_interval` of angles (deg), about their circular mean."""
     rad = np.deg2rad(deg)
     centre = np.rad2deg(np.arctan2(np.mean(np.sin(rad)), np.mean(np.cos(rad))))
     d = (np.asarray(deg) - centre + 180.0) % 360.0 - 180.0
-    mid, half = _median_halfwidth(d)
-    return float((centre + mid + 180.0) % 360.0 - 180.0), half
+    mid, lo, hi = _median_interval(d)
+    return float((centre + mid + 180.0) % 360.0 - 180.0), lo, hi
+

@@ -24,7 +24,8 @@ import numpy as np
 from .errors import AllMaskedError, ParameterError
 from .grid import marginalise_fits, rank_fits
 
-__all__ = ["PLANET_QUANTITIES", "planet_quantity", "PhaseGrid", "fit_phase_grid"]
+__all__ = ["PLANET_QUANTITIES", "planet_quantity", "planet_interval", "PhaseGrid",
+           "fit_phase_grid", "marginal_interval"]
 
 #: Planet quantities marginalised over the models, as in a phase-curve product's PLANET table.
 PLANET_QUANTITIES = ("rp_rs", "transit_depth", "eclipse_depth", "night_flux", "max_flux",
@@ -51,6 +52,20 @@ def planet_quantity(fit, name):
             "max_flux": (s.maximum, s.maximum_error), "min_flux": (s.minimum, s.minimum_error),
             "amplitude": (s.amplitude, s.amplitude_error),
             "offset_deg": (s.offset_deg, s.offset_error_deg)}[name]
+
+
+def planet_interval(fit, name):
+    """(error_lo, error_hi) of ``"amplitude"`` or ``"offset_deg"`` from a JointFit.
+
+    The distances from the posterior median to the ends of the central 68 %
+    interval (:class:`~lightledger.pipeline.phasecurve.PhaseCurveSummary`);
+    NaN when the planet's flux was not fitted.
+    """
+    s = fit.summary
+    if s is None:
+        return float("nan"), float("nan")
+    return {"amplitude": (s.amplitude_error_lo, s.amplitude_error_hi),
+            "offset_deg": (s.offset_error_lo_deg, s.offset_error_hi_deg)}[name]
 
 
 @dataclass(frozen=True)
@@ -213,3 +228,50 @@ def fit_phase_grid(fits, names, *, criterion="bic", failures=()):
                      value=value, error=error, within=within, between=between,
                      best=np.argmax(weight, axis=0), criterion=criterion,
                      failures=tuple(failures))
+
+
+def marginal_interval(grid, name):
+    """Lower and upper errors of a marginalised amplitude or offset, per light curve.
+
+    Parameters
+    ----------
+    grid : PhaseGrid
+    name : {"amplitude", "offset_deg"}
+
+    Returns
+    -------
+    (lo, hi) : ndarray of float, shape (1 + n_channels,)
+        NaN where no model of non-zero weight measured the quantity.
+
+    Notes
+    -----
+    Each side as the marginalised error is formed (Wakeford et al. 2016),
+    with that side's own error: :math:`\\sigma_\\pm = \\sqrt{\\sum W
+    (\\sigma_{\\pm,m}^2 + (x_m - \\bar x)^2)}`, over the models that measured
+    the quantity (weights renormalised), the offsets taken on the branch
+    nearest the top model's.  The spread between models widens both sides
+    alike.
+    """
+    if name not in ("amplitude", "offset_deg"):
+        raise ParameterError(f"marginal_interval: name must be 'amplitude' or 'offset_deg'; "
+                             f"got {name!r}")
+    n_models, n_curves = grid.weight.shape
+    lo, hi = np.full(n_curves, np.nan), np.full(n_curves, np.nan)
+    for c in range(n_curves):
+        x = np.asarray(grid.values[name][:, c], float)
+        if name == "offset_deg":
+            ref = x[int(np.argmax(grid.weight[:, c]))]
+            x = ref + (x - ref + 180.0) % 360.0 - 180.0
+        sides = np.full((n_models, 2), np.nan)
+        for m in range(n_models):
+            if grid.fits[m] is not None and np.isfinite(grid.chi2[m, c]):
+                sides[m] = planet_interval(grid.fit_of(m, c), name)
+        w = np.asarray(grid.weight[:, c], float)
+        ok = np.isfinite(x) & np.all(np.isfinite(sides), axis=1) & (w > 0)
+        if not ok.any():
+            continue
+        W = w[ok] / w[ok].sum()
+        spread = (x[ok] - np.sum(W * x[ok])) ** 2
+        lo[c] = float(np.sqrt(np.sum(W * (sides[ok, 0] ** 2 + spread))))
+        hi[c] = float(np.sqrt(np.sum(W * (sides[ok, 1] ** 2 + spread))))
+    return lo, hi

@@ -87,7 +87,9 @@ def _detrend(p, f):
         for key in ("harmonics", "fit_radius", "phase_bins"):
             out[key] = "used by phase-curve events and programmes only"
     else:
-        out["phase_curve"] = "a phase-curve event models the planet's flux itself"
+        out.update(_PHASE_CURVE_FIT)
+    if f["kind"] == "phase-curve":
+        return out
     if p.get("limb_darkening") != "fit" and "limb_darkening_prior" in p:
         out["limb_darkening_prior"] = "the channels' limb darkening is not fitted"
     if p.get("limb_darkening") == "fit" and f["kind"] == "eclipse":
@@ -95,7 +97,29 @@ def _detrend(p, f):
     return out
 
 
-_RULES = {"calibrate": _calibrate, "extract": _extract, "bin": _bin, "detrend": _detrend}
+#: Detrend parameters a phase-curve fit (one visit's, or a programme's) does not use.
+_PHASE_CURVE_FIT = {
+    "phase_curve": "a phase-curve event models the planet's flux itself",
+    "phase_curve_model": "a phase-curve event models the planet's flux itself",
+    "fit": "a phase-curve fit fits the systematics and the planet together",
+    "white_free": "a phase-curve fit holds the ephemeris and geometry at their a priori values",
+    "depth_errors": "a phase-curve fit carries the covariance errors (marginalised over the "
+                    "models)",
+    "permutation_shifts": "a phase-curve fit computes no residual-permutation errors",
+    "limb_darkening": "a phase-curve fit uses the event's u1, u2 for every channel",
+    "limb_darkening_prior": "a phase-curve fit uses the event's u1, u2 for every channel",
+}
+
+
+def _joint(p, f):
+    out = {}
+    if len(tuple(p.get("models") or ())) == 1:
+        out["criterion"] = "a single model: nothing to rank or weight"
+    return out
+
+
+_RULES = {"calibrate": _calibrate, "extract": _extract, "bin": _bin, "detrend": _detrend,
+          "joint": _joint}
 
 
 def not_applying(stage, params, facts):

@@ -310,8 +310,12 @@ class Detrend(VisitTask):
         top = grid.top_fit()
         outputs, figs, metrics = write_phase_products(
             self.folder, self.provenance([lc_path]), top, [lc], channels, band, planet, params,
-            names=[visit.name], grid=grid)
+            names=[visit.name], grid=grid, target=visit.target, event=visit.event)
         metrics["exposures fitted"] = int(np.sum(~top.white.visits[0].fit_mask))
         self.progress(total, total, "model grid")
+        used = lc[usable_rows(lc)]
+        facts = visit_facts(scanning=not bool(np.all(np.asarray(used["scan_direction"]) == 0)),
+                            n_orbits=len(np.unique(np.asarray(used["orbit"]))),
+                            kind="phase-curve", phase_curve=None)
         self.write_entry(self.output().path, [lc_path], outputs, metrics, figs, started,
-                         warnings=warnings)
+                         warnings=warnings, not_applying=not_applying("detrend", params, facts))

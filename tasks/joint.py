@@ -25,6 +25,7 @@ from lightledger.pipeline import __version__
 from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER, STAGES
 
+from .applicability import not_applying
 from .base import (ENTRY_NAME, PROGRESS, FolderTask, product_digest, read_entry,
                    settings_from_text, user_name, visit_config)
 from .products import Provenance, relative_input, write_json
@@ -247,7 +248,8 @@ class JointDetrend(FolderTask, luigi.Task):
                           visit=prog.name)
         outputs, figs, metrics = write_phase_products(
             self.folder, prov, top, lcs, channels, band, planet, prog.params,
-            names=[v.name for v in visits], alone=alone, grid=grid)
+            names=[v.name for v in visits], alone=alone, grid=grid, target=visits[0].target,
+            event=event)
         if alone is not None:
             errs = [quantity(a.white, "eclipse_depth")[1] for a in alone]
             metrics["white eclipse depth error, best visit alone (ppm)"] = (
@@ -282,7 +284,7 @@ class JointDetrend(FolderTask, luigi.Task):
             "inputs": {relative_input(p, self.folder): product_digest(p) for p in inputs},
             "outputs": {Path(p).name: product_digest(p) for p in [*outputs, *figs]},
             "metrics": metrics,
-            "not_applying": {},
+            "not_applying": not_applying("joint", prog.params, {}),
             "figures": [Path(f).name for f in figs],
             "warnings": [str(w) for w in warnings],
         }

@@ -2,25 +2,35 @@
 
 Shared by the detrend stage of a ``phase-curve`` visit and by the programme's
 ``joint`` stage: both fit :func:`lightledger.pipeline.programme.fit_programme`
-and write the same products into their folder.
+(once per systematics model of their grid) and write the same products into
+their folder.
 
 ``detrended.fits`` (one visit) or ``detrended-N.fits`` (visit N of a programme)
-    DETRENDED: per exposure, the white and channel flux divided by the
-    systematics alone (the star alone = 1: transits, eclipses and the phase
-    variation stay in), errors, systematics, models, residuals;
+    DETRENDED: per exposure of the visit (set-aside ones included, NaN, with
+    their reason), the white and channel flux divided by the systematics
+    alone (the star alone = 1: transits, eclipses and the phase variation
+    stay in), errors, systematics, models, residuals;
+``grid-models.fits`` (one visit) or ``grid-models-N.fits``
+    one DETRENDED table per model of the grid (MODEL_NN, NN its
+    ``model_index`` in GRID; a model that failed has NaN values);
 ``planet.fits``
     PLANET (per channel and the white band as ``channel = -1``: radius ratio,
-    transit and eclipse depths, night side, extremes, amplitude, hotspot
-    offset, fit quality), DAYNIGHT (day-side and night-side spectra),
-    PHASEBINS (phase-resolved spectrum), PHASE_WHITE and PHASE_NN (per
-    exposure: time, orbital phase, the planet's flux over the star's, error,
-    model); a programme adds ALONE (each visit fitted by itself beside the
-    joint fit) and CONSISTENCY (their chi-square);
+    transit and eclipse depths, night side, extremes, amplitude and hotspot
+    offset with the two sides of their 68 % intervals, fit quality, limb
+    darkening), DAYNIGHT (day-side and night-side spectra), PHASEBINS
+    (phase-resolved spectrum), GRID (every model's fit), COEFFICIENTS (each
+    light curve's fitted parameters with their covariance), PHASE_WHITE and
+    PHASE_NN (per exposure, set-aside ones included: time, orbital phase,
+    the planet's flux over the star's, error, model); a programme adds ALONE
+    (each visit fitted by itself beside the joint fit) and CONSISTENCY
+    (their chi-square);
 ECSV copies of every table, and the figures ``phasecurve.png``,
 ``phasecurve-channels.png``, ``phasespectra.png`` and ``residuals.png``.
 
-Column meanings are declared once below (``*_COLUMNS``) and documented in the
-README.
+Every table's header (and every ECSV copy's metadata) carries what a fitter
+needs (:mod:`.phasemeta`: target, ephemeris, orbit, limb darkening, exposure
+duration, time scales, the white band's fitted planet).  Column meanings are
+declared once in :mod:`.phasecolumns` and documented in the README.
 """
 
 import numpy as np
@@ -32,168 +42,19 @@ from lightledger.pipeline.orbit import Ephemeris
 from lightledger.pipeline.programme import (QUANTITIES, VisitCurves, consistency,
                                             phase_resolved_spectrum, planet_flux_points, quantity)
 
+from .metadata import set_time_keywords
+from .phasecolumns import (ALONE_COLUMNS, BIN_COLUMNS, CONSISTENCY_COLUMNS, DAYNIGHT_COLUMNS,
+                           DETRENDED_COLUMNS, PHASE_COLUMNS, PHASE_GRID_COLUMNS, PLANET_COLUMNS,
+                           PLANET_GRID_COLUMNS, describe, err_name)
 from .products import table_hdu, write_ecsv, write_fits
 
 __all__ = ["planet_model", "visit_curves", "write_phase_products", "phase_grid_table",
-           "DETRENDED_COLUMNS", "PLANET_COLUMNS", "PLANET_GRID_COLUMNS", "PHASE_GRID_COLUMNS", "PHASE_COLUMNS", "BIN_COLUMNS", "DAYNIGHT_COLUMNS", "ALONE_COLUMNS",
+           "DETRENDED_COLUMNS", "PLANET_COLUMNS", "PLANET_GRID_COLUMNS", "PHASE_GRID_COLUMNS",
+           "PHASE_COLUMNS", "BIN_COLUMNS", "DAYNIGHT_COLUMNS", "ALONE_COLUMNS",
            "CONSISTENCY_COLUMNS"]
 
-#: DETRENDED of a phase-curve fit (per exposure).
-DETRENDED_COLUMNS = {
-    "exposure": ("", "exposure number in start-time order"),
-    "time_bjd_tdb": ("d", "mid-exposure time, BJD_TDB"),
-    "phase": ("", "orbital phase, cycles from mid-transit, in [0, 1)"),
-    "used": ("", "True where the exposure entered the fit"),
-    "white_detrended": ("", "white flux over the systematics model alone; the star alone = 1"),
-    "white_detrended_error": ("", "1-sigma error of white_detrended"),
-    "white_systematics": ("electron", "star's flux times the systematics (white band)"),
-    "white_model": ("electron", "full model of the white flux"),
-    "white_residual": ("", "white_detrended minus the astrophysical model"),
-    "detrended": ("", "channel flux over its systematics model alone; the star alone = 1"),
-    "detrended_error": ("", "1-sigma error of detrended"),
-    "systematics": ("electron", "star's flux times the systematics (channel)"),
-    "model": ("electron", "full model of the channel flux"),
-    "residual": ("", "detrended minus the astrophysical model"),
-    "set_aside": ("", "True: exposure set aside at input (values NaN)"),
-    "reason": ("", "why the exposure is not used; empty when used"),
-}
-
-#: PLANET: one row per channel and the white band (channel -1).
-PLANET_COLUMNS = {
-    "channel": ("", "channel number; -1 = the white band"),
-    "wave_lo": ("um", "channel lower edge"),
-    "wave_hi": ("um", "channel upper edge"),
-    "wave_mid": ("um", "channel centre"),
-    "rp_rs": ("", "planet-to-star radius ratio (fitted through the limb-darkened transit, "
-                  "else the a priori value)"),
-    "rp_rs_error": ("", "1-sigma error of rp_rs (NaN when not fitted)"),
-    "transit_depth": ("", "(rp/rs)^2"),
-    "transit_depth_error": ("", "1-sigma error of transit_depth"),
-    "eclipse_depth": ("", "planet flux over the star's at mid-eclipse: the day side"),
-    "eclipse_depth_error": ("", "1-sigma error of eclipse_depth"),
-    "night_flux": ("", "planet flux over the star's at mid-transit: the night side"),
-    "night_flux_error": ("", "1-sigma error of night_flux"),
-    "max_flux": ("", "largest planet flux over the star's along the orbit"),
-    "max_flux_error": ("", "1-sigma error of max_flux"),
-    "min_flux": ("", "smallest planet flux over the star's along the orbit"),
-    "min_flux_error": ("", "1-sigma error of min_flux"),
-    "amplitude": ("", "peak-to-trough planet flux over the star's"),
-    "amplitude_error": ("", "1-sigma error of amplitude"),
-    "offset_deg": ("deg", "orbital angle by which the maximum precedes mid-eclipse (east > 0)"),
-    "offset_error_deg": ("deg", "1-sigma error of offset_deg"),
-    "rms_ppm": ("", "rms of the fit's relative residuals, ppm"),
-    "rms_dof_ppm": ("", "rms_ppm times sqrt(N / (N - n_params))"),
-    "expected_ppm": ("", "rms of the relative errors, ppm"),
-    "rms_over_expected": ("", "rms_ppm / expected_ppm"),
-    "beta": ("", "time-averaging beta factor of the residuals"),
-    "reduced_chi2": ("", "chi-square per degree of freedom"),
-    "bic": ("", "Bayesian information criterion"),
-    "n_params": ("", "free parameters of the fit"),
-    "n_used": ("", "exposures in the fit"),
-}
-
-#: PLANET columns added when the phase curve was fitted with a grid of systematics models.
-PLANET_GRID_COLUMNS = {
-    "best_model": ("", "top-weighted systematics model of this light curve (its fit gives the "
-                       "fit-quality columns, DETRENDED and the PHASE tables)"),
-    "best_weight": ("", "that model's weight"),
-    "n_models": ("", "models fitted to this light curve"),
-    "eclipse_depth_models": ("", "part of eclipse_depth_error from the spread between models"),
-    "transit_depth_models": ("", "part of transit_depth_error from the spread between models"),
-    "amplitude_models": ("", "part of amplitude_error from the spread between models"),
-}
-
-#: GRID of a phase curve: one row per systematics model and light curve.
-PHASE_GRID_COLUMNS = {
-    "model": ("", "systematics model (tokens joined by '+')"),
-    "model_index": ("", "position of the model in the grid"),
-    "channel": ("", "channel number; -1 = the white band"),
-    "rank": ("", "1 = highest weight for this light curve"),
-    "n_params": ("", "free parameters of the fit"),
-    "n_points": ("", "exposures in the fit"),
-    "chi2": ("", "chi-square of the fit"),
-    "bic": ("", "chi2 + n_params ln(n_points)"),
-    "aic": ("", "chi2 + 2 n_params"),
-    "weight": ("", "exp(-criterion/2), normalised over the models of this light curve"),
-    **{name: ("deg" if name == "offset_deg" else "", f"{name} of this model's fit")
-       for name in ("rp_rs", "transit_depth", "eclipse_depth", "night_flux", "max_flux",
-                    "min_flux", "amplitude", "offset_deg")},
-    **{("offset_error_deg" if name == "offset_deg" else f"{name}_error"):
-       ("deg" if name == "offset_deg" else "", f"1-sigma error of {name} of this model's fit")
-       for name in ("rp_rs", "transit_depth", "eclipse_depth", "night_flux", "max_flux",
-                    "min_flux", "amplitude", "offset_deg")},
-    "status": ("", "ok, or failed (weight 0; grid.ecsv meta 'failures' says why)"),
-}
-
-#: PHASE_WHITE and PHASE_NN: the planet's flux per exposure.
-PHASE_COLUMNS = {
-    "visit": ("", "visit number (0 = first of the programme)"),
-    "time_bjd_tdb": ("d", "mid-exposure time, BJD_TDB"),
-    "phase": ("", "orbital phase, cycles from mid-transit, in [0, 1)"),
-    "planet_flux": ("", "detrended flux minus the star's visible part: the planet's visible "
-                        "flux over the star's (0 in full eclipse)"),
-    "planet_error": ("", "1-sigma error of planet_flux"),
-    "model": ("", "fitted visible planet flux"),
-    "visible": ("", "visible fraction of the planet's disk (eclipses)"),
-    "blocked": ("", "fraction of the star's flux hidden by the planet (transits)"),
-    "used": ("", "True where the exposure entered the fit"),
-    "in_event": ("", "True during a transit or an eclipse"),
-}
-
-#: PHASEBINS: the phase-resolved spectrum, one row per (bin, channel).
-BIN_COLUMNS = {
-    "channel": ("", "channel number; -1 = the white band"),
-    "wave_mid": ("um", "channel centre"),
-    "phase_lo": ("", "bin lower edge, cycles from mid-transit"),
-    "phase_hi": ("", "bin upper edge, cycles from mid-transit"),
-    "phase_mid": ("", "bin centre"),
-    "planet_flux": ("", "weighted mean planet flux over the star's, out of transits and eclipses"),
-    "planet_error": ("", "1-sigma error of planet_flux"),
-    "model": ("", "fitted planet flux averaged over the same exposures"),
-    "count": ("", "exposures averaged"),
-}
-
-#: DAYNIGHT: day-side and night-side spectra.
-DAYNIGHT_COLUMNS = {
-    "channel": ("", "channel number"),
-    "wave_lo": ("um", "channel lower edge"),
-    "wave_hi": ("um", "channel upper edge"),
-    "wave_mid": ("um", "channel centre"),
-    "day_flux": ("", "planet flux over the star's at mid-eclipse (day side)"),
-    "day_error": ("", "1-sigma error of day_flux"),
-    "night_flux": ("", "planet flux over the star's at mid-transit (night side)"),
-    "night_error": ("", "1-sigma error of night_flux"),
-}
-
-def _err_name(name):
-    return "offset_error_deg" if name == "offset_deg" else f"{name}_error"
-
-
-#: ALONE: every visit fitted by itself, and the joint fit (visit = -1).
-ALONE_COLUMNS = {
-    "visit": ("", "visit number; -1 = the joint fit"),
-    "name": ("", "visit name"),
-    "channel": ("", "channel number; -1 = the white band"),
-    **{name: ("deg" if name == "offset_deg" else "", text) for name, text in QUANTITIES},
-    **{_err_name(name): ("deg" if name == "offset_deg" else "", f"1-sigma error of {name}")
-       for name, _ in QUANTITIES},
-}
-
-#: CONSISTENCY: chi-square of the single-visit values about the joint one.
-CONSISTENCY_COLUMNS = {
-    "channel": ("", "channel number; -1 = the white band"),
-    "quantity": ("", "which quantity (a column of ALONE)"),
-    "chi2": ("", "sum over visits of ((alone - joint) / alone error)^2"),
-    "n_visits": ("", "visits that measured the quantity"),
-}
-
-
-def _describe(table, columns):
-    for name, (unit, text) in columns.items():
-        if name in table.colnames:
-            table[name].unit = unit or None
-            table[name].description = text
-    return table
+_describe = describe
+_err_name = err_name
 
 
 def planet_model(event, params):
@@ -227,16 +88,28 @@ def visit_curves(lc, event, detrend_params, name):
 
 
 def _detrended_table(lc, k, fit, phase):
+    """DETRENDED of visit ``k``'s fitted exposures from a ProgrammeFit (None: NaN values)."""
+    n, n_ch = len(lc), np.shape(lc["flux"])[1]
+    det = Table()
+    det["exposure"] = np.asarray(lc["exposure"], int)
+    det["time_bjd_tdb"] = np.asarray(lc["time_bjd_tdb"], float)
+    if "exposure_time" in lc.colnames:
+        det["exposure_time"] = np.asarray(lc["exposure_time"], float)
+    det["phase"] = phase
+    if fit is None:
+        det["used"] = np.zeros(n, bool)
+        for name in ("white_detrended", "white_detrended_error", "white_systematics",
+                     "white_model", "white_residual"):
+            det[name] = np.full(n, np.nan)
+        for name in ("detrended", "detrended_error", "systematics", "model", "residual"):
+            det[name] = np.full((n, n_ch), np.nan)
+        return _describe(det, DETRENDED_COLUMNS)
     white = fit.white.visits[k]
     chans = [c.visits[k] for c in fit.channels]
 
     def stack(attr):
         return np.stack([getattr(c, attr) for c in chans], axis=1)
 
-    det = Table()
-    det["exposure"] = np.asarray(lc["exposure"], int)
-    det["time_bjd_tdb"] = np.asarray(lc["time_bjd_tdb"], float)
-    det["phase"] = phase
     det["used"] = ~white.fit_mask
     det["white_detrended"] = white.detrended
     det["white_detrended_error"] = white.detrended_error
@@ -251,7 +124,53 @@ def _detrended_table(lc, k, fit, phase):
     return _describe(det, DETRENDED_COLUMNS)
 
 
-def _planet_row(j, lo, hi, jf):
+def _visit_detrended(lc, lc_all, k, fit, eph):
+    """DETRENDED of visit ``k``: every exposure of its LIGHTCURVES, with why any is not used."""
+    from .detrend import with_reasons
+
+    phase = np.mod((np.asarray(lc["time_bjd_tdb"], float) - eph.t0) / eph.period, 1.0)
+    det = _detrended_table(lc, k, fit, phase)
+    # the first orbit was left out when none of its exposures entered the fit
+    first = np.asarray(lc["first_orbit"], bool)
+    used = np.asarray(det["used"], bool)
+    left_out = first if first.any() and not np.any(used[first]) and fit is not None \
+        else np.zeros_like(first)
+    det = with_reasons(det, lc, lc_all, left_out)
+    t_all = np.asarray(det["time_bjd_tdb"], float)   # a set-aside exposure's phase, from its time
+    det["phase"] = np.mod((t_all - eph.t0) / eph.period, 1.0)
+    return _describe(det, DETRENDED_COLUMNS)
+
+
+def _phase_table(points, dets):
+    """PHASE_WHITE or PHASE_NN: the fitted exposures' planet flux, completed to every exposure.
+
+    ``dets`` are the visits' DETRENDED tables (every exposure, in the order
+    of their LIGHTCURVES): a set-aside exposure gets a row with NaN values and
+    its ``reason``.
+    """
+    from .lightcurves import expand_rows
+
+    parts = []
+    for k, det in enumerate(dets):
+        sel = points.visit == k
+        t = Table({"visit": points.visit[sel], "time_bjd_tdb": points.time[sel],
+                   "phase": points.phase[sel], "planet_flux": points.planet_flux[sel],
+                   "planet_error": points.planet_error[sel], "model": points.model[sel],
+                   "visible": points.visible[sel], "blocked": points.blocked[sel],
+                   "used": points.used[sel], "in_event": points.in_event[sel]})
+        t = expand_rows(t, ~np.asarray(det["set_aside"], bool))
+        t["visit"] = np.full(len(t), k)
+        t["time_bjd_tdb"] = np.asarray(det["time_bjd_tdb"], float)
+        t["phase"] = np.asarray(det["phase"], float)
+        t.add_column(np.asarray(det["exposure"], int), name="exposure", index=1)
+        t["set_aside"] = np.asarray(det["set_aside"], bool)
+        t["reason"] = np.asarray(det["reason"], str)
+        parts.append(t)
+    from astropy.table import vstack
+    return _describe(vstack(parts, metadata_conflicts="silent"), PHASE_COLUMNS)
+
+
+def _planet_row(j, lo, hi, jf, planet):
     res = np.concatenate([v.residuals for v in jf.visits])
     err = np.concatenate([v.detrended_error for v in jf.visits])
     used = np.concatenate([~v.fit_mask for v in jf.visits])
@@ -270,21 +189,31 @@ def _planet_row(j, lo, hi, jf):
             "max_flux": pick("maximum"), "max_flux_error": pick("maximum_error"),
             "min_flux": pick("minimum"), "min_flux_error": pick("minimum_error"),
             "amplitude": pick("amplitude"), "amplitude_error": pick("amplitude_error"),
+            "amplitude_error_lo": pick("amplitude_error_lo"),
+            "amplitude_error_hi": pick("amplitude_error_hi"),
             "offset_deg": pick("offset_deg"), "offset_error_deg": pick("offset_error_deg"),
+            "offset_error_lo_deg": pick("offset_error_lo_deg"),
+            "offset_error_hi_deg": pick("offset_error_hi_deg"),
             "rms_ppm": q.rms * 1e6, "rms_dof_ppm": q.rms_dof * 1e6,
             "expected_ppm": q.expected * 1e6,
             "rms_over_expected": q.rms / q.expected if q.expected else nan, "beta": q.beta,
             "reduced_chi2": jf.reduced_chi2, "bic": jf.bic, "n_params": jf.n_params,
-            "n_used": q.n_used}
+            "n_used": q.n_used, "ld_u1": float(planet.u1), "ld_u2": float(planet.u2)}
 
 
-def _with_grid(row, grid, c):
-    """A PLANET row with every planet quantity marginalised over the grid (light curve ``c``)."""
+def _with_grid(row, grid, c, sides):
+    """A PLANET row with every planet quantity marginalised over the grid (light curve ``c``).
+
+    ``sides``: ``{name: (lo, hi)}`` of :func:`~lightledger.pipeline.phasegrid.marginal_interval`.
+    """
     from lightledger.pipeline.phasegrid import PLANET_QUANTITIES
     out = dict(row)
     for name in PLANET_QUANTITIES:
         out[name] = float(grid.value[name][c])
         out[_err_name(name)] = float(grid.error[name][c])
+    for name, (lo, hi) in sides.items():
+        out[f"{name}_error_lo" if name == "amplitude" else "offset_error_lo_deg"] = float(lo[c])
+        out[f"{name}_error_hi" if name == "amplitude" else "offset_error_hi_deg"] = float(hi[c])
     m = int(grid.best[c])
     out["best_model"] = grid.names[m]
     out["best_weight"] = float(grid.weight[m, c])
@@ -324,7 +253,7 @@ def _table(rows, columns):
 
 
 def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, params, *,
-                         names, alone=None, figures=True, grid=None):
+                         names, target, event, alone=None, figures=True, grid=None):
     """Write every phase-curve product of a fit into ``folder``.
 
     Parameters
@@ -333,7 +262,8 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
     prov : Provenance
     fit : ProgrammeFit
     lcs : list of astropy Table
-        Each visit's LIGHTCURVES.
+        Each visit's LIGHTCURVES (every exposure; set-aside ones are not fitted
+        but keep their rows in DETRENDED and the PHASE tables).
     channels : astropy Table
         CHANNELS (wave_lo, wave_hi per channel).
     white_band : (float, float)
@@ -343,6 +273,10 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
         ``harmonics``, ``fit_radius``, ``phase_bins``.
     names : list of str
         Visit names.
+    target, event : dict
+        The target (``name``, ``ra``, ``dec``) and the planet's ephemeris,
+        geometry and limb darkening, for the products' metadata
+        (:mod:`.phasemeta`).
     alone : list of ProgrammeFit, optional
         Each visit fitted by itself (programmes).
     figures : bool
@@ -352,56 +286,81 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
         (:func:`lightledger.pipeline.phasegrid.fit_phase_grid`; ``fit`` is
         then its :meth:`~lightledger.pipeline.phasegrid.PhaseGrid.top_fit`):
         PLANET and DAYNIGHT carry the marginalised quantities, with the
-        :data:`PLANET_GRID_COLUMNS`, and a GRID table (``grid.ecsv``) lists
-        every model's fit.
+        :data:`PLANET_GRID_COLUMNS`, a GRID table (``grid.ecsv``) lists
+        every model's fit and ``grid-models[-N].fits`` every model's
+        detrended light curves.
 
     Returns
     -------
     (outputs, figures, metrics)
         Paths written, figure paths, headline figures for the entry.
     """
-    from .detrend import with_reasons
-    from .lightcurves import usable_rows
+    from lightledger.pipeline.phasegrid import marginal_interval
+
+    from .lightcurves import usable_rows, wide_table
+    from .phasemeta import coefficients_table, phase_cards, phase_meta, planet_cards
 
     eph = planet.ephemeris
     lcs_all = lcs
     lcs = [lc[usable_rows(lc)] for lc in lcs_all]        # the exposures fitted
     times = [np.asarray(lc["time_bjd_tdb"], float) for lc in lcs]
-    outputs = []
+    texp = np.concatenate([np.asarray(lc["exposure_time"], float) if "exposure_time"
+                           in lc.colnames else np.full(len(lc), np.nan) for lc in lcs])
+    n_ch = len(channels)
     single = len(lcs) == 1
-    for k, lc in enumerate(lcs):
-        phase = np.mod((times[k] - eph.t0) / eph.period, 1.0)
-        det = _detrended_table(lc, k, fit, phase)
-        # the first orbit was left out when none of its exposures entered the fit
-        first = np.asarray(lc["first_orbit"], bool)
-        left_out = first if first.any() and not np.any(det["used"][first]) else np.zeros_like(first)
-        det = with_reasons(det, lc, lcs_all[k], left_out)
-        if "phase" in det.colnames:       # a set-aside exposure's phase, from its time
-            t_all = np.asarray(det["time_bjd_tdb"], float)
-            det["phase"] = np.mod((t_all - eph.t0) / eph.period, 1.0)
-        stem = "detrended" if single else f"detrended-{k + 1}"
-        hdu = table_hdu(det, "DETRENDED")
-        hdu.header["VISITNAM"] = (names[k][:60], "visit name")
-        hdu.header["NORM"] = ("star alone", "detrended flux: 1 = the star alone")
-        write_fits(folder / f"{stem}.fits", [hdu], prov)
-        wide = Table()
-        for col in det.colnames:
-            if det[col].ndim == 2:
-                for j in range(det[col].shape[1]):
-                    wide[f"{col}_{j:02d}"] = det[col][:, j]
-                    wide[f"{col}_{j:02d}"].unit = det[col].unit
-            else:
-                wide[col] = det[col]
-        write_ecsv(folder / f"{stem}.ecsv", wide, prov)
-        outputs += [folder / f"{stem}.fits", folder / f"{stem}.ecsv"]
-
     all_fits = [(-1, white_band[0], white_band[1], fit.white)] + [
         (j, float(channels["wave_lo"][j]), float(channels["wave_hi"][j]), jf)
         for j, jf in enumerate(fit.channels)]
-    planet_rows = [_planet_row(j, lo, hi, jf) for j, lo, hi, jf in all_fits]
+    planet_rows = [_planet_row(j, lo, hi, jf, planet) for j, lo, hi, jf in all_fits]
     if grid is not None:
-        planet_rows = [_with_grid(row, grid, c) for c, row in enumerate(planet_rows)]
+        sides = {name: marginal_interval(grid, name) for name in ("amplitude", "offset_deg")}
+        planet_rows = [_with_grid(row, grid, c, sides) for c, row in enumerate(planet_rows)]
     planet_tab = _table(planet_rows, {**PLANET_COLUMNS, **PLANET_GRID_COLUMNS})
+    cards = phase_cards(target, event, np.concatenate(times), texp, n_ch) + planet_cards(
+        planet_tab[0]) + [("NVISITS", len(lcs), "visits fitted together"),
+                          ("HARMONIC", int(params["harmonics"]), "harmonics of the planet flux")]
+    meta = phase_meta(target, event, np.concatenate(times), texp, channels, planet_tab[0], names)
+    primary = {"TIMESYS": "TDB", "TIMEREF": "SOLARSYSTEM", **{k: (v, c) for k, v, c in cards[:4]}}
+
+    def hdu_of(table, extname):
+        hdu = set_time_keywords(table_hdu(table, extname))
+        for key, value, comment in cards:
+            hdu.header[key] = (value, comment)
+        return hdu
+
+    def ecsv(path, table):
+        table = table.copy(copy_data=False)
+        own = dict(table.meta)
+        table.meta.clear()
+        table.meta.update(meta)
+        table.meta.update(own)
+        write_ecsv(path, table, prov)
+        outputs.append(path)
+
+    outputs, dets = [], []
+    for k, lc in enumerate(lcs):
+        det = _visit_detrended(lc, lcs_all[k], k, fit, eph)
+        dets.append(det)
+        stem = "detrended" if single else f"detrended-{k + 1}"
+        hdu = hdu_of(det, "DETRENDED")
+        hdu.header["VISITNAM"] = (names[k][:60], "visit name")
+        hdu.header["NORM"] = ("star alone", "detrended flux: 1 = the star alone")
+        write_fits(folder / f"{stem}.fits", [hdu], prov, header=primary)
+        outputs.append(folder / f"{stem}.fits")
+        ecsv(folder / f"{stem}.ecsv", wide_table(det, n_ch, channels))
+        if grid is not None:
+            hdus = []
+            for m, name in enumerate(grid.names):
+                hdu = hdu_of(_visit_detrended(lc, lcs_all[k], k, grid.fits[m], eph),
+                             f"MODEL_{m:02d}")
+                hdu.header["MODEL"] = (name[:60], "systematics model")
+                hdu.header["STATUS"] = ("ok" if grid.fits[m] is not None else "failed",
+                                        "failed: not fitted, values NaN")
+                hdus.append(hdu)
+            path = folder / ("grid-models.fits" if single else f"grid-models-{k + 1}.fits")
+            write_fits(path, hdus, prov, header=primary)
+            outputs.append(path)
+
     daynight = _table([{"channel": row["channel"], "wave_lo": row["wave_lo"],
                         "wave_hi": row["wave_hi"], "wave_mid": row["wave_mid"],
                         "day_flux": row["eclipse_depth"], "day_error": row["eclipse_depth_error"],
@@ -417,43 +376,24 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
                              "planet_flux": bins.flux[b, i], "planet_error": bins.error[b, i],
                              "model": bins.model[b, i], "count": int(bins.count[b, i])})
     bin_tab = _table(bin_rows, BIN_COLUMNS)
-    phase_tabs = []
-    for (j, _, _, _), p in zip(all_fits, points):
-        t = Table({"visit": p.visit, "time_bjd_tdb": p.time, "phase": p.phase,
-                   "planet_flux": p.planet_flux, "planet_error": p.planet_error,
-                   "model": p.model, "visible": p.visible, "blocked": p.blocked,
-                   "used": p.used, "in_event": p.in_event})
-        phase_tabs.append(("PHASE_WHITE" if j < 0 else f"PHASE_{j:02d}",
-                           _describe(t, PHASE_COLUMNS)))
+    phase_tabs = [("PHASE_WHITE" if j < 0 else f"PHASE_{j:02d}", _phase_table(p, dets))
+                  for (j, _, _, _), p in zip(all_fits, points)]
     tables = [("PLANET", planet_tab), ("DAYNIGHT", daynight), ("PHASEBINS", bin_tab)]
     if alone is not None:
-        rows, crow = [], []
-        for (j, _, _, jf), pick in zip(all_fits, [lambda f: f.white] + [
-                (lambda f, jj=jj: f.channels[jj]) for jj in range(len(fit.channels))]):
-            fits_alone = [pick(a) for a in alone]
-            for v, fa in [(k, fa) for k, fa in enumerate(fits_alone)] + [(-1, jf)]:
-                row = {"visit": v, "name": names[v] if v >= 0 else "joint", "channel": j}
-                for qname, _ in QUANTITIES:
-                    row[qname] = quantity(fa, qname)[0]
-                for qname, _ in QUANTITIES:
-                    row[_err_name(qname)] = quantity(fa, qname)[1]
-                rows.append(row)
-            for qname, (chi2, n) in consistency(fits_alone, jf).items():
-                crow.append({"channel": j, "quantity": qname, "chi2": chi2, "n_visits": n})
-        tables += [("ALONE", _table(rows, ALONE_COLUMNS)),
-                   ("CONSISTENCY", _table(crow, CONSISTENCY_COLUMNS))]
+        tables += _alone_tables(all_fits, fit, alone, names)
     if grid is not None:
         tables.append(("GRID", phase_grid_table(grid)))
+    models = ([grid.names[int(m)] for m in grid.best] if grid is not None
+              else [""] * len(all_fits))
+    tables.append(("COEFFICIENTS", coefficients_table([r[:3] for r in all_fits],
+                                                      [r[3] for r in all_fits], models)))
     tables += phase_tabs
     hdus = []
     for extname, tab in tables:
-        hdu = table_hdu(tab, extname)
-        hdu.header["T0"] = (eph.t0, "[d] BJD_TDB of mid-transit (phase 0)")
-        hdu.header["PERIOD"] = (eph.period, "[d] orbital period")
+        hdu = hdu_of(tab, extname)
         hdu.header["ERRKIND"] = ("1-sigma", "error columns hold standard deviations")
         hdus.append(hdu)
-    header = {"NVISITS": (len(lcs), "visits fitted together"),
-              "HARMONIC": (int(params["harmonics"]), "harmonics of the planet flux")}
+    header = dict(primary)
     if grid is not None:
         header["NMODELS"] = (len(grid.names), "systematics models in the grid")
         header["CRITERN"] = (grid.criterion.upper(), "criterion weighting the models")
@@ -461,17 +401,41 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
     outputs.append(folder / "planet.fits")
     for extname, tab in tables:
         name = {"PLANET": "planet", "DAYNIGHT": "daynight", "PHASEBINS": "phasebins",
-                "ALONE": "alone", "CONSISTENCY": "consistency", "GRID": "grid"}.get(extname)
+                "ALONE": "alone", "CONSISTENCY": "consistency", "GRID": "grid",
+                "COEFFICIENTS": "coefficients"}.get(extname)
         if name is None:
             name = "phasecurve-" + ("white" if extname == "PHASE_WHITE" else extname[6:])
-        write_ecsv(folder / f"{name}.ecsv", tab, prov)
-        outputs.append(folder / f"{name}.ecsv")
+        ecsv(folder / f"{name}.ecsv", tab)
 
     figs = []
     if figures:
         from .phasefigures import phase_figures
         figs = phase_figures(folder, fit, points, bins, planet_tab, daynight, times, planet,
                              names)
+    return outputs, figs, _metrics(planet_tab, grid, len(lcs))
+
+
+def _alone_tables(all_fits, fit, alone, names):
+    """ALONE (each visit fitted by itself, and the joint fit) and CONSISTENCY."""
+    rows, crow = [], []
+    for (j, _, _, jf), pick in zip(all_fits, [lambda f: f.white] + [
+            (lambda f, jj=jj: f.channels[jj]) for jj in range(len(fit.channels))]):
+        fits_alone = [pick(a) for a in alone]
+        for v, fa in [(k, fa) for k, fa in enumerate(fits_alone)] + [(-1, jf)]:
+            row = {"visit": v, "name": names[v] if v >= 0 else "joint", "channel": j}
+            for qname, _ in QUANTITIES:
+                row[qname] = quantity(fa, qname)[0]
+            for qname, _ in QUANTITIES:
+                row[_err_name(qname)] = quantity(fa, qname)[1]
+            rows.append(row)
+        for qname, (chi2, n) in consistency(fits_alone, jf).items():
+            crow.append({"channel": j, "quantity": qname, "chi2": chi2, "n_visits": n})
+    return [("ALONE", _table(rows, ALONE_COLUMNS)),
+            ("CONSISTENCY", _table(crow, CONSISTENCY_COLUMNS))]
+
+
+def _metrics(planet_tab, grid, n_visits):
+    """Headline figures of the entry."""
     w = planet_tab[0]
     metrics = {"white eclipse depth (ppm)": _ppm(w["eclipse_depth"]),
                "white eclipse depth error (ppm)": _ppm(w["eclipse_depth_error"]),
@@ -485,7 +449,7 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
                "white rms / expected": _round(w["rms_over_expected"], 3),
                "median channel rms / expected":
                    _round(float(np.nanmedian(planet_tab["rms_over_expected"][1:])), 3),
-               "visits": len(lcs)}
+               "visits": n_visits}
     if grid is not None:
         order = np.argsort(-grid.weight[:, 0])
         metrics["models"] = len(grid.names)
@@ -493,7 +457,7 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
             f"{grid.names[m]} {grid.weight[m, 0]:.3f}" for m in order[:5] if grid.weight[m, 0] > 0]
         metrics["channels' top models"] = sorted({grid.names[m] for m in grid.best[1:]})
         metrics["failed fits"] = len(grid.failures)
-    return outputs, figs, metrics
+    return metrics
 
 
 def _round(x, n):

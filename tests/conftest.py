@@ -98,6 +98,54 @@ def stare_visit(tmp_path_factory):
     return _reduce(tmp_path_factory, "stare-eclipse", STARE_EXPOSURES, STARE_SEED)
 
 
+#: The phase-pair programme's small render (3 orbits of 9 exposures per visit) and its
+#: settings: four channels and a joint grid of two models keep the suite short (the
+#: default sizes and grid are the benchmark's, tests/benchmarks/bench_phase.py).
+PHASE_EDGES = (1.31, 1.45, 1.6, 1.78, 1.99)
+PHASE_SETTINGS = [("bin", "edges", PHASE_EDGES)]
+PHASE_JOINT_MODELS = ("visit1+orbit2+scan+ramp", "visit1+orbit1+scan+ramp")
+
+
+@pytest.fixture(scope="session")
+def phase_programme(tmp_path_factory):
+    """The phase-pair programme (two visits) rendered, reduced and fitted jointly.
+
+    A namespace: ``out`` (rendered directory), ``programme`` (its TOML),
+    ``result`` (what reduce_programme returned), ``settings`` (the visits'),
+    ``programme_settings``, ``joint_models``, ``edges``.
+    """
+    from lightledger.synthetic_data.render import render
+    from lightledger.tasks.programme import reduce_programme
+
+    out = tmp_path_factory.mktemp("phase-pair")
+    programme = render("phase-pair", out, seed=2, n_orbits=3, n_exposures=3 * 9)
+    settings = list(PHASE_SETTINGS)
+    programme_settings = settings + [("joint", "models", PHASE_JOINT_MODELS)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        result = reduce_programme(programme, settings=programme_settings, workers=1)
+    assert result.ok, "\n".join(result.messages)
+    return SimpleNamespace(out=Path(out), programme=Path(programme), result=result,
+                           settings=settings, programme_settings=programme_settings,
+                           joint_models=PHASE_JOINT_MODELS, edges=list(PHASE_EDGES))
+
+
+@pytest.fixture(scope="session")
+def phase_single(phase_programme):
+    """The programme's eclipse visit (a phase-curve visit) reduced alone: its detrend stage.
+
+    Only Detrend runs (the programme made the visit's earlier stages).
+    """
+    from lightledger.tasks.run import reduce_visit
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        result = reduce_visit(phase_programme.out / "visit-eclipse" / "visit.toml",
+                              settings=phase_programme.settings)
+    assert result.ok, "\n".join(result.messages)
+    return result
+
+
 def _reduce_again(visit, settings, until=None):
     """Reduce a rendered visit again with other settings (RuntimeWarning as an error)."""
     from lightledger.tasks.run import reduce_visit

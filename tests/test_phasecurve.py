@@ -177,6 +177,42 @@ def test_amplitude_and_offset_of_a_weak_harmonic_keep_their_coverage():
     assert 0.55 <= np.mean(np.abs(off) < 1) <= 0.9
 
 
+def test_amplitude_interval_sides_match_the_rice_posterior():
+    # With an isotropic covariance sigma^2 I of (a1, b1) and uniform priors on the first
+    # harmonic's amplitude A and angle, the posterior of A is the Rice form
+    # p(A) ~ exp(-(A^2 + r^2) / 2 sigma^2) I0(A r / sigma^2) (Rice 1944, from memory;
+    # the angle integrated out), and the peak-to-trough amplitude is 2 A (Cowan & Agol
+    # 2008).  Its median and the two sides of its central 68.27 % interval, integrated
+    # numerically here, must match the summary's amplitude, amplitude_error_lo and
+    # amplitude_error_hi to the Monte Carlo precision of 10,000 draws (~2 % of sigma),
+    # amplitude_error is their mean; at signal-to-noise 1 the lower side is the shorter
+    # (the bound at zero; 0.61 against 0.90 sigma in A by the integral), at 20 both sides
+    # approach 2 sigma (first order).
+    from scipy.special import i0e
+
+    sigma = 1e-5
+    for r, short_below in ((1 * sigma, True), (20 * sigma, False)):
+        c = np.array([1e-4, -r, 0.0])
+        s = summarise_planet(c, np.diag([1e-10, sigma ** 2, sigma ** 2]))
+        A = np.linspace(0.0, r + 10 * sigma, 200001)
+        log_p = -(A - r) ** 2 / (2 * sigma ** 2) + np.log(i0e(A * r / sigma ** 2))
+        cdf = np.cumsum(np.exp(log_p - log_p.max()))
+        cdf /= cdf[-1]
+        lo, mid, hi = 2 * np.interp([0.15865, 0.5, 0.84135], cdf, A)
+        assert s.amplitude == pytest.approx(mid, abs=0.04 * sigma)
+        assert s.amplitude_error_lo == pytest.approx(mid - lo, abs=0.05 * sigma)
+        assert s.amplitude_error_hi == pytest.approx(hi - mid, abs=0.05 * sigma)
+        assert s.amplitude_error == pytest.approx(0.5 * (s.amplitude_error_lo
+                                                         + s.amplitude_error_hi), rel=1e-12)
+        assert s.offset_error_deg == pytest.approx(0.5 * (s.offset_error_lo_deg
+                                                          + s.offset_error_hi_deg), rel=1e-12)
+        if short_below:
+            assert s.amplitude_error_lo < 0.8 * s.amplitude_error_hi
+        else:
+            assert s.amplitude_error_lo == pytest.approx(2 * sigma, rel=0.05)
+            assert s.amplitude_error_hi == pytest.approx(2 * sigma, rel=0.05)
+
+
 def _leo_visit(t_start, n_orbits, cadence=4.0):
     """Low-Earth-orbit sampling (96 min orbits, 50 min visible; REFERENCES.md, common
     practice) from t_start (days)."""

@@ -11,15 +11,18 @@ import numpy as np
 import pytest
 
 from lightledger.pipeline.errors import AllMaskedError, ParameterError
-from lightledger.pipeline.phasegrid import fit_phase_grid, planet_quantity
+from lightledger.pipeline.phasegrid import fit_phase_grid, marginal_interval, planet_quantity
 from lightledger.pipeline.programme import ProgrammeFit
 
 
-def _joint(chi2, k, n, day, day_err, offset=10.0, radius=None):
+def _joint(chi2, k, n, day, day_err, offset=10.0, radius=None, sides=(None, None)):
+    lo, hi = (day_err, day_err) if sides[0] is None else sides
     summary = SimpleNamespace(day=day, day_error=day_err, night=0.1 * day, night_error=day_err,
                               maximum=day, maximum_error=day_err, minimum=0.0,
                               minimum_error=day_err, amplitude=day, amplitude_error=day_err,
-                              offset_deg=offset, offset_error_deg=5.0)
+                              offset_deg=offset, offset_error_deg=5.0,
+                              amplitude_error_lo=lo, amplitude_error_hi=hi,
+                              offset_error_lo_deg=4.0, offset_error_hi_deg=6.0)
     return SimpleNamespace(chi2=chi2, n_params=k, n_points=n, summary=summary,
                            fitted_radius=radius is not None,
                            rp_rs=np.nan if radius is None else radius[0],
@@ -56,6 +59,27 @@ def test_two_models_by_hand():
     assert top.white is a.white and top.channels[0] is b.channels[0]
     # no transit in either fit: the radius is not measured
     assert np.isnan(grid.value["transit_depth"][0]) and np.isnan(grid.error["rp_rs"][1])
+
+
+def test_interval_sides_marginalised_by_hand():
+    # Each side of the 68 % interval marginalised as the error is (Wakeford et al. 2016),
+    # with that side's own errors.  The models of test_two_models_by_hand (weights
+    # 0.891405, 0.108595; amplitudes 400 and 460 ppm, spread term between^2 =
+    # 18.6678^2 = 348.487 ppm^2): sides (20, 40) ppm for A and (30, 50) ppm for B give
+    # lo = sqrt(0.891405*400 + 0.108595*900 + 348.487) = sqrt(802.785) = 28.3335 ppm and
+    # hi = sqrt(0.891405*1600 + 0.108595*2500 + 348.487) = sqrt(2046.223) = 45.2352 ppm;
+    # equal offsets (10 deg) add no spread: sides sqrt(16) = 4 and sqrt(36) = 6 deg.
+    a = ProgrammeFit(white=_joint(50.0, 10, 100, 400e-6, 30e-6, sides=(20e-6, 40e-6)),
+                     channels=())
+    b = ProgrammeFit(white=_joint(45.0, 12, 100, 460e-6, 40e-6, sides=(30e-6, 50e-6)),
+                     channels=())
+    grid = fit_phase_grid([a, b], ["A", "B"])
+    lo, hi = marginal_interval(grid, "amplitude")
+    np.testing.assert_allclose([lo[0], hi[0]], [28.3335e-6, 45.2352e-6], atol=2e-10)
+    lo, hi = marginal_interval(grid, "offset_deg")
+    np.testing.assert_allclose([lo[0], hi[0]], [4.0, 6.0], rtol=1e-12)
+    with pytest.raises(ParameterError):
+        marginal_interval(grid, "eclipse_depth")
 
 
 def test_offsets_are_averaged_on_one_branch_and_failed_fits_drop_out():

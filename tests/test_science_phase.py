@@ -20,7 +20,7 @@ from astropy.table import Table
 pytestmark = pytest.mark.slow
 
 EDGES = [1.31, 1.45, 1.6, 1.78, 1.99]
-SETTINGS = [("bin", "edges", tuple(EDGES))]
+SETTINGS = [("bin", "edges", tuple(EDGES))]     # as tests/conftest.py's phase_programme
 #: The programme's: a joint grid of two models keeps the suite short (the default grid is
 #: the benchmark's).
 JOINT_MODELS = ("visit1+orbit2+scan+ramp", "visit1+orbit1+scan+ramp")
@@ -28,17 +28,10 @@ PROGRAMME_SETTINGS = SETTINGS + [("joint", "models", JOINT_MODELS)]
 
 
 @pytest.fixture(scope="module")
-def pair(tmp_path_factory):
-    from lightledger.synthetic_data.render import render
-    from lightledger.tasks.programme import reduce_programme
-
-    out = tmp_path_factory.mktemp("phase-pair")
-    programme = render("phase-pair", out, seed=2, n_orbits=3, n_exposures=3 * 9)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        result = reduce_programme(programme, settings=PROGRAMME_SETTINGS, workers=1)
-    assert result.ok, "\n".join(result.messages)
-    return out, programme, result
+def pair(phase_programme):
+    # the shared render (tests/conftest.py), reduced with this module's settings
+    assert phase_programme.programme_settings == PROGRAMME_SETTINGS
+    return phase_programme.out, phase_programme.programme, phase_programme.result
 
 
 def test_programme_products_pages_and_truth(pair, science):
@@ -124,16 +117,10 @@ def test_programme_products_pages_and_truth(pair, science):
     assert abs(np.mean(d - a)) < 3 * noise
 
 
-def test_single_phase_curve_visit(pair):
+def test_single_phase_curve_visit(phase_single):
     # A visit of kind phase-curve reduced alone runs the detrend stage's full-orbit fit on
     # the products the programme made (Luigi ran only Detrend), with the same products.
-    from lightledger.tasks.run import reduce_visit
-
-    out, _, _ = pair
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        result = reduce_visit(out / "visit-eclipse" / "visit.toml", settings=SETTINGS)
-    assert result.ok, "\n".join(result.messages)
+    result = phase_single
     assert result.ran == ["Detrend"]
     assert Path(result.final).name == "planet.fits"
     planet = Table.read(result.final, hdu="PLANET")
