@@ -45,7 +45,7 @@ def test_programme_products_pages_and_truth(pair, science):
     # 1000 ppm = 12 times the noise away), an rms difference below 4 times the noise (the
     # fitted systematics of two short orbits carry the phase curve's uncertainty) and a
     # correlation above 0.9.
-    from lightledger.tasks import phasecurve
+    from lightledger.tasks import phasecolumns, phasecurve
 
     out, programme, result = pair
     families = {f for f, _ in result.ran_tasks}
@@ -69,7 +69,8 @@ def test_programme_products_pages_and_truth(pair, science):
     readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
     for table in (phasecurve.DETRENDED_COLUMNS, phasecurve.PLANET_COLUMNS,
                   phasecurve.PHASE_COLUMNS, phasecurve.BIN_COLUMNS, phasecurve.DAYNIGHT_COLUMNS,
-                  phasecurve.ALONE_COLUMNS, phasecurve.CONSISTENCY_COLUMNS):
+                  phasecurve.ALONE_COLUMNS, phasecurve.CONSISTENCY_COLUMNS,
+                  phasecolumns.COEFFICIENT_COLUMNS):
         assert [c for c in table if f"`{c}`" not in readme] == []
 
     # The joint grid: every model fitted to both visits, ranked per light curve, the planet
