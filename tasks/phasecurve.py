@@ -34,28 +34,29 @@ declared once in :mod:`.phasecolumns` and documented in the README.
 """
 
 import numpy as np
-from astropy.table import Table
+from astropy.table import Table, vstack
 
 from lightledger.pipeline.diagnostics import residual_quality
 from lightledger.pipeline.jointfit import PlanetModel
 from lightledger.pipeline.orbit import Ephemeris
+from lightledger.pipeline.phasegrid import PLANET_QUANTITIES, marginal_interval
 from lightledger.pipeline.programme import (QUANTITIES, VisitCurves, consistency,
                                             phase_resolved_spectrum, planet_flux_points, quantity)
 
+from .detrendsetup import systematics_setup
+from .detrendtables import with_reasons
+from .lightcurves import expand_rows, usable_rows, wide_table
 from .metadata import set_time_keywords
 from .phasecolumns import (ALONE_COLUMNS, BIN_COLUMNS, CONSISTENCY_COLUMNS, DAYNIGHT_COLUMNS,
                            DETRENDED_COLUMNS, PHASE_COLUMNS, PHASE_GRID_COLUMNS, PLANET_COLUMNS,
                            PLANET_GRID_COLUMNS, describe, err_name)
+from .phasemeta import coefficients_table, phase_cards, phase_meta, planet_cards
 from .products import table_hdu, write_ecsv, write_fits
 
 __all__ = ["planet_model", "visit_curves", "write_phase_products", "phase_grid_table",
            "DETRENDED_COLUMNS", "PLANET_COLUMNS", "PLANET_GRID_COLUMNS", "PHASE_GRID_COLUMNS",
            "PHASE_COLUMNS", "BIN_COLUMNS", "DAYNIGHT_COLUMNS", "ALONE_COLUMNS",
            "CONSISTENCY_COLUMNS"]
-
-_describe = describe
-_err_name = err_name
-
 
 def planet_model(event, params):
     """The shared planet of a visit's ``[event]`` (or a programme's ``[planet]``)."""
@@ -73,9 +74,6 @@ def visit_curves(lc, event, detrend_params, name):
     Exposures set aside at input (rows of LIGHTCURVES with ``set_aside``) are
     not among the curves.
     """
-    from .detrend import systematics_setup
-    from .lightcurves import usable_rows
-
     lc = lc[usable_rows(lc)]
     inputs, model, _, left_out = systematics_setup(lc, event, detrend_params)
     bad = np.asarray(lc["flux_outlier"], bool) | left_out
@@ -103,7 +101,7 @@ def _detrended_table(lc, k, fit, phase):
             det[name] = np.full(n, np.nan)
         for name in ("detrended", "detrended_error", "systematics", "model", "residual"):
             det[name] = np.full((n, n_ch), np.nan)
-        return _describe(det, DETRENDED_COLUMNS)
+        return describe(det, DETRENDED_COLUMNS)
     white = fit.white.visits[k]
     chans = [c.visits[k] for c in fit.channels]
 
@@ -121,13 +119,11 @@ def _detrended_table(lc, k, fit, phase):
     det["systematics"] = stack("systematics")
     det["model"] = stack("model")
     det["residual"] = stack("residuals")
-    return _describe(det, DETRENDED_COLUMNS)
+    return describe(det, DETRENDED_COLUMNS)
 
 
 def _visit_detrended(lc, lc_all, k, fit, eph):
     """DETRENDED of visit ``k``: every exposure of its LIGHTCURVES, with why any is not used."""
-    from .detrend import with_reasons
-
     phase = np.mod((np.asarray(lc["time_bjd_tdb"], float) - eph.t0) / eph.period, 1.0)
     det = _detrended_table(lc, k, fit, phase)
     # the first orbit was left out when none of its exposures entered the fit
@@ -138,7 +134,7 @@ def _visit_detrended(lc, lc_all, k, fit, eph):
     det = with_reasons(det, lc, lc_all, left_out)
     t_all = np.asarray(det["time_bjd_tdb"], float)   # a set-aside exposure's phase, from its time
     det["phase"] = np.mod((t_all - eph.t0) / eph.period, 1.0)
-    return _describe(det, DETRENDED_COLUMNS)
+    return describe(det, DETRENDED_COLUMNS)
 
 
 def _phase_table(points, dets):
@@ -148,8 +144,6 @@ def _phase_table(points, dets):
     of their LIGHTCURVES): a set-aside exposure gets a row with NaN values and
     its ``reason``.
     """
-    from .lightcurves import expand_rows
-
     parts = []
     for k, det in enumerate(dets):
         sel = points.visit == k
@@ -166,8 +160,7 @@ def _phase_table(points, dets):
         t["set_aside"] = np.asarray(det["set_aside"], bool)
         t["reason"] = np.asarray(det["reason"], str)
         parts.append(t)
-    from astropy.table import vstack
-    return _describe(vstack(parts, metadata_conflicts="silent"), PHASE_COLUMNS)
+    return describe(vstack(parts, metadata_conflicts="silent"), PHASE_COLUMNS)
 
 
 def _planet_row(j, lo, hi, jf, planet):
@@ -206,11 +199,10 @@ def _with_grid(row, grid, c, sides):
 
     ``sides``: ``{name: (lo, hi)}`` of :func:`~lightledger.pipeline.phasegrid.marginal_interval`.
     """
-    from lightledger.pipeline.phasegrid import PLANET_QUANTITIES
     out = dict(row)
     for name in PLANET_QUANTITIES:
         out[name] = float(grid.value[name][c])
-        out[_err_name(name)] = float(grid.error[name][c])
+        out[err_name(name)] = float(grid.error[name][c])
     for name, (lo, hi) in sides.items():
         out[f"{name}_error_lo" if name == "amplitude" else "offset_error_lo_deg"] = float(lo[c])
         out[f"{name}_error_hi" if name == "amplitude" else "offset_error_hi_deg"] = float(hi[c])
@@ -225,7 +217,6 @@ def _with_grid(row, grid, c, sides):
 
 def phase_grid_table(grid):
     """GRID of a phase-curve fit: one row per model and light curve (channel -1 = white band)."""
-    from lightledger.pipeline.phasegrid import PLANET_QUANTITIES
     rows = []
     n_models, n_curves = grid.weight.shape
     for c in range(n_curves):
@@ -239,7 +230,7 @@ def phase_grid_table(grid):
             for q in PLANET_QUANTITIES:
                 row[q] = float(grid.values[q][m, c])
             for q in PLANET_QUANTITIES:
-                row[_err_name(q)] = float(grid.errors[q][m, c])
+                row[err_name(q)] = float(grid.errors[q][m, c])
             row["status"] = "ok" if np.isfinite(grid.chi2[m, c]) else "failed"
             rows.append(row)
     table = _table(rows, PHASE_GRID_COLUMNS)
@@ -249,7 +240,7 @@ def phase_grid_table(grid):
 
 
 def _table(rows, columns):
-    return _describe(Table(rows=rows, names=list(rows[0])), columns)
+    return describe(Table(rows=rows, names=list(rows[0])), columns)
 
 
 def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, params, *,
@@ -295,11 +286,6 @@ def write_phase_products(folder, prov, fit, lcs, channels, white_band, planet, p
     (outputs, figures, metrics)
         Paths written, figure paths, headline figures for the entry.
     """
-    from lightledger.pipeline.phasegrid import marginal_interval
-
-    from .lightcurves import usable_rows, wide_table
-    from .phasemeta import coefficients_table, phase_cards, phase_meta, planet_cards
-
     eph = planet.ephemeris
     lcs_all = lcs
     lcs = [lc[usable_rows(lc)] for lc in lcs_all]        # the exposures fitted
@@ -426,7 +412,7 @@ def _alone_tables(all_fits, fit, alone, names):
             for qname, _ in QUANTITIES:
                 row[qname] = quantity(fa, qname)[0]
             for qname, _ in QUANTITIES:
-                row[_err_name(qname)] = quantity(fa, qname)[1]
+                row[err_name(qname)] = quantity(fa, qname)[1]
             rows.append(row)
         for qname, (chi2, n) in consistency(fits_alone, jf).items():
             crow.append({"channel": j, "quantity": qname, "chi2": chi2, "n_visits": n})
