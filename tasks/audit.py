@@ -36,7 +36,7 @@ from pathlib import Path
 from lightledger.pipeline.errors import InputFileError
 
 from . import locks
-from .base import ENTRY_NAME, MADE_SUFFIX, read_entry
+from .entries import ENTRY_NAME, MADE_SUFFIX, read_entry
 from .digests import sha256_of
 from .products import ecsv_checksum_ok, read_provenance
 
@@ -210,7 +210,7 @@ class _Checker:
         """The content the stage used must still give its identity and folder name."""
         from lightledger.pipeline.parameters import STAGES
 
-        from .base import _hash, raw_identity_from_record
+        from .identities import _hash, raw_identity_from_record
 
         match = STAGE_FOLDER.match(folder.name)
         problems = []

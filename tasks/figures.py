@@ -1,115 +1,25 @@
-"""Diagnostic figures of each stage (PNG, written through :func:`products.save_figure`)."""
+"""Diagnostic figures of each stage (PNG, written through :func:`products.save_figure`).
 
-import warnings
+What every figure shares lives in :mod:`.figurekit`, the detrend stage's fits
+in :mod:`.figures_detrend`, the page's overlay of entries in
+:mod:`.figures_overlay`; their public names are re-exported here.
+"""
 
-import matplotlib
+import numpy as np
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
+from lightledger.pipeline import mask as dq
 
-from lightledger.pipeline import mask as dq  # noqa: E402
-
-from .products import save_figure  # noqa: E402
+# what every figure shares, and the page's overlay of entries, re-exported here so that
+# ``from lightledger.tasks.figures import NAME`` keeps working
+from .figurekit import (LONG_VISIT, MAX_ROWS, _FLAG_COLOURS, _figure, _hatch_rows,  # noqa: F401
+                        _hours, _image, _limits, _pixel_axes, _shade_rows, binned_points,
+                        decimate_rows, flag_image, plt)
+from .figures_overlay import _dim_channels, _made_from, overlay_png, stage_spectrum  # noqa: F401
+from .products import save_figure
 
 __all__ = ["calibrate_figure", "extract_figure", "bin_figure", "detrend_figure",
            "detrend_channels_figure", "flag_image",
            "binned_points", "decimate_rows", "stage_spectrum", "overlay_png"]
-
-
-#: Most rows of an image drawn from per-exposure data (a figure is ~800 pixels tall).
-MAX_ROWS = 600
-
-
-def decimate_rows(values, max_rows=MAX_ROWS):
-    """Mean of consecutive groups of rows (NaN ignored), so at most ``max_rows`` remain.
-
-    Returns ``(decimated, step)``; ``step`` rows of ``values`` make one row.
-    """
-    values = np.asarray(values)
-    step = max(1, -(-len(values) // max_rows))
-    if step == 1:
-        return values, 1
-    n = len(values) // step * step
-    groups = values[:n].reshape((n // step, step) + values.shape[1:])
-    with np.errstate(all="ignore"), warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)        # a group of NaN only
-        out = np.nanmean(groups, axis=1)
-        if n < len(values):
-            out = np.concatenate([out, np.nanmean(values[n:], axis=0, keepdims=True)])
-    return out, step
-
-
-def _hours(days):
-    days = np.asarray(days, float)
-    return (days - days[0]) * 24.0
-
-
-def _figure(rows, cols, size, **space):
-    """A figure with a fixed layout (constrained layout costs ~40 % of the drawing time)."""
-    fig, axes = plt.subplots(rows, cols, figsize=size, squeeze=False)
-    fig.subplots_adjust(**{"left": 0.07, "right": 0.97, "bottom": 0.07, "top": 0.93,
-                           "wspace": 0.32, "hspace": 0.42, **space})
-    return fig, axes
-
-
-def _image(fig, ax, image, *, label, cmap="magma", percentiles=(1, 99.5), **kw):
-    """An image in pixel coordinates with a labelled colour bar."""
-    finite = np.isfinite(image)
-    lo, hi = (np.percentile(image[finite], percentiles) if finite.any() else (0.0, 1.0))
-    if not hi > lo:
-        hi = lo + 1.0
-    kw = {"origin": "lower", "aspect": "auto", "cmap": cmap, "vmin": lo, "vmax": hi,
-          "interpolation": "nearest", **kw}
-    im = ax.imshow(image, **kw)
-    fig.colorbar(im, ax=ax, label=label, fraction=0.05, pad=0.02)
-    return im
-
-
-def _pixel_axes(ax):
-    ax.set_xlabel("column (pixel)")
-    ax.set_ylabel("row (pixel)")
-
-
-#: One colour per flag, in bit order (colour-blind-safe qualitative palette, then greys).
-_FLAG_COLOURS = ("#88CCEE", "#DDCC77", "#CC6677", "#AA4499", "#44AA99", "#999933",
-                 "#882255", "#332288", "#000000")
-
-
-def flag_image(fig, ax, bits):
-    """The mask as its gravest flag per pixel, with a colour bar labelled by value and name.
-
-    Returns the names of the flags present.
-    """
-    from matplotlib.colors import BoundaryNorm, ListedColormap
-
-    bits = np.asarray(bits, dtype=np.int64)
-    present = [(name, value) for name, value in dq.FLAGS.items() if np.any(bits & value)]
-    shown = np.zeros(bits.shape, int)
-    for k, (name, value) in enumerate(present, start=1):   # bit order: the gravest comes last
-        shown[(bits & value) > 0] = k
-    colours = ["#FFFFFF"] + [_FLAG_COLOURS[list(dq.FLAGS).index(n) % len(_FLAG_COLOURS)]
-                             for n, _ in present]
-    cmap = ListedColormap(colours)
-    norm = BoundaryNorm(np.arange(len(colours) + 1) - 0.5, len(colours))
-    im = ax.imshow(shown, origin="lower", aspect="auto", cmap=cmap, norm=norm,
-                   interpolation="nearest")
-    bar = fig.colorbar(im, ax=ax, ticks=np.arange(len(colours)), fraction=0.05, pad=0.02)
-    counts = [int(np.count_nonzero(bits & v)) for _, v in present]
-    bar.set_ticklabels(["0 clean"] + [f"{v} {n} ({c})" for (n, v), c in zip(present, counts)])
-    bar.ax.tick_params(labelsize=7)
-    bar.set_label("gravest flag: bit value, name (pixels)")
-    _pixel_axes(ax)
-    return [n for n, _ in present]
-
-
-def _shade_rows(ax, lo, hi, *, colour, label, alpha=0.18):
-    ax.axhspan(lo - 0.5, hi - 0.5, color=colour, alpha=alpha, lw=0, label=label)
-
-
-def _hatch_rows(ax, lo, hi, *, colour, label):
-    ax.axhspan(lo - 0.5, hi - 0.5, facecolor="none", edgecolor=colour, hatch="///", lw=0.8,
-               label=label)
 
 
 def calibrate_figure(path, frame, bits, exposures, *, source_rows=None, scanning=False):
@@ -275,31 +185,6 @@ def extract_figure(path, wavelength, flux, exposures, profile_image, *, median_f
     return save_figure(fig, path)
 
 
-def binned_points(t, y, n_bins):
-    """Means of ``y`` in ``n_bins`` consecutive groups of (sorted) ``t``; NaN ignored.
-
-    Returns ``(t_mean, y_mean, y_error)``; the error is the scatter of the group
-    over the square root of its size (groups of one have NaN error).
-    """
-    t = np.asarray(t, float)
-    y = np.asarray(y, float)
-    ok = np.isfinite(t) & np.isfinite(y)
-    t, y = t[ok], y[ok]
-    order = np.argsort(t)
-    t, y = t[order], y[order]
-    n_bins = int(max(1, min(n_bins, t.size)))
-    groups = np.array_split(np.arange(t.size), n_bins)
-    tm = np.array([t[g].mean() for g in groups if g.size])
-    ym = np.array([y[g].mean() for g in groups if g.size])
-    ye = np.array([y[g].std(ddof=1) / np.sqrt(g.size) if g.size > 1 else np.nan
-                   for g in groups if g.size])
-    return tm, ym, ye
-
-
-#: Exposures above which light curves are drawn as faint points with binned points on top.
-LONG_VISIT = 300
-
-
 def bin_figure(path, lc, channels, spectrum=None, lit=None):
     """Channel light curves, the white light curve and the channels on the median spectrum.
 
@@ -404,157 +289,6 @@ def detrend_channels_figure(*args, **kwargs):
     from .figures_detrend import detrend_channels_figure as draw
 
     return draw(*args, **kwargs)
-
-
-# ---------------------------------------------------------------------------
-# comparing entries of one stage (the notebook page)
-# ---------------------------------------------------------------------------
-
-def _made_from(folder):
-    import json
-    from pathlib import Path
-
-    folder = Path(folder)
-    try:
-        entry = json.loads((folder / "entry.json").read_text(encoding="utf-8"))
-        return folder.parent / entry["made_from"]
-    except (OSError, ValueError, KeyError, TypeError):
-        return None
-
-
-def _dim_channels(bin_folder):
-    """The ``dim`` flags of a bin entry's channels, or None."""
-    from pathlib import Path
-
-    from astropy.io import fits
-
-    try:
-        with fits.open(Path(bin_folder) / "lightcurves.fits", memmap=False) as hdul:
-            data = hdul["CHANNELS"].data
-            return np.asarray(data["dim"], bool) if "dim" in data.names else None
-    except (OSError, KeyError, TypeError):
-        return None
-
-
-def stage_spectrum(stage, folder):
-    """The spectrum an entry of ``stage`` yields, for comparing entries; None if it has none.
-
-    Returns
-    -------
-    dict or None
-        ``x``, ``y``, ``yerr`` (or None), ``lit`` (bool per point: True where the
-        point has light), ``xlabel``, ``ylabel``: the depth spectrum of a detrend
-        entry (ppm, channels only), the median spectrum of a bin entry (electrons
-        per pixel), the reference spectrum of an extract entry (electrons per
-        column).
-    """
-    from pathlib import Path
-
-    from astropy.io import fits
-
-    folder = Path(folder)
-    try:
-        if stage == "detrend":
-            with fits.open(folder / "detrended.fits", memmap=False) as hdul:
-                d = hdul["DEPTHS"].data
-                chan = np.asarray(d["channel"]) >= 0
-                x = np.asarray(d["wave_mid"], float)[chan]
-                y = np.asarray(d["depth"], float)[chan] * 1e6
-                e = np.asarray(d["depth_error"], float)[chan] * 1e6
-            dim = _dim_channels(_made_from(folder)) if _made_from(folder) else None
-            lit = ~dim if dim is not None and dim.size == x.size else np.ones(x.size, bool)
-            return {"x": x, "y": y, "yerr": e, "lit": lit, "xlabel": "wavelength (um)",
-                    "ylabel": "depth (ppm)"}
-        if stage == "bin":
-            with fits.open(folder / "lightcurves.fits", memmap=False) as hdul:
-                s = hdul["SPECTRUM"].data
-                x = 0.5 * (np.asarray(s["wave_lo"], float) + np.asarray(s["wave_hi"], float))
-                y = np.asarray(s["flux"], float)
-            return {"x": x, "y": y, "yerr": None, "lit": np.ones(x.size, bool),
-                    "xlabel": "wavelength (um)", "ylabel": "median spectrum (electrons per pixel)"}
-        if stage == "extract":
-            with fits.open(folder / "reference.fits", memmap=False) as hdul:
-                s = hdul["REFSPEC"].data
-                x = np.asarray(s["wavelength"], float)
-                y = np.asarray(s["flux"], float)
-            order = np.argsort(x)
-            return {"x": x[order], "y": y[order], "yerr": None, "lit": np.ones(x.size, bool),
-                    "xlabel": "wavelength (um)",
-                    "ylabel": "reference spectrum (electrons per column)"}
-    except (OSError, KeyError, TypeError, ValueError):
-        return None
-    return None
-
-
-def _limits(values, errors, lit):
-    """y limits from the points with light (their values +- errors), with a margin."""
-    v = np.asarray(values, float)[lit]
-    e = np.zeros_like(v) if errors is None else np.asarray(errors, float)[lit]
-    ok = np.isfinite(v) & np.isfinite(e)
-    if not ok.any():
-        return None
-    lo, hi = float(np.min(v[ok] - e[ok])), float(np.max(v[ok] + e[ok]))
-    pad = 0.08 * (hi - lo) if hi > lo else max(abs(hi), 1.0) * 0.1
-    return lo - pad, hi + pad
-
-
-def overlay_png(stage, entries, *, dpi=90):
-    """PNG bytes of the spectra of several entries of one stage overlaid, or None.
-
-    Parameters
-    ----------
-    stage : str
-        ``extract``, ``bin`` or ``detrend`` (other stages have no spectrum).
-    entries : sequence of (str, path-like)
-        A label (the folder name, say) and the entry's folder, newest last.
-    dpi : int
-
-    Returns
-    -------
-    bytes or None
-        None when fewer than two entries yield a spectrum.  Error bars are drawn
-        for depths; the y axis is scaled on the points that have light (dim
-        channels may run off it, marked by their arrows at the edge).
-    """
-    import io
-
-    series = [(label, stage_spectrum(stage, folder)) for label, folder in entries]
-    series = [(label, s) for label, s in series if s is not None and np.size(s["x"])]
-    if len(series) < 2:
-        return None
-    fig, axes = _figure(1, 1, (9, 4.5), left=0.1, right=0.7, bottom=0.13, top=0.9)
-    ax = axes[0, 0]
-    colours = plt.get_cmap("tab10")
-    spans = []
-    for k, (label, s) in enumerate(series):
-        colour = colours(k % 10)
-        shift = 0.0
-        if s["yerr"] is not None:
-            step = np.nanmedian(np.diff(s["x"])) if s["x"].size > 1 else 0.0
-            shift = (k - 0.5 * (len(series) - 1)) * 0.08 * (step if np.isfinite(step) else 0.0)
-            ax.errorbar(s["x"] + shift, s["y"], s["yerr"], fmt="o", ms=4, capsize=2,
-                        color=colour, label=label)
-            if np.any(~s["lit"]):
-                ax.plot((s["x"] + shift)[~s["lit"]], s["y"][~s["lit"]], "x", color="0.5")
-        else:
-            ax.plot(s["x"], s["y"], lw=1, color=colour, label=label)
-        limits = _limits(s["y"], s["yerr"], s["lit"])
-        if limits:
-            spans.append(limits)
-    if spans:
-        ax.set_ylim(min(a for a, _ in spans), max(b for _, b in spans))
-    ax.set_xlabel(series[0][1]["xlabel"])
-    ax.set_ylabel(series[0][1]["ylabel"])
-    ax.set_title(f"{stage}: the {len(series)} entries compared"
-                 + (" (x: dim channels)" if any(np.any(~s["lit"]) for _, s in series) else ""),
-                 fontsize=10)
-    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    buffer = io.BytesIO()
-    try:
-        fig.savefig(buffer, format="png", dpi=dpi)
-    finally:
-        plt.close(fig)
-    return buffer.getvalue()
 
 
 def grid_figure(path, names, weight, depth, error, wave_mid, value, value_error, kind,

@@ -24,7 +24,7 @@ import numpy as np
 from lightledger.pipeline.diagnostics import binned_rms
 from lightledger.pipeline.errors import LightledgerError
 
-from .figures import LONG_VISIT, _figure, _hours, _limits, binned_points, plt
+from .figurekit import LONG_VISIT, _figure, _hours, _limits, binned_points, plt
 from .products import save_figure
 
 __all__ = ["detrend_figure", "detrend_channels_figure", "segments"]

@@ -1,0 +1,162 @@
+"""Making one notebook folder: locks, forcing and made-records around a task's run.
+
+:class:`FolderTask` is the mixin of every task that makes one notebook folder
+(the stage tasks through :class:`.base.VisitTask`, a programme's joint fit):
+its ``run()`` is wrapped by :func:`guarded`, which holds the folder's shared
+lock and the output's exclusive lock (:mod:`.locks`), moves a forced stage's
+old folder aside (:func:`supersede`), removes temporary files of dead
+writers (:func:`remove_parts`), returns at once when another reducer made the
+output meanwhile, and writes the output's made-record after the run.
+"""
+
+import inspect
+import os
+import socket
+import time
+from contextlib import contextmanager
+from datetime import datetime, timezone
+from pathlib import Path
+
+from . import locks
+from .digests import sha256_of
+from .entries import ENTRY_NAME, _stat_key, made_record_path, read_made_record
+from .products import known_digest, part_pattern, write_json
+
+__all__ = ["FolderTask", "guarded", "supersede", "remove_parts"]
+
+
+class FolderTask:
+    """What a task that makes one notebook folder shares: locks, forcing, made-records.
+
+    A subclass (a :class:`luigi.Task`) provides ``folder``, ``output()``,
+    ``force_after``, ``run_id`` and ``forced``; its ``run()`` is wrapped
+    (:func:`guarded`): the folder's shared lock and the output's exclusive
+    lock are held while it runs, leftover temporary files of the output are
+    removed, a forced stage's old folder is moved aside first, the run
+    returns at once when another reducer made the output meanwhile, and the
+    output's made-record is written after it.
+    """
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        if "run" in cls.__dict__:
+            cls.run = guarded(cls.__dict__["run"])
+
+    def check_identity(self):
+        """Raise when the task's inputs no longer give its identity (default: nothing to check)."""
+
+    def made_by_this_run(self):
+        """True when this task's output was made by the run that scheduled it."""
+        return bool(self.run_id) and read_made_record(self.output().path).get("run") == self.run_id
+
+    def supersede_if_old(self):
+        """Move a forced stage's complete folder aside when its entry predates the run.
+
+        Done under the folder's exclusive lock, so never while another task
+        writes into it; a folder whose entry is newer than the run's start was
+        made again by a run that started later, or is being made (no entry):
+        it is kept.
+        """
+        folder = self.folder
+        entry = folder / ENTRY_NAME
+        try:
+            if os.stat(entry).st_mtime >= self.force_after:
+                return
+        except FileNotFoundError:
+            return
+        with locks.locked(locks.folder_lock_path(folder)):
+            try:
+                if os.stat(entry).st_mtime >= self.force_after:
+                    return
+            except FileNotFoundError:
+                return
+            supersede(folder)
+
+
+def supersede(folder):
+    """Rename a stage folder to ``NAME.superseded-TIME`` (the caller holds its lock)."""
+    folder = Path(folder)
+    stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S")
+    target = folder.with_name(f"{folder.name}.superseded-{stamp}")
+    n = 1
+    while target.exists():
+        n += 1
+        target = folder.with_name(f"{folder.name}.superseded-{stamp}-{n}")
+    folder.rename(target)
+    folder.mkdir()          # its replacement is being made: the folder says so at once
+    return target
+
+
+def remove_parts(folder, name=None):
+    """Remove temporary files of dead writers in a folder (of one product, or all).
+
+    The caller holds the product's lock (or the folder's exclusive lock), so
+    no live process is writing them.
+    """
+    pattern = part_pattern(name) if name else ".*.part"
+    removed = 0
+    for part in Path(folder).glob(pattern):
+        try:
+            part.unlink()
+            removed += 1
+        except FileNotFoundError:
+            pass
+    return removed
+
+
+def guarded(run):
+    """Wrap a task's ``run`` (plain or generator) with the checks and locks of :class:`FolderTask`."""
+    if inspect.isgeneratorfunction(run):
+        def wrapper(self):
+            with _claim(self) as fresh:
+                if fresh:
+                    yield from run(self)
+                    _record(self)
+    else:
+        def wrapper(self):
+            with _claim(self) as fresh:
+                if fresh:
+                    result = run(self)
+                    _record(self)
+                    return result
+    wrapper.__name__ = run.__name__
+    wrapper.__doc__ = run.__doc__
+    wrapper.__wrapped__ = run
+    return wrapper
+
+
+_guarded = guarded
+
+
+@contextmanager
+def _claim(task):
+    task.check_identity()
+    if task.forced:
+        task.supersede_if_old()
+    folder = task.folder
+    output = Path(task.output().path)
+    shared = locks.acquire(locks.folder_lock_path(folder), shared=True)
+    try:
+        own = locks.acquire(locks.product_lock_path(folder, output.name))
+        try:
+            if task.complete():
+                yield False          # another reducer made it while this one waited
+                return
+            remove_parts(folder, output.name)
+            task.__dict__["_started"] = time.time()
+            yield True
+        finally:
+            locks.release(own)
+    finally:
+        locks.release(shared)
+
+
+def _record(task):
+    output = Path(task.output().path)
+    if not output.exists():
+        return
+    record = {"run": task.run_id, "task": task.task_family,
+              "seconds": round(time.time() - task.__dict__.get("_started", time.time()), 3),
+              "host": socket.gethostname(), "pid": os.getpid(),
+              "stat": _stat_key(output), "sha256": known_digest(output) or sha256_of(output)}
+    write_json(made_record_path(output), record)
