@@ -33,13 +33,14 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from .errors import AllMaskedError, LightledgerError, ParameterError
-from .fiterrors import ERROR_KINDS, depth_errors, event_alone_error, linearise_fit
+from .errors import AllMaskedError, ParameterError
+from .fiterrors import ERROR_KINDS
+from .gridfits import ChannelJob, WhiteJob, fit_channels_job, fit_white_job
 from .inherited import inherited_error
 from .limbfit import fit_limb_darkening
 from .selection import CRITERIA, information_criteria, marginalise, model_weights
 from .systematics import SystematicsModel
-from .whitelight import event_template, fit_at_shapes, fit_white, radius_fixed_point
+from .whitelight import event_template
 
 __all__ = ["Curves", "GridFit", "rank_fits", "marginalise_fits", "fit_grid", "inherited_error"]
 
@@ -218,7 +219,7 @@ def _shared_mask(models, inputs_list, base):
 
 def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind="covariance",
              n_shifts=100, stare=False, tau_grid=None, reference_rate=None, channel_ld=None,
-             ld_prior=None, event_options=None, extra_components=(), progress=None):
+             ld_prior=None, event_options=None, extra_components=(), progress=None, map=map):
     """Fit every model of a grid to the white light curve and every channel.
 
     Parameters
@@ -256,6 +257,11 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
         Components added to every model (e.g. phase sinusoids as systematics).
     progress : callable, optional
         ``progress(done, total, text)`` after each fit of a model.
+    map : callable, optional
+        ``map(function, jobs)`` returning the results in the jobs' order (the
+        builtin by default).  The models' white fits, then each model's channel
+        fits, are independent jobs: a process pool's ordered ``imap`` fits
+        several models at once.  The results do not depend on it.
 
     Returns
     -------
@@ -302,7 +308,7 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     total = len(set(owner)) + n_models
     done = 0
 
-    def record(m, c, res, errs, lin, inherited=0.0):
+    def record(m, c, res, errs, alone, inherited=0.0):
         label = "white light" if c == 0 else f"channel {c - 1}"
         if res.n_points <= res.n_params:
             failures.append(f"{specs[m].name} ({label}): {res.n_params} parameters for "
@@ -311,7 +317,7 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
         if not (np.isfinite(res.depth) and np.isfinite(errs.pick(error_kind))):
             failures.append(f"{specs[m].name} ({label}): the depth or its error is not finite")
             return False
-        inflation = errs.covariance / (event_alone_error(lin) * max(res.error_scale, 1.0))
+        inflation = errs.covariance / (alone * max(res.error_scale, 1.0))
         if inflation > MAX_ERROR_INFLATION:
             failures.append(f"{specs[m].name} ({label}): the depth is not determined (its error "
                             f"is {inflation:.0f} times that of the event alone: the model's "
@@ -331,18 +337,13 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
         return True
 
     # 1. the white light, once per distinct white model
-    for m in range(n_models):
-        if owner[m] != m:
-            continue
-        try:
-            wf = fit_white(white_inputs, curves.white_flux, curves.white_variance, models[m], event,
-                           free=free, mask=white_mask, **opts)
-        except (LightledgerError, np.linalg.LinAlgError) as exc:
-            failures.append(f"{specs[m].white_name} (white light): {exc}")
-            wf = None
-        if wf is not None and not record(m, 0, wf.result, depth_errors(
-                wf.result, wf.linearisation, curves.white_flux, n_shifts=n_shifts),
-                wf.linearisation):
+    jobs = [WhiteJob(m, white_inputs, curves.white_flux, curves.white_variance, models[m], event,
+                      tuple(free), white_mask, opts, n_shifts, error_kind)
+            for m in range(n_models) if owner[m] == m]
+    for m, wf, errs, alone, error in map(fit_white_job, jobs):
+        if error is not None:
+            failures.append(f"{specs[m].white_name} (white light): {error}")
+        if wf is not None and not record(m, 0, wf.result, errs, alone):
             wf = None
         white_fits[m] = wf
         done += 1
@@ -375,54 +376,29 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     # exposure is masked, e.g. excluded by the observer, is not fitted)
     skipped = np.all(mask, axis=0)
     templates = {}
+    jobs = []
     for m in range(n_models):
         wf = white_fits[owner[m]]
         if wf is None:
-            failures.append(f"{specs[m].name} (channels): its white-light fit failed")
-            done += 1
             continue
         if owner[m] not in templates:
             templates[owner[m]] = event_template(curves.inputs.time, wf.event, u1=u1, u2=u2)
-        tmpl = templates[owner[m]]
-        g_cm = common.get(specs[m].common_mode)
-        for j in range(n_ch):
-            if skipped[j]:
+        jobs.append(ChannelJob(m, curves, mask, skipped, templates[owner[m]], models[m],
+                                shape_names[m], wf, best_white if specs[m].common_mode else None,
+                                specs[m].common_mode, common.get(specs[m].common_mode), event,
+                                u1, u2, opts, n_shifts, error_kind))
+    results = iter(map(fit_channels_job, jobs))
+    for m in range(n_models):
+        if white_fits[owner[m]] is None:
+            failures.append(f"{specs[m].name} (channels): its white-light fit failed")
+            done += 1
+            continue
+        for j, outcome in next(results):
+            if isinstance(outcome, str):
+                failures.append(f"{specs[m].name} (channel {j}): {outcome}")
                 continue
-            g = np.ones(curves.flux.shape[0]) if g_cm is None else g_cm
-            with np.errstate(divide="ignore", invalid="ignore"):
-                f, v = curves.flux[:, j] / g, curves.variance[:, j] / (g * g)
-            try:
-                res, design = fit_at_shapes(chan_inputs[j], f, v, tmpl[:, j], models[m], wf.shapes,
-                                            mask=mask[:, j], **opts)
-                t_j = tmpl[:, j]
-                if event["kind"] == "transit":
-                    # the channel's transit at its own fitted radius (whitelight.radius_fixed_point)
-                    ev_j, t_j, res, _ = radius_fixed_point(
-                        lambda ev, j=j: event_template(curves.inputs.time, ev, u1=float(u1[j]),
-                                                       u2=float(u2[j])),
-                        lambda tm, f=f, v=v, j=j: fit_at_shapes(
-                            chan_inputs[j], f, v, tm, models[m], wf.shapes, mask=mask[:, j],
-                            **opts)[0],
-                        wf.event, t_j, res)
-                else:
-                    ev_j = wf.event
-                lin = linearise_fit(res, design.columns, t_j, v,
-                                    planet_basis=opts.get("planet_basis"),
-                                    planet_at_event=opts.get("planet_at_event"))
-                extra = inherited_error(
-                    res, lin, t_j, curves.inputs.time, ev_j, (u1[j], u2[j]), wf,
-                    best_white if specs[m].common_mode else None, specs[m].common_mode,
-                    lambda shapes, f=f, v=v, j=j, t_j=t_j: fit_at_shapes(
-                        chan_inputs[j], f, v, t_j, models[m], shapes, mask=mask[:, j],
-                        **opts)[0].depth,
-                    shape_names[m]) ** 2
-                errs = depth_errors(res, lin, f, n_shifts=n_shifts, inherited=extra)
-            except (LightledgerError, np.linalg.LinAlgError) as exc:
-                failures.append(f"{specs[m].name} (channel {j}): {exc}")
-                continue
-            res = replace(res, systematics=res.systematics * g, model=res.model * g,
-                          star=None if res.star is None else res.star * g)
-            record(m, 1 + j, res, errs, lin, float(np.sqrt(extra)))
+            res, errs, alone, inherited = outcome
+            record(m, 1 + j, res, errs, alone, inherited)
         done += 1
         if progress is not None:
             progress(done, total, f"channels: {specs[m].name}")

@@ -216,6 +216,22 @@ def test_binned_rms_white_noise_follows_expectation():
         binned_rms(np.zeros(10), [6])
 
 
+def test_binned_rms_all_sizes_at_once_matches_bin_by_bin():
+    # The vectorised time-averaging test (one cumulative sum for every bin size) against
+    # the obviously correct form: each size's consecutive bins averaged and their sample
+    # standard deviation taken (Pont, Zucker & Queloz 2006), on residuals with an offset
+    # far above their scatter (the cumulative sum must not lose the scatter to rounding).
+    rng = np.random.default_rng(3)
+    for n, offset in ((13, 0.0), (997, 0.3), (4000, 1.0)):
+        r = offset + rng.normal(0.0, 2e-4, n) + np.cumsum(rng.normal(0, 1e-5, n))
+        sizes = np.arange(1, n // 4 + 1)
+        out = binned_rms(r, sizes)
+        slow = np.array([np.std(r[:N * (n // N)].reshape(n // N, N).mean(axis=1), ddof=1)
+                         for N in sizes])
+        np.testing.assert_allclose(out.rms, slow, rtol=1e-9, atol=0)
+        np.testing.assert_array_equal(out.n_bins, n // sizes)
+
+
 def test_fit_channels_divide_white():
     # Common-mode correction (Kreidberg et al. 2014): channels share a systematic shape;
     # dividing by the white-light systematics model leaves each channel needing only
