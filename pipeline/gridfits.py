@@ -14,6 +14,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from .errors import LightledgerError
+from .eventfit import fit_event
 from .fiterrors import depth_errors, event_alone_error, linearise_fit
 from .inherited import inherited_error
 from .whitelight import event_template, fit_at_shapes, fit_white, radius_fixed_point
@@ -99,17 +100,20 @@ def fit_channels_job(job):
         with np.errstate(divide="ignore", invalid="ignore"):
             f, v = curves.flux[:, j] / g, curves.variance[:, j] / (g * g)
         try:
-            res, design = fit_at_shapes(inputs, f, v, job.template[:, j], model, wf.shapes,
-                                        mask=mask[:, j], **opts)
+            design = model.design(inputs, wf.shapes)      # made once, for every refit below
+
+            def refit(tm, f=f, v=v, j=j, design=design):
+                return fit_event(f, v, tm, design.columns, mask=mask[:, j],
+                                 basis_names=design.names, **opts)
+
+            res = refit(job.template[:, j])
             t_j = job.template[:, j]
             if event["kind"] == "transit":
                 # the channel's transit at its own fitted radius (whitelight.radius_fixed_point)
                 ev_j, t_j, res, _ = radius_fixed_point(
                     lambda ev, j=j: event_template(curves.inputs.time, ev, u1=float(u1[j]),
                                                    u2=float(u2[j])),
-                    lambda tm, f=f, v=v, j=j, inputs=inputs: fit_at_shapes(
-                        inputs, f, v, tm, model, wf.shapes, mask=mask[:, j], **opts)[0],
-                    wf.event, t_j, res)
+                    refit, wf.event, t_j, res)
             else:
                 ev_j = wf.event
             lin = linearise_fit(res, design.columns, t_j, v,

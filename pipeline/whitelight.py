@@ -196,9 +196,16 @@ def fit_white(inputs, flux, variance, model, event, *, free=("t0",), mask=None, 
     count = [0]
     templates = {}
 
+    designs = {}
+
     def fit(ev, shapes, derivatives=False):
         count[0] += 1
-        design = model.design(inputs, shapes)
+        key = tuple(sorted((k, float(v)) for k, v in shapes.items()))
+        if key not in designs:          # the event's trials share the shapes' design
+            if len(designs) > 64:
+                designs.clear()
+            designs[key] = model.design(inputs, shapes)
+        design = designs[key]
         key = tuple(float(ev[k]) for k in GEOMETRY_PARAMS)
         if key not in templates:
             templates[key] = event_template(inputs.time, ev)

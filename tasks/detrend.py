@@ -65,9 +65,10 @@ from .detrendsetup import (SINGLE_MODEL, _left_out, _median_rate, _wants_phase_c
 from .detrendtables import (REASONS, _depths_table, _detrended_table,  # noqa: F401
                             _limb_darkening, _unfitted_row, grid_table, read_depths, star_alone,
                             with_reasons)
+from .fitpool import fit_map
 from .lightcurves import read_lightcurves, usable_rows, wide_table
 from .metadata import channel_text, ecsv_meta, fits_cards, set_time_keywords
-from .products import table_hdu, write_ecsv, write_fits
+from .products import table_hdu, write_ecsv, write_fits, write_fits_stream
 
 __all__ = ["Detrend", "event_template", "grid_setup", "systematics_setup", "star_alone",
            "channel_exclusions", "read_depths", "SINGLE_MODEL", "with_reasons", "left_out_rows"]
@@ -135,9 +136,10 @@ class Detrend(VisitTask):
                 notes[j] = "not fitted: every exposure of the channel is masked"
         curves = dataclasses.replace(curves, mask=mask)
         self.progress(0, 1, "model grid")
-        grid = fit_grid(specs, curves, visit.event,
-                        progress=lambda done, total, text: self.progress(done, total, text),
-                        **options)
+        with fit_map(len(specs)) as mapper:      # --workers N: up to N models fitted at once
+            grid = fit_grid(specs, curves, visit.event,
+                            progress=lambda done, total, text: self.progress(done, total, text),
+                            map=mapper, **options)
         n_ch = len(channels)
         kind = visit.event["kind"]
         left_out = left_out_rows(lc, params)
@@ -195,26 +197,37 @@ class Detrend(VisitTask):
         write_fits(fits_path, hdus, prov, header={"TIMESYS": "TDB", "TIMEREF": "SOLARSYSTEM",
                                                    **{k: (v, c) for k, v, c in facts[:4]}})
         models_path = folder / "grid-models.fits"
-        model_hdus = []
-        for m, spec in enumerate(specs):
-            hdu = table_hdu(with_reasons(_detrended_table(lc, grid, np.full(n_ch + 1, m), kind), lc,
-                                         lc_all, left_out), f"MODEL_{m:02d}")
-            hdu.header["MODEL"] = (spec.name, "systematics model")
-            model_hdus.append(hdu)
-        write_fits(models_path, model_hdus, prov)
+
+        def model_hdus():
+            # one model's table in memory at a time
+            for m, spec in enumerate(specs):
+                hdu = table_hdu(with_reasons(_detrended_table(lc, grid, np.full(n_ch + 1, m), kind),
+                                             lc, lc_all, left_out), f"MODEL_{m:02d}")
+                hdu.header["MODEL"] = (spec.name, "systematics model")
+                yield hdu
+
+        write_fits_stream(models_path, model_hdus(), prov)
         outputs = [fits_path, models_path]
         meta = ecsv_meta(visit, t, texp if np.any(np.isfinite(texp)) else [0.0], channels)
         meta["time_columns"] = {"time_bjd_tdb": meta["time_columns"]["time_bjd_tdb"]}
         meta["fitted_event"] = event_fit
         meta["channel_limb_darkening"] = params["limb_darkening"]
-        for name, tab in (("detrended.ecsv", wide_table(det, n_ch, channels)), ("depths.ecsv", depths),
+        for name, tab in (("detrended.ecsv", None), ("depths.ecsv", depths),
                           ("grid.ecsv", table), ("coefficients.ecsv", coefs)):
-            tab = tab.copy(copy_data=False)
+            # the wide table (one column per channel) made only while it is written
+            tab = (wide_table(det, n_ch, channels) if tab is None else tab).copy(copy_data=False)
             depth_meta = {k: tab.meta[k] for k in ("depth_meaning", "depth_error") if k in tab.meta}
             tab.meta.update(meta)
             tab.meta.update(depth_meta)
             write_ecsv(folder / name, tab, prov)
             outputs.append(folder / name)
+        del tab
+        # the figures need each light curve's top fit alone: the other models' curves go
+        grid = dataclasses.replace(
+            grid, fits=tuple(tuple(fit if m == grid.best[c] else None for c, fit in enumerate(row))
+                             for m, row in enumerate(grid.fits)),
+            white_fits=tuple(wf if m == grid.white_owner[grid.best[0]] else None
+                             for m, wf in enumerate(grid.white_fits)))
         from .figures import detrend_channels_figure, detrend_figure, grid_figure
         wb = grid.fits[grid.best[0]][0]
         used = ~np.asarray(wb.fit_mask, bool)

@@ -113,7 +113,7 @@ def _one_fit(axes, t, flux, error, model, systematics, used, label, *, compact=F
         ax.plot(t[~used], raw[~used], "x", ms=4, color="0.6", label="left out")
     _model_line(ax, t, full, runs, "tab:red", "full model")
     ax.set_ylabel("flux / median", fontsize=fs)
-    ax.set_title(f"{label}: measured, with systematics x event", fontsize=fs)
+    ax.set_title(f"{label}: measured, with systematics x event", fontsize=fs, y=1.0)
     ax.legend(fontsize=6, loc="best")
     ax = axes[1]
     _points(ax, t[used], detr[used], detr_err[used], "tab:green", long_visit)
@@ -122,7 +122,7 @@ def _one_fit(axes, t, flux, error, model, systematics, used, label, *, compact=F
     else:
         _model_line(ax, t, event, runs, "k", "event model")
     ax.set_ylabel("flux / systematics", fontsize=fs)
-    ax.set_title(f"{label}: detrended, with the event model", fontsize=fs)
+    ax.set_title(f"{label}: detrended, with the event model", fontsize=fs, y=1.0)
     ax.legend(fontsize=6, loc="best")
     ax = axes[2]
     _points(ax, t[used], resid[used], detr_err[used] * 1e6, "tab:purple", long_visit)
@@ -132,7 +132,7 @@ def _one_fit(axes, t, flux, error, model, systematics, used, label, *, compact=F
     ax.axhline(0.0, color="k", lw=0.8)
     ax.set_ylabel("residual (ppm)", fontsize=fs)
     rms = float(np.sqrt(np.nanmean(resid[used] ** 2))) if used.any() else np.nan
-    ax.set_title(f"{label}: residuals, rms {rms:.0f} ppm", fontsize=fs)
+    ax.set_title(f"{label}: residuals, rms {rms:.0f} ppm", fontsize=fs, y=1.0)
     for a in axes[:3]:
         a.set_xlabel("hours since the first exposure", fontsize=fs)
         a.tick_params(labelsize=7)
@@ -145,10 +145,10 @@ def _one_fit(axes, t, flux, error, model, systematics, used, label, *, compact=F
         ax.loglog(test.bin_sizes, test.rms, "o", ms=4, color="tab:purple", label="binned residuals")
         ax.loglog(test.bin_sizes, test.expected, "-", color="k", lw=1,
                   label="white noise (Pont et al. 2006)")
-        ax.set_title(f"{label}: rms against bin size, beta {test.beta:.2f}", fontsize=fs)
+        ax.set_title(f"{label}: rms against bin size, beta {test.beta:.2f}", fontsize=fs, y=1.0)
         ax.legend(fontsize=6, loc="lower left")
     else:
-        ax.set_title(f"{label}: too few residuals to bin", fontsize=fs)
+        ax.set_title(f"{label}: too few residuals to bin", fontsize=fs, y=1.0)
     ax.set_xlabel("exposures per bin", fontsize=fs)
     ax.set_ylabel("rms of binned residuals (ppm)", fontsize=fs)
     ax.tick_params(labelsize=7)

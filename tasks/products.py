@@ -261,6 +261,61 @@ def write_fits(path, hdus, provenance, *, header=None):
     return _remember(path)
 
 
+def write_fits_stream(path, hdus, provenance, *, header=None):
+    """:func:`write_fits` for many large extensions: one extension in memory at a time.
+
+    ``hdus`` may be any iterable (e.g. a generator making each table only when
+    it is written); each extension is serialised with its checksums, its bytes
+    appended, and dropped before the next is made.  The file has the same
+    bytes as :func:`write_fits` of the same extensions (every HDU's header,
+    data and checksums depend only on that HDU).
+
+    Returns
+    -------
+    sha256 : str
+        SHA-256 of the written file.
+    """
+    path = Path(path)
+    if path.suffix != ".fits":
+        raise ValueError(f"{path}: products are plain .fits files")
+    primary = fits.PrimaryHDU()
+    provenance.header_cards(primary.header)
+    for key, value in (header or {}).items():
+        primary.header[key] = value
+
+    def serialised(hdu):
+        """The bytes ``hdu`` has in a file after a bare primary HDU (checksums included)."""
+        bare = fits.PrimaryHDU()
+        buf = io.BytesIO()
+        for h in (bare, hdu):
+            h._get_timestamp = _checksum_comment
+        fits.HDUList([bare, hdu]).writeto(buf, checksum=True)
+        return buf.getvalue()[len(_bare_primary()):]
+
+    with atomic_path(path) as tmp:
+        primary._get_timestamp = _checksum_comment
+        fits.HDUList([primary]).writeto(tmp, overwrite=True, checksum=True)
+        with open(tmp, "ab") as out:
+            for hdu in _then(hdus, provenance.table_hdu):
+                out.write(serialised(hdu))
+    return _remember(path)
+
+
+def _then(items, last):
+    """Every item of ``items``, then ``last()``."""
+    yield from items
+    yield last()
+
+
+def _bare_primary():
+    """The bytes of a primary HDU without data and without cards of our own, with checksums."""
+    bare = fits.PrimaryHDU()
+    bare._get_timestamp = _checksum_comment
+    buf = io.BytesIO()
+    fits.HDUList([bare]).writeto(buf, checksum=True)
+    return buf.getvalue()
+
+
 def _checksum_comment():
     return "by lightledger"
 
@@ -281,16 +336,26 @@ def write_ecsv(path, table, provenance):
     """
     table = table.copy(copy_data=False)
     table.meta.update({"lightledger": {**provenance.meta(), "checksum": _ECSV_BLANK}})
-    buffer = io.StringIO()
-    table.write(buffer, format="ascii.ecsv")
-    data = buffer.getvalue().encode("utf-8")
-    found = _ECSV_CHECKSUM.search(data)
-    if found is None:       # the YAML writer quoted or folded it (never seen): a bug
-        raise RuntimeError(f"{path}: could not place the ECSV checksum")
-    digest = hashlib.sha256(data).hexdigest().encode()
-    data = data[:found.start(1)] + digest + data[found.end(1):]
     with atomic_path(path) as tmp:
-        Path(tmp).write_bytes(data)
+        # written with the blank checksum straight to the file (no copies of the text in
+        # memory), then hashed block by block and the blank overwritten in place
+        with open(tmp, "w", encoding="utf-8", newline="") as out:
+            table.write(out, format="ascii.ecsv")
+        with open(tmp, "r+b") as out:
+            digest, offset = hashlib.sha256(), None
+            start, tail = 0, b""
+            for block in iter(lambda: out.read(1 << 20), b""):
+                digest.update(block)
+                if offset is None:
+                    found = _ECSV_CHECKSUM.search(tail + block)
+                    if found is not None:
+                        offset = start - len(tail) + found.start(1)
+                    tail = (tail + block)[-128:]
+                start += len(block)
+            if offset is None:      # the YAML writer quoted or folded it (never seen): a bug
+                raise RuntimeError(f"{path}: could not place the ECSV checksum")
+            out.seek(offset)
+            out.write(digest.hexdigest().encode())
     return _remember(path)
 
 

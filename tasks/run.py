@@ -16,6 +16,7 @@ from . import locks
 from .base import (ENTRY_NAME, PROGRESS, FolderTask, make_plan, read_entry, register_plan,
                    remove_parts, settings_to_text, visit_config)
 from .check import check_visit, parse_settings
+from .fitpool import PROCESSES
 
 __all__ = ["RunResult", "reduce_visit", "stage_task", "sweep", "check_force", "exit_status",
            "others_running", "ran_tasks", "preload"]
@@ -189,6 +190,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     failures = notebook / ".failures" / run_id
 
     PROGRESS["callback"] = progress
+    PROCESSES["count"] = workers        # a stage's own independent fits (the detrend grid)
     logging.getLogger("luigi-interface").setLevel(logging.CRITICAL)
     kwargs = dict(workers=workers, detailed_summary=True, log_level="CRITICAL")
     if scheduler:
@@ -217,6 +219,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
             ran += _ran_families(summary)
     finally:
         PROGRESS.pop("callback", None)
+        PROCESSES["count"] = 1
 
     messages, statuses = [], []
     if failures.exists():

@@ -13,8 +13,8 @@ import pytest
 from astropy.io import fits
 from astropy.table import Table
 
-from lightledger.tasks.products import (Provenance, atomic_path, read_provenance, write_ecsv,
-                                        write_fits)
+from lightledger.tasks.products import (Provenance, atomic_path, read_provenance, table_hdu,
+                                        write_ecsv, write_fits, write_fits_stream)
 
 
 def _prov(tmp_path):
@@ -38,6 +38,27 @@ def test_write_fits_records_provenance_and_checksums(tmp_path):
     assert prov["params"]["method"] == "optimal"
     assert list(prov["inputs"].values()) == ["0" * 64]
     assert not [p for p in tmp_path.iterdir() if p.name.endswith(".part")]
+
+
+def test_streamed_fits_has_the_bytes_of_a_whole_write(tmp_path):
+    # A product written one extension at a time (from a generator) is the same file, byte
+    # for byte, as the one written from the list of extensions; every HDU's checksums hold
+    # (FITS standard, checksum convention).
+    def tables():
+        for m in range(3):
+            hdu = table_hdu(Table({"flux": np.arange(500.0) * (m + 1),
+                                   "reason": ["x" * (m + 2)] * 500}), f"MODEL_{m:02d}")
+            hdu.header["MODEL"] = (f"model {m}", "systematics model")
+            yield hdu
+
+    write_fits(tmp_path / "whole.fits", list(tables()), _prov(tmp_path), header={"TIMESYS": "TDB"})
+    write_fits_stream(tmp_path / "streamed.fits", tables(), _prov(tmp_path),
+                      header={"TIMESYS": "TDB"})
+    assert (tmp_path / "whole.fits").read_bytes() == (tmp_path / "streamed.fits").read_bytes()
+    with fits.open(tmp_path / "streamed.fits", checksum=True) as hdul:
+        assert [h.name for h in hdul] == ["PRIMARY", "MODEL_00", "MODEL_01", "MODEL_02",
+                                          "PROVENANCE"]
+        assert all(h.verify_checksum() == 1 and h.verify_datasum() == 1 for h in hdul)
 
 
 @pytest.mark.skipif(shutil.which("fitsverify") is None, reason="fitsverify not installed")
@@ -66,3 +87,27 @@ def test_ecsv_carries_provenance(tmp_path):
     assert list(back["a"]) == [1, 2, 3]
     assert back.meta["lightledger"]["stage"] == "extract"
     assert read_provenance(path)["params"]["edges"] == [1.0, 1.5]
+
+
+def test_ecsv_written_in_place_equals_the_in_memory_form(tmp_path):
+    # The ECSV writer streams the table to the file and overwrites the blank checksum in
+    # place; the obviously correct form writes the whole text in memory, hashes it with the
+    # blank (64 zeros) and substitutes the digest. Same bytes, and the file checks itself.
+    import hashlib
+    import io
+
+    from lightledger.tasks.products import ecsv_checksum_ok
+
+    rng = np.random.default_rng(0)
+    table = Table({"time": np.linspace(0, 1, 3000), "flux": rng.normal(size=(3000, 12)),
+                   "reason": ["set aside: a reason ü"] * 3000})
+    path = tmp_path / "wide.ecsv"
+    write_ecsv(path, table, _prov(tmp_path))
+    ref = table.copy(copy_data=False)
+    ref.meta.update({"lightledger": {**_prov(tmp_path).meta(), "checksum": "sha256:" + "0" * 64}})
+    buffer = io.StringIO()
+    ref.write(buffer, format="ascii.ecsv")
+    data = buffer.getvalue().encode("utf-8")
+    digest = hashlib.sha256(data).hexdigest().encode()
+    assert path.read_bytes() == data.replace(b"sha256:" + b"0" * 64, b"sha256:" + digest, 1)
+    assert ecsv_checksum_ok(path) is True
