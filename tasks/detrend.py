@@ -207,6 +207,12 @@ class Detrend(VisitTask):
                 yield hdu
 
         write_fits_stream(models_path, model_hdus(), prov)
+        # what follows needs each light curve's top fit alone: the other models' curves go
+        grid = dataclasses.replace(
+            grid, fits=tuple(tuple(fit if m == grid.best[c] else None for c, fit in enumerate(row))
+                             for m, row in enumerate(grid.fits)),
+            white_fits=tuple(wf if m == grid.white_owner[grid.best[0]] else None
+                             for m, wf in enumerate(grid.white_fits)))
         outputs = [fits_path, models_path]
         meta = ecsv_meta(visit, t, texp if np.any(np.isfinite(texp)) else [0.0], channels)
         meta["time_columns"] = {"time_bjd_tdb": meta["time_columns"]["time_bjd_tdb"]}
@@ -222,12 +228,6 @@ class Detrend(VisitTask):
             write_ecsv(folder / name, tab, prov)
             outputs.append(folder / name)
         del tab
-        # the figures need each light curve's top fit alone: the other models' curves go
-        grid = dataclasses.replace(
-            grid, fits=tuple(tuple(fit if m == grid.best[c] else None for c, fit in enumerate(row))
-                             for m, row in enumerate(grid.fits)),
-            white_fits=tuple(wf if m == grid.white_owner[grid.best[0]] else None
-                             for m, wf in enumerate(grid.white_fits)))
         from .figures import detrend_channels_figure, detrend_figure, grid_figure
         wb = grid.fits[grid.best[0]][0]
         used = ~np.asarray(wb.fit_mask, bool)

@@ -150,3 +150,32 @@ def test_a_model_whose_systematics_mimic_the_event_gets_no_weight():
                     n_shifts=0, free=())
     assert np.all(grid.weight[1] == 0) and np.all(grid.weight[0] == 1)
     assert any("the depth is not determined" in f for f in grid.failures)
+
+
+def test_models_fitted_in_a_process_pool_give_the_same_grid():
+    # The models' fits are independent jobs: handed to two processes (the detrend stage's
+    # pool under --workers 2, tasks/fitpool.py) they give every number of the grid fitted
+    # in one process, bit for bit, and the failures in the same order.
+    import os
+
+    from lightledger.tasks import fitpool
+
+    curves, event, _, ref = _curves("traps", 0)
+    specs = parse_grid(("visit1+scan+traps", "visit1+scan+ramp", "visit1+scan+cm-sys"))
+    one = fit_grid(specs, curves, event, reference_rate=ref, n_shifts=5)
+    fitpool.PROCESSES["count"] = 2
+    try:
+        with fitpool.fit_map(len(specs)) as mapper:
+            assert (mapper is not map) == ((os.cpu_count() or 1) > 1)
+            two = fit_grid(specs, curves, event, reference_rate=ref, n_shifts=5, map=mapper)
+    finally:
+        fitpool.PROCESSES["count"] = 1
+    for name in ("chi2", "depth", "error", "error_inherited", "weight", "value", "value_error",
+                 "best"):
+        np.testing.assert_array_equal(getattr(one, name), getattr(two, name), err_msg=name)
+    assert one.failures == two.failures
+    for row_one, row_two in zip(one.fits, two.fits):
+        for a, b in zip(row_one, row_two):
+            assert (a is None) == (b is None)
+            if a is not None:
+                np.testing.assert_array_equal(a.model, b.model)
