@@ -340,7 +340,7 @@ def write_ecsv(path, table, provenance):
         # written with the blank checksum straight to the file (no copies of the text in
         # memory), then hashed block by block and the blank overwritten in place
         with open(tmp, "w", encoding="utf-8", newline="") as out:
-            table.write(out, format="ascii.ecsv")
+            _write_ecsv_rows(out, table)
         with open(tmp, "r+b") as out:
             digest, offset = hashlib.sha256(), None
             start, tail = 0, b""
@@ -357,6 +357,33 @@ def write_ecsv(path, table, provenance):
             out.seek(offset)
             out.write(digest.hexdigest().encode())
     return _remember(path)
+
+
+#: Rows of an ECSV table formatted at a time (the writer holds every formatted row in memory).
+ECSV_ROWS = 4096
+
+
+def _write_ecsv_rows(out, table):
+    """Write ``table`` as ECSV to the text file ``out``, ``ECSV_ROWS`` rows at a time.
+
+    The first block is written with the header (metadata and column
+    descriptions, which do not depend on the rows); each later block is
+    written from a copy without metadata and its header lines dropped (the
+    lines before its rows).  ECSV formats every value on its own, so the file
+    is the one a single write of the whole table gives.
+    """
+    n = len(table)
+    table[:min(n, ECSV_ROWS)].write(out, format="ascii.ecsv")
+    if n <= ECSV_ROWS:
+        return
+    bare = table.copy(copy_data=False)
+    bare.meta.clear()
+    for start in range(ECSV_ROWS, n, ECSV_ROWS):
+        block = bare[start:start + ECSV_ROWS]
+        text = io.StringIO()
+        block.write(text, format="ascii.ecsv")
+        lines = text.getvalue().splitlines(keepends=True)
+        out.writelines(lines[len(lines) - len(block):])
 
 
 def ecsv_checksum_ok(path):

@@ -90,17 +90,23 @@ def test_ecsv_carries_provenance(tmp_path):
 
 
 def test_ecsv_written_in_place_equals_the_in_memory_form(tmp_path):
-    # The ECSV writer streams the table to the file and overwrites the blank checksum in
-    # place; the obviously correct form writes the whole text in memory, hashes it with the
-    # blank (64 zeros) and substitutes the digest. Same bytes, and the file checks itself.
+    # The ECSV writer streams the table to the file a block of rows at a time and overwrites
+    # the blank checksum in place; the obviously correct form writes the whole table's text
+    # in memory at once, hashes it with the blank (64 zeros) and substitutes the digest.
+    # Same bytes, and the file checks itself and reads back whole (astropy ECSV reader).
     import hashlib
     import io
 
     from lightledger.tasks.products import ecsv_checksum_ok
 
     rng = np.random.default_rng(0)
-    table = Table({"time": np.linspace(0, 1, 3000), "flux": rng.normal(size=(3000, 12)),
-                   "reason": ["set aside: a reason ü"] * 3000})
+    n = 9000                      # more rows than two blocks of the writer (ECSV_ROWS)
+    table = Table({"time": np.linspace(0, 1, n), "flux": rng.normal(size=(n, 12)),
+                   "white": rng.normal(size=n), "used": rng.random(n) > 0.1,
+                   "reason": [f"set aside: a reason ü {k % 7}" if k % 3 else "" for k in range(n)]})
+    table["white"].unit = "electron"
+    table["white"].description = "white flux"
+    table.meta["note"] = {"a": [1, 2]}
     path = tmp_path / "wide.ecsv"
     write_ecsv(path, table, _prov(tmp_path))
     ref = table.copy(copy_data=False)
@@ -111,3 +117,8 @@ def test_ecsv_written_in_place_equals_the_in_memory_form(tmp_path):
     digest = hashlib.sha256(data).hexdigest().encode()
     assert path.read_bytes() == data.replace(b"sha256:" + b"0" * 64, b"sha256:" + digest, 1)
     assert ecsv_checksum_ok(path) is True
+    back = Table.read(path, format="ascii.ecsv")
+    assert len(back) == n and np.array_equal(back["flux"], table["flux"])
+    reason = back["reason"]           # ECSV reads an empty string back as missing
+    assert list(reason.filled("") if hasattr(reason, "filled") else reason) == \
+        list(table["reason"])
