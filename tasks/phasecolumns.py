@@ -116,6 +116,14 @@ PHASE_GRID_COLUMNS = {
        ("deg" if name == "offset_deg" else "", f"1-sigma error of {name} of this model's fit")
        for name in ("rp_rs", "transit_depth", "eclipse_depth", "night_flux", "max_flux",
                     "min_flux", "amplitude", "offset_deg")},
+    "amplitude_error_lo": ("", "this model's amplitude minus the 15.9th percentile of its "
+                               "posterior"),
+    "amplitude_error_hi": ("", "84.1st percentile of this model's amplitude posterior minus "
+                               "its amplitude"),
+    "offset_error_lo_deg": ("deg", "this model's offset_deg minus the 15.9th percentile of its "
+                                   "posterior"),
+    "offset_error_hi_deg": ("deg", "84.1st percentile of this model's offset posterior minus "
+                                   "its offset_deg"),
     "status": ("", "ok, or failed (weight 0; grid.ecsv meta 'failures' says why)"),
 }
 

@@ -39,7 +39,8 @@ from astropy.table import Table, vstack
 from lightledger.pipeline.diagnostics import residual_quality
 from lightledger.pipeline.jointfit import PlanetModel
 from lightledger.pipeline.orbit import Ephemeris
-from lightledger.pipeline.phasegrid import PLANET_QUANTITIES, marginal_interval
+from lightledger.pipeline.phasegrid import (PLANET_QUANTITIES, marginal_interval,
+                                            planet_interval)
 from lightledger.pipeline.programme import (QUANTITIES, VisitCurves, consistency,
                                             phase_resolved_spectrum, planet_flux_points, quantity)
 
@@ -231,6 +232,11 @@ def phase_grid_table(grid):
                 row[q] = float(grid.values[q][m, c])
             for q in PLANET_QUANTITIES:
                 row[err_name(q)] = float(grid.errors[q][m, c])
+            sides = {q: planet_interval(grid.fit_of(m, c), q)
+                     if grid.fits[m] is not None and np.isfinite(grid.chi2[m, c])
+                     else (float("nan"), float("nan")) for q in ("amplitude", "offset_deg")}
+            row["amplitude_error_lo"], row["amplitude_error_hi"] = sides["amplitude"]
+            row["offset_error_lo_deg"], row["offset_error_hi_deg"] = sides["offset_deg"]
             row["status"] = "ok" if np.isfinite(grid.chi2[m, c]) else "failed"
             rows.append(row)
     table = _table(rows, PHASE_GRID_COLUMNS)
@@ -429,8 +435,13 @@ def _metrics(planet_tab, grid, n_visits):
                "white transit depth error (ppm)": _ppm(w["transit_depth_error"]),
                "white night side (ppm)": _ppm(w["night_flux"]),
                "white amplitude (ppm)": _ppm(w["amplitude"]),
+               "white amplitude error (ppm)": _ppm(w["amplitude_error"]),
+               "white amplitude error below, above (ppm)": [_ppm(w["amplitude_error_lo"]),
+                                                            _ppm(w["amplitude_error_hi"])],
                "white offset (deg)": _round(w["offset_deg"], 2),
                "white offset error (deg)": _round(w["offset_error_deg"], 2),
+               "white offset error below, above (deg)": [_round(w["offset_error_lo_deg"], 2),
+                                                         _round(w["offset_error_hi_deg"], 2)],
                "white rms per degree of freedom (ppm)": _round(w["rms_dof_ppm"], 1),
                "white rms / expected": _round(w["rms_over_expected"], 3),
                "median channel rms / expected":

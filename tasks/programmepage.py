@@ -72,8 +72,12 @@ def write_programme_page(prog, folder):
                 ("transit_depth_error", 1e6, 0), ("eclipse_depth", 1e6, 0),
                 ("eclipse_depth_error", 1e6, 0), ("night_flux", 1e6, 0),
                 ("night_flux_error", 1e6, 0), ("amplitude", 1e6, 0), ("amplitude_error", 1e6, 0),
-                ("offset_deg", 1, 1), ("offset_error_deg", 1, 1), ("rms_over_expected", 1, 3)]
-        parts.append("<h3>Planet per channel (ppm, degrees; channel -1 = white band)</h3>"
+                ("amplitude_error_lo", 1e6, 0), ("amplitude_error_hi", 1e6, 0),
+                ("offset_deg", 1, 1), ("offset_error_deg", 1, 1), ("offset_error_lo_deg", 1, 1),
+                ("offset_error_hi_deg", 1, 1), ("rms_over_expected", 1, 3)]
+        cols = [c for c in cols if c[0] in tab.colnames]     # (products made before the sides)
+        parts.append("<h3>Planet per channel (ppm, degrees; channel -1 = white band; "
+                     "*_lo, *_hi: the two sides of the 68 % interval)</h3>"
                      + _html_table(tab, cols))
         try:
             grid = Table.read(planet, hdu="GRID")

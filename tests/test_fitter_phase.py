@@ -14,6 +14,8 @@ The checks:
   coefficients (Cowan & Agol 2008) and its error sqrt(C00 + C11 - 2 C01)
   (linear algebra) are the top model's in GRID, and the matrix is symmetric
   positive semi-definite;
+- PLANET's two sides of the amplitude's and the offset's intervals are GRID's models'
+  sides marginalised as the errors are (Wakeford et al. 2016, computed here);
 - every model of the grid keeps its detrended light curves (grid-models),
   the top model's equal to DETRENDED;
 - exposures set aside at input keep their rows, flagged and NaN with their
@@ -142,6 +144,28 @@ def test_phase_coefficients_and_grid_models(which, phase_programme, phase_single
         if "rp_rs" in names:
             k = names.index("rp_rs")
             assert np.sqrt(c[k, k]) == pytest.approx(float(top["rp_rs_error"]), rel=1e-6)
+    # the two sides of the amplitude's and the offset's 68 % intervals: per model their mean
+    # is the symmetric error, and PLANET's are marginalised over GRID's models as the
+    # error is (Wakeford et al. 2016), each side with its own errors:
+    # sqrt(sum W (side^2 + (x - sum W x)^2)), over the models that measured the quantity
+    for p in planet:
+        rows = grid[grid["channel"] == p["channel"]]
+        for name, err, lo, hi in (
+                ("amplitude", "amplitude_error", "amplitude_error_lo", "amplitude_error_hi"),
+                ("offset_deg", "offset_error_deg", "offset_error_lo_deg", "offset_error_hi_deg")):
+            x, e = (np.asarray(rows[k], float) for k in (name, err))
+            a, b = (np.asarray(rows[k], float) for k in (lo, hi))
+            ok = np.isfinite(x) & (np.asarray(rows["weight"], float) > 0)
+            np.testing.assert_allclose(e[ok], 0.5 * (a[ok] + b[ok]), rtol=1e-9)
+            if name == "offset_deg":                  # on the top model's branch
+                ref = x[np.argmin(np.asarray(rows["rank"]))]
+                x = ref + (x - ref + 180.0) % 360.0 - 180.0
+            w = np.asarray(rows["weight"], float)[ok]
+            w = w / w.sum()
+            spread = (x[ok] - np.sum(w * x[ok])) ** 2
+            assert p[lo] == pytest.approx(np.sqrt(np.sum(w * (a[ok] ** 2 + spread))), rel=1e-9)
+            assert p[hi] == pytest.approx(np.sqrt(np.sum(w * (b[ok] ** 2 + spread))), rel=1e-9)
+            assert p[err] == pytest.approx(np.sqrt(np.sum(w * (e[ok] ** 2 + spread))), rel=1e-9)
     # every model's detrended light curves beside the top model's
     n_models = fits.getheader(path)["NMODELS"]
     white_top = int(grid[(grid["channel"] == -1) & (grid["rank"] == 1)][0]["model_index"])
