@@ -7,6 +7,7 @@ reducer never reads ``truth.fits``; the tests compare its products with it.
 Rendering and reducing both scenarios takes about 25 s on 2 cores.
 """
 
+import contextlib
 import shutil
 import subprocess
 import warnings
@@ -344,7 +345,21 @@ def quick_figures():
     Drawing the four diagnostic figures is most of the time of reducing a tiny
     visit; the bookkeeping tests reduce many times and look only at files,
     names and bytes (a stand-in is as deterministic as the real figures).
+    The figures themselves are checked by tests/test_figures.py on the
+    session's reductions.
     """
+    with _blank_figures():
+        yield
+
+
+@pytest.fixture(scope="session")
+def blank_figures():
+    """``with blank_figures(): ...``: the stand-in figures of :func:`quick_figures` for one block."""
+    return _blank_figures
+
+
+@contextlib.contextmanager
+def _blank_figures():
     from lightledger.tasks import figures
     from lightledger.tasks.products import save_figure
 

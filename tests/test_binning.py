@@ -37,7 +37,7 @@ def _grids(draw):
     return pe, ce, flux, reverse
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=100, deadline=None)
 @given(_grids())
 def test_flux_conserved_for_random_edges(grid):
     # Conservation law: channels that tile the pixels' range hold every electron.

@@ -16,12 +16,15 @@ from pathlib import Path
 
 import pytest
 
+from lightledger.synthetic_data.damage import copy_visit
 from lightledger.synthetic_data.render import render
 from lightledger.tasks.audit import audit
 from lightledger.tasks.compare import compare
 from lightledger.tasks.run import reduce_visit
 
-pytestmark = pytest.mark.slow
+# stand-in figures: the figures are checked by tests/test_figures.py, here the page, the entries
+# and the products are the subject
+pytestmark = [pytest.mark.slow, pytest.mark.usefixtures("quick_figures")]
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 
@@ -36,7 +39,7 @@ def _stage_folders(notebook, stage):
 
 
 @pytest.fixture(scope="module")
-def visit(tmp_path_factory):
+def visit(tmp_path_factory, quick_figures):
     root = tmp_path_factory.mktemp("notebook-visit")
     visit_toml = render("scan-transit", root, seed=3, n_exposures=24)
     first = reduce_visit(visit_toml, workers=1)
@@ -106,16 +109,16 @@ def test_compare_warns_across_visits_and_events(visit, tmp_path):
     assert any("only the stages" in line for line in lines)
 
 
-def test_until_stops_after_a_stage(tmp_path):
-    visit_toml = render("scan-transit", tmp_path, seed=4, n_exposures=10)
+def test_until_stops_after_a_stage(raw_scan, tmp_path):
+    visit_toml = copy_visit(raw_scan.parent, tmp_path / "visit")
     result = reduce_visit(visit_toml, workers=1, until="calibrate")
     assert result.ok
     assert result.final.parent.name.startswith("calibrate-")
     assert not _stage_folders(result.final.parent.parent, "extract")
 
 
-def test_force_reruns_a_stage_and_keeps_the_old_entry(tmp_path):
-    visit_toml = render("scan-transit", tmp_path, seed=4, n_exposures=10)
+def test_force_reruns_a_stage_and_keeps_the_old_entry(raw_scan, tmp_path):
+    visit_toml = copy_visit(raw_scan.parent, tmp_path / "visit")
     assert reduce_visit(visit_toml, until="extract").ok
     forced = reduce_visit(visit_toml, until="extract", force=["extract"])
     assert forced.ok

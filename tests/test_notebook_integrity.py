@@ -365,14 +365,17 @@ class _Lab:
     fresh = {}       # tweak index -> {folder: {file: bytes}} of a fresh full reduction
 
     def __init__(self, root, reduced, pristine):
-        self.root, self.pristine = root, pristine
+        self.root, self.pristine, self.reduced = root, pristine, reduced
         self.visit = _copy(reduced.parent, root / "lab-0")
         self.copies = 0
 
     def reference(self, index):
         if index not in _Lab.fresh:
-            fresh = _copy(self.pristine, self.root / f"fresh-{index}")
-            assert _reduce(fresh, settings=TWEAKS[index]).ok
+            if TWEAKS[index]:
+                fresh = _copy(self.pristine, self.root / f"fresh-{index}")
+                assert _reduce(fresh, settings=TWEAKS[index]).ok
+            else:       # the module's reference: the pristine visit reduced once, by one reducer
+                fresh = self.reduced
             _Lab.fresh[index] = _chain_bytes(fresh, TWEAKS[index], STAGE_ORDER[-1])
         return _Lab.fresh[index]
 

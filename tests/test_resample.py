@@ -54,7 +54,7 @@ def grids(draw):
     return edges, flux, new_edges
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=100, deadline=None)
 @given(grids())
 def test_integral_over_any_bin_edges_is_conserved(grid):
     # Carnall 2017 (arXiv:1705.05165): the resampled flux over any set of bin
