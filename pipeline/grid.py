@@ -7,15 +7,22 @@ inclination) and the systematics' shape parameters free
 fitted with that model at the white light's event and shapes, only its
 linear terms and depth free.  A model with a common-mode token divides each
 channel first by the top-ranked white model's systematics (``cm-sys``) or by
-the white flux over its full model (``cm-res``; Berta et al. 2012; Kreidberg
-et al. 2014).
+the white flux over its event model, the systematics as measured (``cm-res``,
+"divide-white"; Berta et al. 2012; Kreidberg et al. 2014), with the variance
+of a ratio of correlated fluxes (:mod:`lightledger.pipeline.commonmode`).
 
 Each light curve (the white one and each channel) ranks the models by BIC
 or AIC, weights them by :math:`e^{-\\mathrm{IC}/2}` normalised, and
 marginalises its depth with an error that includes the spread between models
 (Gibson 2014; Wakeford et al. 2016; :mod:`lightledger.pipeline.selection`).
 The white light ranks only its distinct models (models differing by their
-common mode share one white fit).  Every fit's depth error comes three ways
+common mode share one white fit).  A channel's weights take the white
+light's weights as the models' prior (a common-mode member that of the
+white model it divides out): the channels are fitted at the white light's
+systematics, and a channel alone, with a tenth of the signal, cannot tell a
+ramp the white light shows, so that by its own criterion alone a model
+without the ramp would win on its fewer parameters and bias every channel
+the same way.  Every fit's depth error comes three ways
 (:mod:`lightledger.pipeline.fiterrors`); ``error_kind`` chooses the one
 marginalised.
 
@@ -33,43 +40,19 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
+from .commonmode import common_modes
 from .errors import AllMaskedError, ParameterError
 from .fiterrors import ERROR_KINDS
 from .gridfits import ChannelJob, WhiteJob, fit_channels_job, fit_white_job
 from .inherited import inherited_error
 from .limbfit import fit_limb_darkening
+from .gridrank import channel_prior, marginalise_fits, rank_fits
 from .selection import CRITERIA, information_criteria, marginalise, model_weights
 from .systematics import SystematicsModel
 from .whitelight import event_template
 
-__all__ = ["Curves", "GridFit", "rank_fits", "marginalise_fits", "fit_grid", "inherited_error"]
-
-
-def rank_fits(chi2, n_params, n_points, *, criterion="bic"):
-    """BIC, AIC and weights of fits of several models to the same points.
-
-    Parameters
-    ----------
-    chi2, n_params, n_points : array_like, shape (n_models, ...)
-        Per fit; a failed fit has a non-finite chi-square (weight 0).
-    criterion : {"bic", "aic"}
-
-    Returns
-    -------
-    bic, aic, weights : ndarray of float, shape (n_models, ...)
-    """
-    if criterion not in CRITERIA:
-        raise ParameterError(f"criterion must be one of {', '.join(CRITERIA)}; got {criterion!r}")
-    c = np.asarray(chi2, float)
-    k = np.nan_to_num(np.asarray(n_params, float), nan=0.0)
-    n = np.nan_to_num(np.asarray(n_points, float), nan=1.0)
-    bic, aic = information_criteria(c, k.astype(int), np.maximum(n, 1).astype(int))
-    return bic, aic, model_weights(bic if criterion == "bic" else aic, axis=0)
-
-
-def marginalise_fits(values, errors, weights):
-    """Marginalise a parameter over models (:func:`lightledger.pipeline.selection.marginalise`)."""
-    return marginalise(values, errors, weights, axis=0)
+__all__ = ["Curves", "GridFit", "rank_fits", "channel_prior", "marginalise_fits", "fit_grid",
+           "inherited_error"]
 
 
 @dataclass(frozen=True)
@@ -89,6 +72,10 @@ class Curves:
     white_rate : ndarray of float, shape (n_exposures,), optional
         Incident rate per pixel (e-/s) for charge trapping.
     rate : ndarray of float, shape (n_exposures, n_channels), optional
+    white_share : ndarray of float, shape (n_channels,), optional
+        Fraction of each channel's flux inside the white band (default 1:
+        the white light holds every channel); used for the variance of a
+        channel divided by the white light (:mod:`.commonmode`).
     """
 
     inputs: object
@@ -100,6 +87,7 @@ class Curves:
     mask: np.ndarray
     white_rate: object = None
     rate: object = None
+    white_share: object = None
 
     @property
     def n_channels(self):
@@ -359,9 +347,7 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     w_white[distinct] = model_weights(ic[distinct, 0])
     cm_model = int(np.argmax(w_white))
     best_white = white_fits[cm_model]
-    common = {"sys": best_white.result.systematics / np.nanmean(best_white.result.systematics)}
-    with np.errstate(divide="ignore", invalid="ignore"):
-        common["res"] = curves.white_flux / best_white.result.model
+    common = common_modes(best_white.result, curves.white_flux)
 
     if ld_prior is not None:
         pairs = []
@@ -408,13 +394,14 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     ic = bic if criterion == "bic" else aic
     weight = np.zeros(shape)
     weight[:, 0] = w_white
+    prior = channel_prior(specs, w_white, owner, cm_model)
     for c in range(1, n_curves):
         if skipped[c - 1]:
             continue
         if not np.any(np.isfinite(ic[:, c])):
             raise AllMaskedError(f"no systematics model could be fitted to channel {c - 1}: "
                                  + "; ".join(f for f in failures if f"channel {c - 1}" in f)[:300])
-        weight[:, c] = model_weights(ic[:, c])
+        weight[:, c] = model_weights(ic[:, c], prior=prior)
     fitted = np.concatenate([[True], ~skipped])
     marg = marginalise(table["depth"][:, fitted], table["error"][:, fitted], weight[:, fitted], axis=0)
     value, value_error, within, between = (np.full(n_curves, np.nan) for _ in range(4))

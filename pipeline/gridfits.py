@@ -13,6 +13,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
+from .commonmode import divide_common_mode
 from .errors import LightledgerError
 from .eventfit import fit_event
 from .fiterrors import depth_errors, event_alone_error, linearise_fit
@@ -84,21 +85,30 @@ class ChannelJob:
 def fit_channels_job(job):
     """[(j, (DetrendResult, DepthErrors, event-alone error, inherited error)) or (j, failure text)].
 
-    Each channel is divided by its common mode (if any), fitted at the white
+    Each channel is divided by its common mode (if any; its variance by
+    :func:`~lightledger.pipeline.commonmode.divide_common_mode`), fitted at the white
     fit's shapes (a transit at the channel's own fitted radius), its depth
     errors computed with what it inherits from the white fit, and the common
     mode multiplied back into its systematics and model.
     """
     curves, wf, opts, event = job.curves, job.white, job.options, job.event
+    share = (None if curves.white_share is None
+             else np.clip(np.asarray(curves.white_share, float), 0.0, 1.0))
     u1, u2, mask, model = job.u1, job.u2, job.mask, job.model
     out = []
     for j in range(curves.n_channels):
         if job.skipped[j]:
             continue
         inputs = curves.channel_inputs(j)
-        g = np.ones(curves.flux.shape[0]) if job.common is None else job.common
-        with np.errstate(divide="ignore", invalid="ignore"):
-            f, v = curves.flux[:, j] / g, curves.variance[:, j] / (g * g)
+        if job.common is None:
+            g = np.ones(curves.flux.shape[0])
+            f, v = curves.flux[:, j], curves.variance[:, j]
+        else:
+            g = job.common
+            f, v = divide_common_mode(curves.flux[:, j], curves.variance[:, j], g,
+                                      kind=job.common_mode, white_flux=curves.white_flux,
+                                      white_variance=curves.white_variance,
+                                      share=1.0 if share is None else share[j])
         try:
             design = model.design(inputs, wf.shapes)      # made once, for every refit below
 

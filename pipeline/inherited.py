@@ -30,7 +30,7 @@ def inherited_error(result, lin, template, time, event, ld, own, common, common_
     A channel is fitted at its model's white-light shape parameters and event
     (mid-time, and a/Rs and inclination when fitted) and, for a common-mode
     model, after dividing out the top white model's systematics (``sys``) or
-    its flux over its full model (``res``).  Those are estimates with
+    its flux over its event model (``res``; :mod:`.commonmode`).  Those are estimates with
     errors, shared by every channel; their covariance (from the white fit's
     linearisation, scaled like its depth error) is propagated to the
     channel's depth (:func:`~lightledger.pipeline.fiterrors.inherited_variance`;
@@ -72,13 +72,15 @@ def inherited_error(result, lin, template, time, event, ld, own, common, common_
     a common mode :math:`g` the channel's data :math:`y = f/g` move by
     :math:`-y\,\Delta g/g`, with :math:`\Delta g/g = \Delta S_w/S_w` (the
     white systematics' columns of its Jacobian over its model) for ``sys``
-    and :math:`-\Delta m_w/m_w` (every column) for ``res``.  Shape
+    and :math:`-\Delta E_w/E_w` (the event's columns: depth or planet
+    coefficients and event parameters) for ``res``, :math:`E_w = m_w/S_w`.  Shape
     parameters (time scales, through their logarithms) are propagated by
     refitting the channel at each one moved by its error (at most
     :data:`MAX_SHAPE_LOG_ERROR`): the channel's own columns may trade with
     them far from linearly.  The shapes, the event and the common mode are
-    taken as independent sources; noise the white light shares with the
-    channel (its photons, a fraction of the white's) is neglected.
+    taken as independent sources; for ``res`` the noise the white light shares
+    with the channel is in the divided channel's variance
+    (:func:`~lightledger.pipeline.commonmode.divide_common_mode`).
     """
     h = depth_response(lin)
     n = np.asarray(template).size
@@ -121,7 +123,9 @@ def inherited_error(result, lin, template, time, event, ld, own, common, common_
             J[:, nb_c:nb_c + ne_c] = 0.0
             J[:, nb_c + ne_c + ns_c:] = 0.0
             R = -ratio[:, None] * J
-        else:
+        else:                          # only the event model moves f_w S_w / m_w
+            J[:, :nb_c] = 0.0
+            J[:, nb_c + ne_c:nb_c + ne_c + ns_c] = 0.0
             R = ratio[:, None] * J
         total += inherited_variance(h, [(R, cl.covariance(common.result.error_scale))])
     return float(np.sqrt(max(total, 0.0)))

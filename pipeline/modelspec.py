@@ -19,14 +19,15 @@ token              component
 ``width``          ... against the trace width or scanned band length
 ``background``     ... against the sky background
 ``cm-sys``         channels only: divide by the white light's systematics first
-``cm-res``         channels only: divide by the white light's flux over its model first
+``cm-res``         channels only: divide by the white light's flux over its event model first
 =================  ==============================================================
 
 The common-mode tokens change only how the channels are fitted (the
-white-light curve's systematics, or its whole deviation from the event
-model, divided out of each channel before its own fit: Berta et al. 2012,
-ApJ 747, 35; Kreidberg et al. 2014, Nature 505, 69); the white light curve
-itself is fitted with the rest of the model.
+white-light curve's fitted systematics, or its whole deviation from the
+event model, systematics and residuals together ("divide-white"), divided
+out of each channel before its own fit: Berta et al. 2012, ApJ 747, 35;
+Kreidberg et al. 2014, Nature 505, 69; :mod:`.commonmode`); the white light
+curve itself is fitted with the rest of the model.
 
 :func:`parse_model` checks a string and returns a :class:`ModelSpec`;
 :meth:`ModelSpec.systematics` builds the

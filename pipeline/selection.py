@@ -23,6 +23,11 @@ every model is marginalised as
 the weighted mean and an error that adds the spread between the models to
 each model's own error (Wakeford et al. 2016, eqs. 15-16, from memory).
 
+With prior probabilities :math:`p_q` of the models (e.g. the weights the
+white light curve gave the same models, for a channel fitted at the white
+light's systematics), :math:`W_q \\propto p_q e^{-\\mathrm{IC}_q/2}`: Bayes'
+theorem with the criterion standing in for the evidence.
+
 Models that failed (non-finite criterion) get weight 0.  The criteria must
 come from fits to the same points: comparing them across different data is
 meaningless, so the functions here only see numbers and the caller keeps
@@ -99,8 +104,8 @@ def information_criteria(chi2, n_params, n_points):
     return c + k * np.log(n.astype(float)), c + 2.0 * k
 
 
-def model_weights(criterion, *, axis=0):
-    """Normalised weights :math:`\\propto e^{-\\mathrm{IC}/2}` of models.
+def model_weights(criterion, *, axis=0, prior=None):
+    """Normalised weights :math:`\\propto p\\,e^{-\\mathrm{IC}/2}` of models.
 
     Parameters
     ----------
@@ -109,6 +114,10 @@ def model_weights(criterion, *, axis=0):
         failed fit, which gets weight 0.
     axis : int, optional
         Axis of the models (default 0).
+    prior : array_like of float, optional
+        Prior probability :math:`p` of each model, >= 0, broadcast against
+        ``criterion`` (default equal priors).  Where every model that was
+        fitted has prior 0, the priors are ignored for that entry.
 
     Returns
     -------
@@ -131,6 +140,15 @@ def model_weights(criterion, *, axis=0):
     ok = np.isfinite(ic)
     if not np.all(np.any(ok, axis=axis)):
         raise AllMaskedError("every model's information criterion is non-finite: no fit succeeded")
+    if prior is not None:
+        p = np.broadcast_to(np.asarray(prior, dtype=float), ic.shape)
+        if not np.all(np.isfinite(p) & (p >= 0)):
+            raise ParameterError("prior must hold finite probabilities >= 0")
+        with np.errstate(divide="ignore"):
+            posterior = np.where(p > 0, ic - 2.0 * np.log(np.where(p > 0, p, 1.0)), np.inf)
+        usable = np.any(np.isfinite(posterior) & ok, axis=axis, keepdims=True)
+        ic = np.where(usable, posterior, ic)
+        ok = np.isfinite(ic)
     best = np.min(np.where(ok, ic, np.inf), axis=axis, keepdims=True)
     w = np.where(ok, np.exp(-0.5 * (np.where(ok, ic, best) - best)), 0.0)
     return w / np.sum(w, axis=axis, keepdims=True)

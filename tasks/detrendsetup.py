@@ -21,7 +21,7 @@ from lightledger.pipeline.modelspec import (DEFAULT_PHASE_SCAN_GRID, DEFAULT_PHA
 from lightledger.pipeline.systematics import PhaseSinusoids, SystematicsInputs, SystematicsModel
 from lightledger.pipeline.whitelight import event_template as _event_template
 
-__all__ = ["event_template", "grid_setup", "left_out_rows", "phase_grid_models", "SINGLE_MODEL",
+__all__ = ["event_template", "grid_setup", "white_share", "left_out_rows", "phase_grid_models", "SINGLE_MODEL",
            "systematics_setup", "channel_exclusions"]
 
 
@@ -109,7 +109,8 @@ def grid_setup(lc, channels, event, params):
     curves = Curves(inputs, wf, we ** 2, bad | np.asarray(lc["white_mask"], bool), F, E ** 2,
                     np.asarray(lc["mask"], bool) | bad[:, None],
                     white_rate=white_rate if np.all(np.isfinite(white_rate)) else None,
-                    rate=rate if np.all(np.isfinite(rate)) else None)
+                    rate=rate if np.all(np.isfinite(rate)) else None,
+                    white_share=white_share(channels))
     ref = float(np.nanmedian(white_rate)) if np.any(np.isfinite(white_rate)) else None
     ld = None
     if params["limb_darkening"] == "table" and channels is not None:
@@ -125,6 +126,17 @@ def grid_setup(lc, channels, event, params):
                    ld_prior=params["limb_darkening_prior"]
                    if params["limb_darkening"] == "fit" else None)
     return specs, curves, options, stare
+
+
+def white_share(channels):
+    """Fraction of each channel's wavelength range inside the white band, or None (all)."""
+    if channels is None or "white_band_um" not in channels.meta:
+        return None
+    lo, hi = channels.meta["white_band_um"]
+    a, b = np.asarray(channels["wave_lo"], float), np.asarray(channels["wave_hi"], float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        share = (np.clip(np.minimum(b, hi) - np.maximum(a, lo), 0.0, None) / (b - a))
+    return np.where(np.isfinite(share), np.clip(share, 0.0, 1.0), 1.0)
 
 
 def left_out_rows(lc, params):

@@ -93,10 +93,16 @@ def read_lightcurves(path):
 
     LIGHTCURVES holds every exposure of the visit, those set aside at input
     included (``set_aside`` True, NaN fluxes): select the reduced ones with
-    :func:`usable_rows` before fitting.
+    :func:`usable_rows` before fitting.  The CHANNELS table's
+    ``meta["white_band_um"]`` holds the white band's edges (um) when the
+    product records them.
     """
     with fits.open(path, memmap=False) as hdul:
-        return Table(hdul["LIGHTCURVES"].data), Table(hdul["CHANNELS"].data)
+        lc, channels = Table(hdul["LIGHTCURVES"].data), Table(hdul["CHANNELS"].data)
+        head = hdul["LIGHTCURVES"].header
+        if "WLO" in head and "WHI" in head:
+            channels.meta["white_band_um"] = (float(head["WLO"]), float(head["WHI"]))
+    return lc, channels
 
 
 def usable_rows(lc):

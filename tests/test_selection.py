@@ -71,3 +71,22 @@ def test_validation():
         marginalise([1.0, np.nan], [0.1, 0.1], [0.5, 0.5])
     with pytest.raises(ParameterError, match="n_params"):
         information_criteria([1.0], [-1], 10)
+
+
+def test_prior_weights_by_hand():
+    # Bayes' theorem with the criterion as -2 ln evidence: W ∝ p e^(-IC/2).
+    # BIC 10 and 12, priors 0.2 and 0.8: 0.2 e^-5 = 1.347589e-3, 0.8 e^-6 = 1.983010e-3,
+    # W = (0.404610, 0.595390).
+    w = model_weights([10.0, 12.0], prior=[0.2, 0.8])
+    np.testing.assert_allclose(w, [0.404610, 0.595390], atol=1e-6)
+    # a model of prior 0 weighs nothing; priors need not be normalised
+    np.testing.assert_allclose(model_weights([10.0, 12.0, 5.0], prior=[1, 4, 0]),
+                               [0.404610, 0.595390, 0.0], atol=1e-6)
+    # where every fitted model has prior 0, the criterion alone decides
+    np.testing.assert_allclose(model_weights([10.0, np.nan], prior=[0.0, 1.0]), [1.0, 0.0])
+    # per column (models along axis 0), a prior for each
+    w2 = model_weights(np.array([[10.0, 10.0], [12.0, 12.0]]), prior=np.array([[0.2, 1], [0.8, 1]]))
+    np.testing.assert_allclose(w2[:, 0], [0.404610, 0.595390], atol=1e-6)
+    np.testing.assert_allclose(w2[:, 1], [1 / (1 + np.exp(-1)), 1 - 1 / (1 + np.exp(-1))])
+    with pytest.raises(ParameterError, match="prior"):
+        model_weights([1.0, 2.0], prior=[-1.0, 1.0])
