@@ -56,7 +56,9 @@ def test_channel_depths_within_3_sigma(scan_visit, science):
 def test_model_grid_product(scan_visit, science):
     # The GRID table of the product against its definition (Gibson 2014; Wakeford et
     # al. 2016): per light curve the weights sum to 1 and are exp(-BIC/2)
-    # normalised over the models fitted to it, the DEPTHS row is their weighted
+    # normalised over the models fitted to it (a channel's times the white light's
+    # weight of the model as its prior, a common-mode model's prior the top white
+    # weight: Bayes' theorem, pipeline/gridrank.channel_prior), the DEPTHS row is their weighted
     # mean, with an error no smaller than the spread between models; and the marginalised
     # channel spectrum is consistent with the injected one (chi-square p above 0.01,
     # one degree of freedom per channel; truth.py CHANNELS.depth).
@@ -65,13 +67,22 @@ def test_model_grid_product(scan_visit, science):
     grid = Table.read(path, hdu="GRID")
     depths = _depths(scan_visit)
     assert fits.getheader(path, "DEPTHS")["NMODELS"] == len(set(grid["model_index"]))
+    from lightledger.pipeline.modelspec import parse_model
+    white = grid[grid["channel"] == -1]
+    white_weight = dict(zip(white["model"], np.asarray(white["weight"], float)))
     for row in depths:
         sel = grid[grid["channel"] == row["channel"]]
         w = np.asarray(sel["weight"])
         assert abs(w.sum() - 1) < 1e-9
         bic = np.asarray(sel["bic"])
-        ok = np.isfinite(bic)
-        expect = np.exp(-0.5 * (bic[ok] - bic[ok].min()))
+        if row["channel"] == -1:
+            prior = np.ones(len(sel))
+        else:
+            specs = [parse_model(m) for m in sel["model"]]
+            prior = np.array([max(white_weight.values()) if sp.common_mode
+                              else white_weight[sp.white_name] for sp in specs])
+        ok = np.isfinite(bic) & (prior > 0)
+        expect = prior[ok] * np.exp(-0.5 * (bic[ok] - bic[ok].min()))
         np.testing.assert_allclose(w[ok], expect / expect.sum(), atol=1e-9)
         used = w > 0
         assert row["depth"] == pytest.approx(float(np.sum(w[used] * sel["depth"][used])), rel=1e-9)

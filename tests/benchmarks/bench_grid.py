@@ -21,8 +21,13 @@ products with the truth.  Per scenario it prints, over the seeds:
   channel);
 * ``pull scatter``: the standard deviation of (depth - injected) / error of
   the marginalised channel depths, pooled over seeds and channels (honest
-  errors give 1; with 10 channels and 8 seeds its own scatter is about 0.08),
-  and the same for the white depth;
+  errors give 1; with 10 channels and 8 seeds its own scatter would be about
+  0.08 for independent channels, but the channels of a visit share the white
+  light's error, so that one seed whose white light is off by 3 errors moves
+  ten pulls together), and the same for the white depth; the channel pulls'
+  scatter about each seed's mean (the part the channels do not share) and the
+  seed means' scatter with its correlation with the white pull (the shared
+  part);
 * ``injected family weight``: the weight of the models holding the injected
   kind of ramp (a common-mode model counting with the white model it divides
   out), averaged over the white light and the channels;
@@ -182,6 +187,12 @@ def main(argv=None):
                   + f"   (lowest {min(r['p'] for r in rows):.3f})")
             print(f"  channel pull scatter            {np.std(pulls):.3f}  "
                   f"(mean {np.mean(pulls):+.3f}, {pulls.size} pulls)")
+            means = np.array([np.mean(r["pulls"]) for r in rows])
+            within = np.concatenate([r["pulls"] - np.mean(r["pulls"]) for r in rows])
+            n_ch = rows[0]["pulls"].size
+            print(f"  channel pulls about seed means  {np.std(within) * np.sqrt(n_ch / max(n_ch - 1, 1)):.3f}  "
+                  f"(seed means scatter {np.std(means):.3f}; correlation with the white pull "
+                  f"{np.corrcoef(means, white)[0, 1]:+.2f})")
             print(f"  white pull scatter              {np.std(white):.3f}  (mean {np.mean(white):+.3f})")
             family = [r["family"] for r in rows]
             print(f"  injected family weight          {np.mean(family):.3f}  "
