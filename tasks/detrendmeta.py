@@ -268,6 +268,27 @@ def coefficients_table(grid, bands):
         shapes = ", ".join(f"{k}={v:.6g}" for k, v in sorted(white.shapes.items()))
         rows.append((j, lo, hi, grid.specs[m].white_name if c == 0 else grid.specs[m].name,
                      names, values, cov, float(fit.error_scale), shapes))
+    return padded_coefficients(rows, COEFFICIENT_COLUMNS)
+
+
+def padded_coefficients(rows, columns):
+    """The COEFFICIENTS table from one row per light curve, values and covariance NaN-padded.
+
+    Parameters
+    ----------
+    rows : list of tuple
+        ``(channel, wave_lo, wave_hi, model, names, values, covariance,
+        error_scale, shapes)`` per light curve; ``values`` (K,) and
+        ``covariance`` (K, K) with K = ``len(names)``.
+    columns : dict
+        Column name to (unit, description) (:func:`describe`).
+
+    Returns
+    -------
+    astropy.table.Table
+        ``values`` (n, K_max) and ``covariance`` (n, K_max, K_max), NaN past
+        each row's ``n_terms``.
+    """
     k = max([len(r[4]) for r in rows] + [1])
     values = np.full((len(rows), k), np.nan)
     covariance = np.full((len(rows), k, k), np.nan)
@@ -286,5 +307,5 @@ def coefficients_table(grid, bands):
     table["covariance"] = covariance
     table["error_scale"] = [r[7] for r in rows]
     table["shapes"] = [r[8] for r in rows]
-    describe(table, COEFFICIENT_COLUMNS)
+    describe(table, columns)
     return table

@@ -35,7 +35,7 @@ from types import SimpleNamespace
 import numpy as np
 from astropy.table import Table
 
-from .detrendmeta import event_cards
+from .detrendmeta import event_cards, padded_coefficients
 from .metadata import ecsv_meta, fits_cards
 from .phasecolumns import COEFFICIENT_COLUMNS, describe
 
@@ -176,25 +176,7 @@ def coefficients_table(bands, fits, models):
                            for name, value in v.shapes)
         rows.append((j, lo, hi, model, names, np.asarray(values, float),
                      np.asarray(jf.covariance, float), float(jf.error_scale), shapes))
-    k = max([len(r[4]) for r in rows] + [1])
-    values = np.full((len(rows), k), np.nan)
-    covariance = np.full((len(rows), k, k), np.nan)
-    for i, r in enumerate(rows):
-        n = len(r[4])
-        values[i, :n] = r[5]
-        covariance[i, :n, :n] = r[6]
-    table = Table()
-    table["channel"] = [r[0] for r in rows]
-    table["wave_lo"] = [float(r[1]) for r in rows]
-    table["wave_hi"] = [float(r[2]) for r in rows]
-    table["model"] = [r[3] for r in rows]
-    table["n_terms"] = [len(r[4]) for r in rows]
-    table["names"] = [",".join(r[4]) for r in rows]
-    table["values"] = values
-    table["covariance"] = covariance
-    table["error_scale"] = [r[7] for r in rows]
-    table["shapes"] = [r[8] for r in rows]
-    return describe(table, COEFFICIENT_COLUMNS)
+    return padded_coefficients(rows, COEFFICIENT_COLUMNS)
 
 
 def _active(jf):

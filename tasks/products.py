@@ -226,6 +226,17 @@ def table_hdu(table, name):
     return hdu
 
 
+def _primary(path, provenance, header):
+    """The primary HDU of a FITS product at ``path``: provenance cards and ``header``'s keywords."""
+    if path.suffix != ".fits":
+        raise ValueError(f"{path}: products are plain .fits files")
+    primary = fits.PrimaryHDU()
+    provenance.header_cards(primary.header)
+    for key, value in (header or {}).items():
+        primary.header[key] = value
+    return primary
+
+
 def write_fits(path, hdus, provenance, *, header=None):
     """Write a FITS product with provenance and checksums, atomically.
 
@@ -245,12 +256,7 @@ def write_fits(path, hdus, provenance, *, header=None):
         SHA-256 of the written file.
     """
     path = Path(path)
-    if path.suffix != ".fits":
-        raise ValueError(f"{path}: products are plain .fits files")
-    primary = fits.PrimaryHDU()
-    provenance.header_cards(primary.header)
-    for key, value in (header or {}).items():
-        primary.header[key] = value
+    primary = _primary(path, provenance, header)
     hdul = fits.HDUList([primary, *hdus, provenance.table_hdu()])
     for hdu in hdul:
         # astropy dates the comments of CHECKSUM and DATASUM with the wall clock; a fixed text
@@ -276,12 +282,7 @@ def write_fits_stream(path, hdus, provenance, *, header=None):
         SHA-256 of the written file.
     """
     path = Path(path)
-    if path.suffix != ".fits":
-        raise ValueError(f"{path}: products are plain .fits files")
-    primary = fits.PrimaryHDU()
-    provenance.header_cards(primary.header)
-    for key, value in (header or {}).items():
-        primary.header[key] = value
+    primary = _primary(path, provenance, header)
 
     def serialised(hdu):
         """The bytes ``hdu`` has in a file after a bare primary HDU (checksums included)."""
