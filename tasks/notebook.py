@@ -1,22 +1,8 @@
-"""The notebook page of a visit (``index.html``, ``notebook.json``) and housekeeping.
+"""Notebook housekeeping: listing and pruning entries, and the records that keep them current.
 
 Every stage folder ``NOTEBOOK/STAGE-IDENT/`` holds an ``entry.json`` written
-when the stage completed.  :func:`render_page` gathers them in time order
-into a machine-readable ``notebook.json`` and a static, self-contained
-``index.html`` (inline style, relative links, nothing requested from a
-network).  The page opens with a contents list grouped by stage, the
-current chain marked; each entry shows when and by whom it ran, its
-parameters with the ones that differ from the previous entry of the same
-stage highlighted, its headline figures and its products.  The figures of
-the current chain are embedded; those of other entries are linked from
-their folders, so the page stays small as entries accumulate.  A stage with
-two or more current entries gets one figure overlaying their spectra (the
-newest six, labelled with the parameters each changed).  Only an
-entry's own PNG files (plain names inside its folder, with the PNG
-signature) are ever embedded or linked.
-
-The page is a function of the entries alone (no time of writing in it), so
-``lightledger audit`` can generate it again and compare.
+when the stage completed; the page built from them (``index.html``,
+``notebook.json``) is described in :mod:`.notebookpage`.
 
 :func:`list_entries` and :func:`prune` are the ``lightledger notebook list``
 and ``notebook prune`` commands; they and the records that keep entries
