@@ -23,6 +23,11 @@ channel's chi-square by about the channel's share of the white light times
 the number of exposures, a spurious gain in any information criterion.
 :func:`divide_common_mode` propagates the variance with the covariance.
 
+The white light's own choice of systematics model is uncertain too: its
+depth is marginalised over its models (Gibson 2014; Wakeford et al. 2016),
+and :func:`common_mode_choice` does the same for a channel divided by a
+common mode, over the common modes of those models.
+
 Masks are not handled here (NaN propagates).  Inputs are not modified.
 """
 
@@ -30,7 +35,7 @@ import numpy as np
 
 from .errors import ParameterError
 
-__all__ = ["COMMON_MODES", "common_modes", "divide_common_mode"]
+__all__ = ["COMMON_MODES", "common_modes", "divide_common_mode", "common_mode_choice"]
 
 #: Common-mode kinds by token suffix.
 COMMON_MODES = ("sys", "res")
@@ -131,3 +136,51 @@ def divide_common_mode(flux, variance, g, *, kind, white_flux=None, white_varian
         rel = v / (f * f) + vw / (fw * fw) - 2.0 * s * v / (f * fw)
         # a floor keeps a degenerate case (a channel that is the whole white band) finite
         return y, y * y * np.maximum(rel, 1e-6 * v / (f * f))
+
+
+def common_mode_choice(flux, variance, alternatives, fit_depth, *, kind, white_flux=None,
+                       white_variance=None, share=1.0):
+    r"""A channel's depth over the white light's models' common modes: mean and spread.
+
+    The common mode divided out of a channel comes from one fit of the white
+    light curve, but the white light weighs several systematics models
+    (their information-criterion weights).  The channel is divided by each
+    model's common mode in turn and refitted (its own model held), and its
+    depths are marginalised with the white light's weights (Wakeford et al.
+    2016): :math:`\bar d = \sum_k w_k d_k` and the between-model variance
+    :math:`\sum_k w_k (d_k - \bar d)^2`, which belongs in the channel's error
+    as the white light's model choice is in the white depth's.
+
+    Parameters
+    ----------
+    flux, variance : array_like of float, shape (n_exposures,)
+        The channel, flux units.
+    alternatives : sequence of (float, ndarray)
+        The white light's weight of each model and that model's common mode
+        of ``kind`` (:func:`common_modes`); weights are normalised here.
+    fit_depth : callable
+        ``fit_depth(flux, variance) -> depth``: the channel's fit of a
+        divided light curve.
+    kind, white_flux, white_variance, share
+        As for :func:`divide_common_mode`.
+
+    Returns
+    -------
+    (float, float)
+        The weighted mean depth and the between-model variance (NaN and 0
+        when no refit gives a finite depth).
+    """
+    weights, depths = [], []
+    for w, g in alternatives:
+        y, v = divide_common_mode(flux, variance, g, kind=kind, white_flux=white_flux,
+                                  white_variance=white_variance, share=share)
+        weights.append(float(w))
+        depths.append(float(fit_depth(y, v)))
+    d = np.asarray(depths, float)
+    w = np.asarray(weights, float)
+    ok = np.isfinite(d) & (w > 0)
+    if not np.any(ok):
+        return float("nan"), 0.0
+    w = w[ok] / np.sum(w[ok])
+    mean = float(np.sum(w * d[ok]))
+    return mean, float(np.sum(w * (d[ok] - mean) ** 2))

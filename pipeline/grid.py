@@ -18,7 +18,9 @@ marginalises its depth with an error that includes the spread between models
 The white light ranks only its distinct models (models differing by their
 common mode share one white fit).  A channel's weights take the white
 light's weights as the models' prior (a common-mode member that of the
-white model it divides out): the channels are fitted at the white light's
+top white model it divides out; its depth is the mean over the white
+models' common modes weighted like the white light's, their spread added to
+its error): the channels are fitted at the white light's
 systematics, and a channel alone, with a tenth of the signal, cannot tell a
 ramp the white light shows, so that by its own criterion alone a model
 without the ramp would win on its fewer parameters and bias every channel
@@ -134,8 +136,10 @@ class GridFit:
         The depth error three ways, the beta factor, and the kind chosen.
     error_inherited : ndarray of float, shape (n_models, 1 + n_channels)
         The part of a channel's errors inherited from the white light's fit
-        (its common mode, shapes and event; :func:`inherited_error`), included
-        in each of the three (0 for the white light).
+        (its common mode, shapes and event; :func:`inherited_error`; for a
+        common-mode model also the spread of the channel's depth over the
+        white models' common modes), included in each of the three (0 for the
+        white light).
     value, value_error, within, between : ndarray of float, shape (1 + n_channels,)
         Marginalised depth, its error, and the two parts of the error (NaN for
         a channel whose every exposure is masked: it is not fitted).
@@ -192,6 +196,12 @@ class GridFit:
 #: variance inflation factor of 100, far beyond the 10 that flags
 #: collinear regressors (common practice).
 MAX_ERROR_INFLATION = 10.0
+
+
+#: Smallest white-light weight of a model whose common mode a common-mode member's
+#: channels are refitted with (:func:`fit_grid`): the models below it together
+#: hold a negligible share of the white light's weight.
+MIN_CHOICE_WEIGHT = 1e-3
 
 
 def _shared_mask(models, inputs_list, base):
@@ -348,6 +358,12 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
     cm_model = int(np.argmax(w_white))
     best_white = white_fits[cm_model]
     common = common_modes(best_white.result, curves.white_flux)
+    # every white model the white light weighs, for the spread of a common-mode member
+    choice = [k for k in np.argsort(-w_white) if w_white[k] >= MIN_CHOICE_WEIGHT]
+    alternatives = {kind: tuple((float(w_white[k]),
+                                 common_modes(white_fits[k].result, curves.white_flux)[kind])
+                                for k in choice)
+                    for kind in {s.common_mode for s in specs if s.common_mode}}
 
     if ld_prior is not None:
         pairs = []
@@ -372,7 +388,8 @@ def fit_grid(specs, curves, event, *, free=("t0",), criterion="bic", error_kind=
         jobs.append(ChannelJob(m, curves, mask, skipped, templates[owner[m]], models[m],
                                 shape_names[m], wf, best_white if specs[m].common_mode else None,
                                 specs[m].common_mode, common.get(specs[m].common_mode), event,
-                                u1, u2, opts, n_shifts, error_kind))
+                                u1, u2, opts, n_shifts, error_kind,
+                                alternatives.get(specs[m].common_mode, ())))
     results = iter(map(fit_channels_job, jobs))
     for m in range(n_models):
         if white_fits[owner[m]] is None:

@@ -13,7 +13,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from .commonmode import divide_common_mode
+from .commonmode import common_mode_choice, divide_common_mode
 from .errors import LightledgerError
 from .eventfit import fit_event
 from .fiterrors import depth_errors, event_alone_error, linearise_fit
@@ -80,6 +80,7 @@ class ChannelJob:
     options: dict
     n_shifts: int
     error_kind: str
+    alternatives: tuple = ()
 
 
 def fit_channels_job(job):
@@ -90,6 +91,15 @@ def fit_channels_job(job):
     fit's shapes (a transit at the channel's own fitted radius), its depth
     errors computed with what it inherits from the white fit, and the common
     mode multiplied back into its systematics and model.
+
+    A common-mode member's channel is also refitted (its template and columns
+    held) with the common mode of each white model in ``job.alternatives``
+    (pairs of the white light's weight and that model's common mode): its
+    depth becomes the weighted mean over them and their spread
+    (:func:`~lightledger.pipeline.commonmode.common_mode_choice`) is added to what it inherits, so that the white
+    light's choice of model reaches the channels that divide it out, as it
+    reaches the white light's own marginalised depth.  The fit's model and
+    detrended light curve stay those of the top white model's common mode.
     """
     curves, wf, opts, event = job.curves, job.white, job.options, job.event
     share = (None if curves.white_share is None
@@ -135,6 +145,17 @@ def fit_channels_job(job):
                 lambda shapes, f=f, v=v, j=j, t_j=t_j, inputs=inputs: fit_at_shapes(
                     inputs, f, v, t_j, model, shapes, mask=mask[:, j], **opts)[0].depth,
                 job.shape_names) ** 2
+            if job.common is not None and len(job.alternatives) > 1:
+                mean, spread = common_mode_choice(
+                    curves.flux[:, j], curves.variance[:, j], job.alternatives,
+                    lambda fk, vk, j=j, t_j=t_j, design=design: fit_event(
+                        fk, vk, t_j, design.columns, mask=mask[:, j], basis_names=design.names,
+                        **opts).depth,
+                    kind=job.common_mode, white_flux=curves.white_flux,
+                    white_variance=curves.white_variance, share=1.0 if share is None else share[j])
+                if np.isfinite(mean):
+                    res = replace(res, depth=mean)
+                    extra += spread
             errs = depth_errors(res, lin, f, n_shifts=job.n_shifts, inherited=extra)
             alone = _alone(res, errs, lin, job.error_kind)
         except (LightledgerError, np.linalg.LinAlgError) as exc:

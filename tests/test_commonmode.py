@@ -4,7 +4,9 @@ Sources: the divide-white correction, a spectroscopic channel divided by the
 white light curve over its fitted event model (Berta et al. 2012; Kreidberg
 et al. 2014): achromatic systematics cancel exactly; the variance of a ratio
 of correlated quantities to first order (propagation of errors, common
-practice), checked against a Monte Carlo (STYLE.md 7).
+practice), checked against a Monte Carlo (STYLE.md 7); marginalisation over
+models with information-criterion weights (Wakeford et al. 2016), computed by
+hand on a noise-free case.
 """
 
 from types import SimpleNamespace
@@ -12,7 +14,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from lightledger.pipeline.commonmode import common_modes, divide_common_mode
+from lightledger.pipeline.commonmode import common_mode_choice, common_modes, divide_common_mode
 from lightledger.pipeline.errors import ParameterError
 from lightledger.pipeline.eventfit import fit_event
 
@@ -94,3 +96,30 @@ def test_validation():
     with pytest.raises(ParameterError, match="share"):
         divide_common_mode(np.ones(3), np.ones(3), np.ones(3), kind="res", white_flux=np.ones(3),
                            white_variance=np.ones(3), share=2.0)
+
+
+def test_common_mode_choice_marginalises_over_the_white_models():
+    # Two white models whose common modes differ by a box-shaped dip of 0.002 and
+    # 0.005 (a model that took part of the event into its systematics), weighted 0.7
+    # and 0.3.  Noise-free, a channel (1 - 0.012 s) divided by 1 - a s and fitted with
+    # a constant and a depth has in-event level (1 - 0.012)/(1 - a) exactly, so
+    # d_k = 1 - 0.988/(1 - a_k); the marginalised depth is sum w d and the spread
+    # sum w (d - mean)^2 (Wakeford et al. 2016), computed here by hand.
+    flux = 5e4 * TREND * (1 - 0.012 * BOX)
+    var = np.full(N, 5e4)
+    alts = [(0.7, 1 - 0.002 * BOX), (0.3, 1 - 0.005 * BOX)]
+
+    def fit_depth(y, v):
+        return fit_event(y, v, BOX, T[:, None]).depth
+
+    mean, spread = common_mode_choice(flux, var, alts, fit_depth, kind="sys")
+    d = 1 - 0.988 / (1 - np.array([0.002, 0.005]))
+    w = np.array([0.7, 0.3])
+    assert mean == pytest.approx(np.sum(w * d), rel=1e-6)
+    assert spread == pytest.approx(np.sum(w * (d - np.sum(w * d)) ** 2), rel=1e-4)
+    # weights are normalised; one model alone has no spread; a failed refit drops out
+    assert common_mode_choice(flux, var, [(2.0, alts[0][1]), (2.0, alts[0][1])], fit_depth,
+                              kind="sys") == pytest.approx((d[0], 0.0), abs=1e-12)
+    calls = iter([fit_depth, lambda y, v: np.nan])
+    mean, spread = common_mode_choice(flux, var, alts, lambda y, v: next(calls)(y, v), kind="sys")
+    assert (mean, spread) == pytest.approx((d[0], 0.0), abs=1e-12)

@@ -157,6 +157,35 @@ def test_a_model_whose_systematics_mimic_the_event_gets_no_weight():
     assert any("the depth is not determined" in f for f in grid.failures)
 
 
+def test_common_mode_members_carry_the_white_lights_model_choice(monkeypatch):
+    # A channel divided by the white light's common mode takes the white light's
+    # choice of model with it: its depth is marginalised over the white models'
+    # common modes with the white light's weights and their spread joins its error
+    # (Wakeford et al. 2016).  Against the same grid with the top white model's
+    # common mode alone: every other member is unchanged; a common-mode member's
+    # inherited variance grows by the spread V = sum w (d - mean)^2, and the top
+    # model's depth lies within sqrt(V / w_top) of the mean (V >= w_top (d_top -
+    # mean)^2, since each term of the sum is >= 0).
+    import lightledger.pipeline.grid as gridmod
+    curves, event, _, ref = _curves("exponential", 1)
+    specs = parse_grid(("visit1+scan+ramp", "visit1+orbit2+scan+ramp-shared", "visit1+orbit3+scan",
+                        "visit1+scan+cm-sys", "visit1+scan+cm-res"))
+    new = fit_grid(specs, curves, event, reference_rate=ref, n_shifts=0)
+    monkeypatch.setattr(gridmod, "MIN_CHOICE_WEIGHT", 2.0)
+    old = fit_grid(specs, curves, event, reference_rate=ref, n_shifts=0)
+    w_top = new.weight[:, 0].max()
+    assert w_top < 0.95, new.weight[:, 0]           # the white light does not choose alone
+    np.testing.assert_array_equal(new.depth[:3], old.depth[:3])
+    np.testing.assert_array_equal(new.error[:3], old.error[:3])
+    np.testing.assert_array_equal(new.depth[:, 0], old.depth[:, 0])
+    spread = new.error_inherited[3:, 1:] ** 2 - old.error_inherited[3:, 1:] ** 2
+    assert np.all(spread > 0), spread
+    np.testing.assert_allclose(new.error_covariance[3:, 1:] ** 2 - old.error_covariance[3:, 1:] ** 2,
+                               spread, rtol=1e-6)
+    assert np.all(np.abs(old.depth[3:, 1:] - new.depth[3:, 1:]) <= np.sqrt(spread / w_top) * (1 + 1e-9))
+    assert np.any(new.depth[3:, 1:] != old.depth[3:, 1:])
+
+
 def test_models_fitted_in_a_process_pool_give_the_same_grid():
     # The models' fits are independent jobs: handed to two processes (the detrend stage's
     # pool under --workers 2, tasks/fitpool.py) they give every number of the grid fitted

@@ -4,6 +4,7 @@ Run on demand (pytest does not collect ``bench_*.py``)::
 
     python tests/benchmarks/bench_grid.py [--seeds N] [--first S] [--exposures N]
                                           [--scenarios scan-exponential scan-traps stare]
+                                          [--save FILE.npz] [--pool FILE.npz ...]
 
 For each scenario and seed the script renders a visit with the forward model
 (``scan-transit`` with exponential ramps, ``scan-transit`` with
@@ -27,7 +28,10 @@ products with the truth.  Per scenario it prints, over the seeds:
   ten pulls together), and the same for the white depth; the channel pulls'
   scatter about each seed's mean (the part the channels do not share) and the
   seed means' scatter with its correlation with the white pull (the shared
-  part);
+  part); each scatter with its 68 and 95 per cent intervals from a bootstrap
+  over seeds (whole seeds drawn with replacement, so that the offset the
+  channels of a seed share is resampled with them, not treated as ten
+  independent pulls; Efron & Tibshirani 1993, the cluster bootstrap);
 * ``injected family weight``: the weight of the models holding the injected
   kind of ramp (a common-mode model counting with the white model it divides
   out), averaged over the white light and the channels;
@@ -38,7 +42,10 @@ products with the truth.  Per scenario it prints, over the seeds:
 
 Each reduction takes about half a minute on a 2-core machine; the default (8
 seeds of the two scan scenarios) about 10 minutes.  Rendered visits go to a
-temporary directory that is removed at the end.
+temporary directory that is removed at the end.  ``--save`` keeps each seed's
+pulls (one ``.npz`` per run, the scenario in its keys); ``--pool`` prints the
+pooled figures of saved runs without reducing anything, so that seeds
+reduced in separate runs of the same code are summarised together.
 """
 
 import argparse
@@ -92,6 +99,90 @@ def _family_weight(grid_table, family):
                 w += float(row["weight"])
         totals.append(w)
     return float(np.mean(totals))
+
+
+def seed_bootstrap(groups, statistic=np.std, n_boot=4000, seed=0):
+    """Percentile intervals of ``statistic`` of pooled values, resampling whole groups.
+
+    ``groups`` holds one array per seed (its channel pulls); a bootstrap
+    sample draws as many seeds with replacement and pools their values, so
+    that the part a seed's values share stays with them (the cluster
+    bootstrap; Efron & Tibshirani 1993, from memory).
+
+    Returns
+    -------
+    (lo68, hi68, lo95, hi95)
+    """
+    rng = np.random.default_rng(seed)
+    groups = [np.atleast_1d(np.asarray(g, float)) for g in groups]
+    draws = rng.integers(0, len(groups), size=(n_boot, len(groups)))
+    stats = np.array([statistic(np.concatenate([groups[i] for i in row])) for row in draws])
+    return tuple(float(x) for x in np.percentile(stats, [16, 84, 2.5, 97.5]))
+
+
+def _interval(groups, statistic=np.std):
+    lo68, hi68, lo95, hi95 = seed_bootstrap(groups, statistic)
+    return f"68% {lo68:.2f}-{hi68:.2f}, 95% {lo95:.2f}-{hi95:.2f}"
+
+
+def summarise(label, rows, n_exp):
+    """Print the pooled figures of one scenario's seeds (``rows`` from :func:`run_one`)."""
+    pulls = np.concatenate([r["pulls"] for r in rows])
+    white = np.array([r["white_pull"] for r in rows])
+    seeds = " ".join(str(r.get("seed", "?")) for r in rows)
+    print(f"\n{label}: {len(rows)} seeds of {n_exp} exposures (seeds {seeds})")
+    print(f"  white rms / limit (per dof)     {np.median([r['white_rms'] for r in rows]):.3f}")
+    print(f"  channel rms / limit (median)    {np.median([r['chan_rms'] for r in rows]):.3f}")
+    print(f"  spectrum chi-square p per seed  "
+          + " ".join(f"{r['p']:.3f}" for r in rows)
+          + f"   (lowest {min(r['p'] for r in rows):.3f})")
+    print(f"  channel pull scatter            {np.std(pulls):.3f}  "
+          f"(mean {np.mean(pulls):+.3f}, {pulls.size} pulls; "
+          f"{_interval([r['pulls'] for r in rows])} over seeds)")
+    means = np.array([np.mean(r["pulls"]) for r in rows])
+    within = [r["pulls"] - np.mean(r["pulls"]) for r in rows]
+    n_ch = rows[0]["pulls"].size
+    corr = np.sqrt(n_ch / max(n_ch - 1, 1))
+    print(f"  channel pulls about seed means  {np.std(np.concatenate(within)) * corr:.3f}  "
+          f"({_interval(within, lambda x: np.std(x) * corr)}; seed means scatter {np.std(means):.3f}, "
+          f"correlation with the white pull {np.corrcoef(means, white)[0, 1]:+.2f})")
+    print(f"  white pull scatter              {np.std(white):.3f}  (mean {np.mean(white):+.3f}; "
+          f"{_interval(list(white))})")
+    family = [r["family"] for r in rows]
+    print(f"  injected family weight          {np.mean(family):.3f}  "
+          f"(per seed {' '.join(f'{w:.2f}' for w in family)})")
+    print(f"  grid / single fit time          {np.median([r['cost'] for r in rows]):.1f}  "
+          f"(grid {np.median([r['t_grid'] for r in rows]):.1f} s)")
+    sys.stdout.flush()
+
+
+_SAVED = ("white_rms", "chan_rms", "p", "white_pull", "family", "cost", "t_grid", "seed")
+
+
+def save_rows(path, results):
+    """Keep each scenario's per-seed figures (``{label: (n_exposures, rows)}``) in one ``.npz``."""
+    out = {}
+    for label, (n_exp, rows) in results.items():
+        out[f"{label}|n_exposures"] = np.array(n_exp)
+        out[f"{label}|pulls"] = np.array([r["pulls"] for r in rows])
+        for key in _SAVED:
+            out[f"{label}|{key}"] = np.array([r[key] for r in rows])
+    np.savez(path, **out)
+
+
+def load_rows(paths):
+    """Per-seed figures of saved runs, pooled by scenario: ``{label: (n_exposures, rows)}``."""
+    pooled = {}
+    for path in paths:
+        with np.load(path) as data:
+            labels = sorted({k.split("|")[0] for k in data.files})
+            for label in labels:
+                n_exp = int(data[f"{label}|n_exposures"])
+                rows = [dict({key: data[f"{label}|{key}"][i].item() for key in _SAVED},
+                             pulls=np.asarray(data[f"{label}|pulls"][i], float))
+                        for i in range(len(data[f"{label}|pulls"]))]
+                pooled.setdefault(label, (n_exp, []))[1].extend(rows)
+    return pooled
 
 
 def _grid_cost(lc_path, visit, single):
@@ -148,6 +239,7 @@ def run_one(root, label, seed, n_exposures):
         "family": _family_weight(grid, family),
         "cost": t_grid / t_single,
         "t_grid": t_grid,
+        "seed": seed,
     }
 
 
@@ -161,9 +253,18 @@ def main(argv=None):
                         choices=sorted(SCENARIOS))
     parser.add_argument("--keep", type=Path, default=None,
                         help="keep the rendered visits and their notebooks in this directory")
+    parser.add_argument("--save", type=Path, default=None,
+                        help="write each seed's figures to this .npz file")
+    parser.add_argument("--pool", type=Path, nargs="+", default=None,
+                        help="print the pooled figures of runs saved with --save, reducing nothing")
     args = parser.parse_args(argv)
+    if args.pool:
+        for label, (n_exp, rows) in load_rows(args.pool).items():
+            summarise(label, rows, n_exp)
+        return 0
     if args.keep is not None:
         args.keep.mkdir(parents=True, exist_ok=True)
+    results = {}
     with tempfile.TemporaryDirectory(prefix="bench-grid-") as tmp:
         root = tmp if args.keep is None else args.keep
         for label in args.scenarios:
@@ -177,29 +278,10 @@ def main(argv=None):
                       f"{np.std(r['pulls']):.2f}, white pull {r['white_pull']:+.2f}, family weight "
                       f"{r['family']:.2f}, grid/single {r['cost']:.1f} ({time.perf_counter() - t0:.0f} s)",
                       file=sys.stderr, flush=True)
-            pulls = np.concatenate([r["pulls"] for r in rows])
-            white = np.array([r["white_pull"] for r in rows])
-            print(f"\n{label}: {len(rows)} seeds of {n_exp} exposures")
-            print(f"  white rms / limit (per dof)     {np.median([r['white_rms'] for r in rows]):.3f}")
-            print(f"  channel rms / limit (median)    {np.median([r['chan_rms'] for r in rows]):.3f}")
-            print(f"  spectrum chi-square p per seed  "
-                  + " ".join(f"{r['p']:.3f}" for r in rows)
-                  + f"   (lowest {min(r['p'] for r in rows):.3f})")
-            print(f"  channel pull scatter            {np.std(pulls):.3f}  "
-                  f"(mean {np.mean(pulls):+.3f}, {pulls.size} pulls)")
-            means = np.array([np.mean(r["pulls"]) for r in rows])
-            within = np.concatenate([r["pulls"] - np.mean(r["pulls"]) for r in rows])
-            n_ch = rows[0]["pulls"].size
-            print(f"  channel pulls about seed means  {np.std(within) * np.sqrt(n_ch / max(n_ch - 1, 1)):.3f}  "
-                  f"(seed means scatter {np.std(means):.3f}; correlation with the white pull "
-                  f"{np.corrcoef(means, white)[0, 1]:+.2f})")
-            print(f"  white pull scatter              {np.std(white):.3f}  (mean {np.mean(white):+.3f})")
-            family = [r["family"] for r in rows]
-            print(f"  injected family weight          {np.mean(family):.3f}  "
-                  f"(per seed {' '.join(f'{w:.2f}' for w in family)})")
-            print(f"  grid / single fit time          {np.median([r['cost'] for r in rows]):.1f}  "
-                  f"(grid {np.median([r['t_grid'] for r in rows]):.1f} s)")
-            sys.stdout.flush()
+            results[label] = (n_exp, rows)
+            summarise(label, rows, n_exp)
+            if args.save is not None:
+                save_rows(args.save, results)
     return 0
 
 
