@@ -35,10 +35,12 @@ from lightledger.pipeline import mask as dq
 from lightledger.pipeline.calibrate import calibrate_exposure
 from lightledger.pipeline.chunkcal import ExposureSetup, calibrate_chunk
 
+from .alongside import alongside
 from .applicability import not_applying, visit_facts
 from .base import ENTRY_NAME, VisitTask, chunk_ranges, settings_from_text
 from .check import clip_level, visit_exposures
 from .geometry import expected_source_rows
+from .heap import give_back
 from .products import table_hdu, write_ecsv, write_fits
 from .rawio import inventory_table, read_exposures
 from .references import load_references
@@ -256,19 +258,24 @@ class Calibrate(VisitTask):
         yield chunks
         started = time.time()     # run() starts again once the chunks are complete
         paths = [c.output().path for c in chunks]
+        give_back()               # the chunks' arrays (one worker: this process ran them)
         exposures = vstack([read_chunk(p, exposures_only=True) for p in paths])
-        table_path = self.folder / "exposures.ecsv"
-        write_ecsv(table_path, exposures, self.provenance(paths))
         from .figures import calibrate_figure
         middle = len(paths) // 2
         flux, var, bits, _ = read_chunk(paths[middle])
+        frame, frame_bits = flux[0].copy(), bits[0].copy()
+        del flux, var, bits
         fig_path = self.folder / "calibrate.png"
         first = exposures[self.chunk_span(middle)[0]]
-        ny, nx = bits[0].shape
+        ny, nx = frame_bits.shape
         source = expected_source_rows(self.config, nx, ny, (int(first["origin_x"]), int(first["origin_y"])),
                                       float(first["scan_velocity"]), float(first["exposure_time"]))
-        calibrate_figure(fig_path, flux[0], bits[0], exposures, source_rows=source,
-                         scanning=bool(first["scan_velocity"]))
+        # --workers N: the figure is drawn in a forked process while the table is written
+        side = alongside()
+        side.start(calibrate_figure, fig_path, frame, frame_bits, exposures, source_rows=source,
+                   scanning=bool(first["scan_velocity"]))
+        table_path = self.folder / "exposures.ecsv"
+        write_ecsv(table_path, exposures, self.provenance(paths))
         counts = {name: int(np.sum(exposures[f"n_{name.lower()}"])) for name in dq.FLAGS}
         aside = self._set_aside()
         metrics = {"exposures": len(exposures), "chunks": len(paths),
@@ -278,6 +285,7 @@ class Calibrate(VisitTask):
                    **{f"flagged {k.lower()} (pixel-exposures)": v for k, v in counts.items() if v}}
         facts = visit_facts(scanning=bool(np.any(np.asarray(exposures["scan_direction"]) != 0)),
                             n_orbits=None, kind=self.config.event["kind"])
+        side.wait()
         self.write_entry(self.output().path, [self.input().path, *paths],
                          [*paths, table_path, self.input().path], metrics, [fig_path], started,
                          extra_seconds=self.task_seconds(paths),

@@ -65,7 +65,9 @@ from .detrendsetup import (SINGLE_MODEL, _left_out, _median_rate, _wants_phase_c
 from .detrendtables import (REASONS, _depths_table, _detrended_table,  # noqa: F401
                             _limb_darkening, _unfitted_row, grid_table, read_depths, star_alone,
                             with_reasons)
+from .alongside import alongside
 from .fitpool import fit_map
+from .heap import give_back
 from .lightcurves import read_lightcurves, usable_rows, wide_table
 from .metadata import channel_text, ecsv_meta, fits_cards, set_time_keywords
 from .products import table_hdu, write_ecsv, write_fits, write_fits_stream
@@ -73,6 +75,23 @@ from .products import table_hdu, write_ecsv, write_fits, write_fits_stream
 __all__ = ["Detrend", "event_template", "grid_setup", "systematics_setup", "star_alone",
            "channel_exclusions", "read_depths", "SINGLE_MODEL", "with_reasons", "left_out_rows"]
 
+
+
+def _only_top_residuals(grid):
+    """The grid with each channel's other models' fits kept without their residual curves.
+
+    ``grid-models.fits`` needs every model's model and systematics curves and fit
+    mask; the residuals, detrended flux and its error (three of a fit's five
+    per-exposure curves) are read only for each light curve's top model (its
+    DEPTHS row).  The white light's fits are left whole (the white fits hold them).
+    """
+    fits = []
+    for m, row in enumerate(grid.fits):
+        fits.append(tuple(fit if fit is None or c == 0 or m == grid.best[c] else
+                          dataclasses.replace(fit, detrended_flux=None, detrended_error=None,
+                                              residuals=None)
+                          for c, fit in enumerate(row)))
+    return dataclasses.replace(grid, fits=tuple(fits))
 
 def _event_line(event, template, t_fine, template_fine):
     """The event model on a fine time grid, when it is linear in the event template.
@@ -114,6 +133,7 @@ class Detrend(VisitTask):
 
     def run(self):
         started = time.time()
+        give_back()                     # what the stages before let go of
         visit, params = self.config, self.params
         lc_path = self.requires().final_product()
         lc_all, channels = read_lightcurves(lc_path)
@@ -140,10 +160,10 @@ class Detrend(VisitTask):
             grid = fit_grid(specs, curves, visit.event,
                             progress=lambda done, total, text: self.progress(done, total, text),
                             map=mapper, **options)
+        grid = _only_top_residuals(grid)
         n_ch = len(channels)
         kind = visit.event["kind"]
         left_out = left_out_rows(lc, params)
-        det = with_reasons(_detrended_table(lc, grid, grid.best, kind), lc, lc_all, left_out)
         depths = _depths_table(lc, channels, grid, visit.event)
         # can the results be trusted? (pipeline/plausibility.py)
         quality = assess_fits(depths["depth"], depths["depth_error"],
@@ -173,6 +193,59 @@ class Detrend(VisitTask):
 
         prov = self.provenance([lc_path])
         folder = self.folder
+        from .figures import detrend_channels_figure, detrend_figure, grid_figure
+        wb = grid.fits[grid.best[0]][0]
+        used = ~np.asarray(wb.fit_mask, bool)
+        fig = folder / "detrend.png"
+        dim = (np.asarray(channels["dim"], bool) if "dim" in channels.colnames
+               else np.zeros(n_ch, bool))
+        # the event model as a line on a fine grid, at the white light's fitted shape
+        shape = {k: float(v) for k, v in
+                 grid.white_fits[grid.white_owner[grid.best[0]]].event.items()
+                 if k in ("t0", "a_rs", "inclination")}
+        t_fine = np.linspace(t.min(), t.max(), 3000)
+        tmpl, tmpl_fine = (_event_template(x, visit.event, **shape) for x in (t, t_fine))
+
+        def line(fit):
+            with np.errstate(all="ignore"):
+                return _event_line(fit.model / star_alone(fit, kind), tmpl, t_fine, tmpl_fine)
+
+        fig_channels = folder / "detrend-channels.png"
+        c_flux = np.asarray(lc["flux"], float)
+        c_err = np.asarray(lc["error"], float)
+        c_model, c_star = np.full(c_flux.shape, np.nan), np.full(c_flux.shape, np.nan)
+        c_used = np.zeros(c_flux.shape, bool)
+        lines = []
+        for j in range(n_ch):
+            fit = grid.fits[grid.best[1 + j]][1 + j] if grid.best[1 + j] >= 0 else None
+            lines.append(None if fit is None else line(fit))
+            if fit is not None:
+                c_model[:, j], c_star[:, j] = fit.model, star_alone(fit, kind)
+                c_used[:, j] = ~np.asarray(fit.fit_mask, bool)
+        # --workers N: the largest figure is drawn in a forked process while the products are
+        # written (tasks/alongside.py); with one worker, at side.wait()
+        side = alongside()
+        side.start(detrend_channels_figure, fig_channels, t, c_flux, c_err, c_model, c_star, c_used,
+                   [channel_text(channels, j) for j in range(n_ch)], dim=dim, event_lines=lines)
+        models_path = folder / "grid-models.fits"
+
+        def model_hdus():
+            # one model's table in memory at a time
+            for m, spec in enumerate(specs):
+                hdu = table_hdu(with_reasons(_detrended_table(lc, grid, np.full(n_ch + 1, m), kind),
+                                             lc, lc_all, left_out), f"MODEL_{m:02d}")
+                hdu.header["MODEL"] = (spec.name, "systematics model")
+                yield hdu
+
+        write_fits_stream(models_path, model_hdus(), prov)
+        # what follows needs each light curve's top fit alone: the other models' curves go
+        grid = dataclasses.replace(
+            grid, fits=tuple(tuple(fit if m == grid.best[c] else None for c, fit in enumerate(row))
+                             for m, row in enumerate(grid.fits)),
+            white_fits=tuple(wf if m == grid.white_owner[grid.best[0]] else None
+                             for m, wf in enumerate(grid.white_fits)))
+        give_back()
+        det = with_reasons(_detrended_table(lc, grid, grid.best, kind), lc, lc_all, left_out)
         fits_path = folder / "detrended.fits"
         texp = (np.asarray(lc["exposure_time"], float) if "exposure_time" in lc.colnames
                 else np.full(t.size, np.nan))
@@ -196,23 +269,6 @@ class Detrend(VisitTask):
                                     "curves with residual rms above 5x expected")
         write_fits(fits_path, hdus, prov, header={"TIMESYS": "TDB", "TIMEREF": "SOLARSYSTEM",
                                                    **{k: (v, c) for k, v, c in facts[:4]}})
-        models_path = folder / "grid-models.fits"
-
-        def model_hdus():
-            # one model's table in memory at a time
-            for m, spec in enumerate(specs):
-                hdu = table_hdu(with_reasons(_detrended_table(lc, grid, np.full(n_ch + 1, m), kind),
-                                             lc, lc_all, left_out), f"MODEL_{m:02d}")
-                hdu.header["MODEL"] = (spec.name, "systematics model")
-                yield hdu
-
-        write_fits_stream(models_path, model_hdus(), prov)
-        # what follows needs each light curve's top fit alone: the other models' curves go
-        grid = dataclasses.replace(
-            grid, fits=tuple(tuple(fit if m == grid.best[c] else None for c, fit in enumerate(row))
-                             for m, row in enumerate(grid.fits)),
-            white_fits=tuple(wf if m == grid.white_owner[grid.best[0]] else None
-                             for m, wf in enumerate(grid.white_fits)))
         outputs = [fits_path, models_path]
         meta = ecsv_meta(visit, t, texp if np.any(np.isfinite(texp)) else [0.0], channels)
         meta["time_columns"] = {"time_bjd_tdb": meta["time_columns"]["time_bjd_tdb"]}
@@ -228,47 +284,17 @@ class Detrend(VisitTask):
             write_ecsv(folder / name, tab, prov)
             outputs.append(folder / name)
         del tab
-        from .figures import detrend_channels_figure, detrend_figure, grid_figure
-        wb = grid.fits[grid.best[0]][0]
-        used = ~np.asarray(wb.fit_mask, bool)
-        fig = folder / "detrend.png"
-        dim = (np.asarray(channels["dim"], bool) if "dim" in channels.colnames
-               else np.zeros(n_ch, bool))
-        # the event model as a line on a fine grid, at the white light's fitted shape
-        shape = {k: float(v) for k, v in
-                 grid.white_fits[grid.white_owner[grid.best[0]]].event.items()
-                 if k in ("t0", "a_rs", "inclination")}
-        t_fine = np.linspace(t.min(), t.max(), 3000)
-        tmpl, tmpl_fine = (_event_template(x, visit.event, **shape) for x in (t, t_fine))
-
-        def line(fit):
-            with np.errstate(all="ignore"):
-                return _event_line(fit.model / star_alone(fit, kind), tmpl, t_fine, tmpl_fine)
-
+        give_back()                     # the other models' curves, before the figures' canvases
         detrend_figure(fig, t, curves.white_flux, np.sqrt(curves.white_variance), wb.model,
                        star_alone(wb, kind), used, np.asarray(depths["wave_mid"][1:]),
                        depths["depth"][1:], depths["depth_error"][1:], visit.event["kind"],
                        lit=~dim, event_line=line(wb),
                        label=f"white band {depths['wave_lo'][0]:.3f}-{depths['wave_hi'][0]:.3f} um")
-        fig_channels = folder / "detrend-channels.png"
-        c_flux = np.asarray(lc["flux"], float)
-        c_err = np.asarray(lc["error"], float)
-        c_model, c_star = np.full(c_flux.shape, np.nan), np.full(c_flux.shape, np.nan)
-        c_used = np.zeros(c_flux.shape, bool)
-        lines = []
-        for j in range(n_ch):
-            fit = grid.fits[grid.best[1 + j]][1 + j] if grid.best[1 + j] >= 0 else None
-            lines.append(None if fit is None else line(fit))
-            if fit is not None:
-                c_model[:, j], c_star[:, j] = fit.model, star_alone(fit, kind)
-                c_used[:, j] = ~np.asarray(fit.fit_mask, bool)
-        detrend_channels_figure(fig_channels, t, c_flux, c_err, c_model, c_star, c_used,
-                                [channel_text(channels, j) for j in range(n_ch)], dim=dim,
-                                event_lines=lines)
         fig2 = folder / "grid.png"
         grid_figure(fig2, [s.name for s in specs], grid.weight, grid.depth, grid.error,
                     np.asarray(depths["wave_mid"][1:]), grid.value, grid.value_error,
                     visit.event["kind"], criterion=grid.criterion)
+        side.wait()
         w = depths[0]
         order = np.argsort(-grid.weight[:, 0])
         metrics = {"white depth (ppm)": round(float(w["depth"]) * 1e6, 1),

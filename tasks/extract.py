@@ -37,10 +37,12 @@ from lightledger.pipeline.trace import fit_trace, refine, scan_band
 from lightledger.pipeline.wavelength import (column_wavelengths, pixel_edges, reference_column,
                                              refine_solution)
 
+from .alongside import alongside
 from .applicability import not_applying, visit_facts
 from .base import ENTRY_NAME, VisitTask, chunk_ranges
 from .calibrate import Calibrate, read_chunk
 from .geometry import expected_source_rows
+from .heap import give_back
 from .products import table_hdu, write_fits
 from .references import load_throughput
 
@@ -265,6 +267,7 @@ class Extract(VisitTask):
         chunks = [self.stage_task(ExtractChunk, chunk=i) for i in range(self.chunk_count())]
         yield chunks
         started = time.time()     # run() starts again once the chunks are complete
+        give_back()               # the chunks' arrays (one worker: this process ran them)
         # the chunks' spectra are copied into the visit's arrays as they are read (float32, no
         # list of chunk copies to join): one copy of the visit's spectra in memory
         tables, profile, flux = [], None, None
@@ -311,21 +314,29 @@ class Extract(VisitTask):
         hdus[2].header["COMMENT"] = ("1 = the pixel's flux is unusable, 0 = usable (a boolean mask, "
                                      "not the frames' FLAGS bitfield)")
         inputs = [t.output().path for t in chunks] + [self.input().path]
-        write_fits(path, hdus, self.provenance(inputs))
         from .figures import extract_figure
         fig = self.folder / "extract.png"
-        _, refspec_rows, median_frame = read_reference(self.input().path)
-        ny, nx = median_frame.shape
-        first = exposures[0]
-        sky = expected_source_rows(self.config, nx, ny, (int(first["origin_x"]), int(first["origin_y"])),
-                                   float(first["scan_velocity"]), float(first["exposure_time"]))
         scanning = bool(header.get("SCANNING"))
-        extract_figure(fig, np.asarray(wave["wavelength"], float), np.where(mask > 0, np.nan, flux),
-                       exposures, profile, median_frame=median_frame,
-                       aperture=(int(header["APLO"]), int(header["APHI"])),
-                       band=(header["BANDLO"], header["BANDHI"]) if scanning else None,
-                       trace_rows=None if scanning else np.asarray(refspec_rows["trace_row"], float),
-                       sky_rows=sky, method=self.params["method"], profile_row=profile_row)
+
+        def draw():
+            _, refspec_rows, median_frame = read_reference(self.input().path)
+            ny, nx = median_frame.shape
+            first = exposures[0]
+            sky = expected_source_rows(self.config, nx, ny, (int(first["origin_x"]), int(first["origin_y"])),
+                                       float(first["scan_velocity"]), float(first["exposure_time"]))
+            return extract_figure(
+                fig, np.asarray(wave["wavelength"], float), np.where(mask > 0, np.nan, flux),
+                exposures, profile, median_frame=median_frame,
+                aperture=(int(header["APLO"]), int(header["APHI"])),
+                band=(header["BANDLO"], header["BANDHI"]) if scanning else None,
+                trace_rows=None if scanning else np.asarray(refspec_rows["trace_row"], float),
+                sky_rows=sky, method=self.params["method"], profile_row=profile_row)
+
+        # --workers N: the figure is drawn in a forked process while the spectra are written
+        side = alongside()
+        side.start(draw)
+        write_fits(path, hdus, self.provenance(inputs))
+        side.wait()
         metrics = {"method": self.params["method"],
                    "dx rms (pix)": float(np.nanstd(exposures["dx"])),
                    "dy rms (pix)": float(np.nanstd(exposures["dy"])),

@@ -9,7 +9,8 @@ For the white band (``detrend.png``) and for every channel
   model is drawn where there are no data;
 * the detrended light curve (divided by the systematics) with the event model
   as a line, likewise; for visits longer than :data:`figures.LONG_VISIT`
-  exposures, faint points with binned points on top;
+  exposures, faint points (every k-th beyond :data:`FAINT_POINTS`) with binned
+  points on top;
 * the residuals in ppm, with the band of one median error;
 * the rms of the residuals binned over N exposures against N, with the
   white-noise expectation sigma_1 / sqrt(N) sqrt(M / (M - 1)) for M bins
@@ -28,6 +29,10 @@ from .figurekit import LONG_VISIT, _figure, _hours, _limits, binned_points, plt
 from .products import save_figure
 
 __all__ = ["detrend_figure", "detrend_channels_figure", "segments"]
+
+#: Faint points drawn per panel at most (under the binned points); a visit of more
+#: exposures shows every k-th, which the eye cannot tell from all at this size.
+FAINT_POINTS = 3000
 
 
 def segments(time, used, gap_factor=3.0):
@@ -70,7 +75,8 @@ def _model_line(ax, t_hours, values, runs, colour, label):
 
 def _points(ax, t, y, e, colour, long_visit, label=None):
     if long_visit:
-        ax.plot(t, y, ".", ms=1.5, color=colour, alpha=0.35, label=label)
+        step = -(-len(t) // FAINT_POINTS)         # every k-th point of a very long visit
+        ax.plot(t[::step], y[::step], ".", ms=1.5, color=colour, alpha=0.35, label=label)
         tb, yb, eb = binned_points(t, y, 100)
         ax.errorbar(tb, yb, eb, fmt="o", ms=3, color="k", label="binned (100 bins)")
     else:

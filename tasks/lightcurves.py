@@ -29,8 +29,10 @@ from lightledger.pipeline.errors import ParameterError
 from lightledger.pipeline.lit import channel_light, lit_range
 from lightledger.pipeline.timing import interpolated_barycentric_times
 
+from .alongside import alongside
 from .applicability import not_applying, visit_facts
 from .base import ENTRY_NAME, VisitTask
+from .heap import give_back
 from .metadata import channel_text, ecsv_meta, fits_cards, set_time_keywords
 from .products import table_hdu, write_ecsv, write_fits
 
@@ -382,6 +384,7 @@ class Bin(VisitTask):
         started = time.time()
         visit, params = self.config, self.params
         spectra_path = self.requires().final_product()
+        give_back()                     # what the stages before let go of
         flux, var, mask, pix_edges, exp = read_spectra(spectra_path, dtype=np.float32)
         self.progress(0, 3, "binning")
         # the spectra stay as stored (float32); sums, medians and binning work in float64 on
@@ -408,6 +411,9 @@ class Bin(VisitTask):
         white_range = params["white_range"] or (edges[0], edges[-1])
         white = _bin_in_blocks(pix_edges, flux, var, mask, np.asarray(white_range, float), scale,
                                fill_spec, fill_var)
+        n_spectra = len(flux)
+        del flux, var, mask, good       # the visit's spectra are binned: let them go
+        give_back()
         self.progress(1, 3, "times and covariates")
 
         mid_mjd = np.asarray(exp["start_mjd_utc"], float) + np.asarray(exp["mid_offset"], float) / 86400
@@ -464,7 +470,7 @@ class Bin(VisitTask):
         spectrum["wave_lo"] = pix_edges[:-1]
         spectrum["wave_hi"] = pix_edges[1:]
         spectrum["flux"] = median_spec
-        spectrum["error"] = np.sqrt(median_var / max(len(flux), 1))
+        spectrum["error"] = np.sqrt(median_var / max(n_spectra, 1))
         for name, (unit, text) in SPECTRUM_COLUMNS.items():
             spectrum[name].unit = unit
             spectrum[name].description = text
@@ -472,6 +478,11 @@ class Bin(VisitTask):
         self.progress(2, 3, "writing light curves")
         prov = self.provenance([spectra_path])
         folder = self.folder
+        from .figures import bin_figure
+        fig = folder / "lightcurves.png"
+        # --workers N: the figure is drawn in a forked process while the tables are written
+        side = alongside()
+        side.start(bin_figure, fig, lc, channels, spectrum, (lit.lo, lit.hi))
         fits_path = folder / "lightcurves.fits"
         hdus = [table_hdu(lc_all, "LIGHTCURVES"), table_hdu(channels, "CHANNELS"),
                 table_hdu(spectrum, "SPECTRUM")]
@@ -499,9 +510,7 @@ class Bin(VisitTask):
                             ("spectrum.ecsv", spectrum)):
             write_ecsv(folder / name, table, prov)
             outputs.append(folder / name)
-        from .figures import bin_figure
-        fig = folder / "lightcurves.png"
-        bin_figure(fig, lc, channels, spectrum, (lit.lo, lit.hi))
+        side.wait()
         white_flux = lc["white_flux"][~lc["white_mask"]]
         metrics = {"channels": n_ch, "white band (um)": [float(white_range[0]), float(white_range[1])],
                    "exposures set aside (rows kept, flagged)": n_aside,

@@ -17,6 +17,7 @@ from .base import (ENTRY_NAME, PROGRESS, FolderTask, make_plan, read_entry, regi
                    remove_parts, settings_to_text, visit_config)
 from .check import check_visit, parse_settings
 from .fitpool import PROCESSES
+from .heap import give_back
 
 __all__ = ["RunResult", "reduce_visit", "stage_task", "sweep", "check_force", "exit_status",
            "others_running", "ran_tasks", "preload"]
@@ -166,6 +167,7 @@ def reduce_visit(visit_path, *, settings=(), workers=1, until=None, force=(), pr
     settings_text = settings_to_text(settings)
     visit = visit_config(visit_path, settings_text)
     plan = register_plan(make_plan(visit, settings_text, report.usable, inventory=report.refs))
+    give_back()      # the validation pass read every exposure: return its buffers before the stages
     run_id = uuid.uuid4().hex
     notebook = Path(visit.notebook)
     notebook.mkdir(parents=True, exist_ok=True)

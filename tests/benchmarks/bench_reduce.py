@@ -2,9 +2,10 @@
 
 Run on demand (pytest does not collect ``bench_*.py``)::
 
-    python tests/benchmarks/bench_reduce.py [--exposures N] [--workers 1 2]
+    python tests/benchmarks/bench_reduce.py [--scenario NAME] [--exposures N] [--workers 1 2]
 
-The script renders one scan visit, copies it once per run, and reduces each
+The script renders one visit (``scan-transit`` by default, e.g. ``--scenario
+stare-eclipse --exposures 1000`` for the stare of the scaling benchmark), copies it once per run, and reduces each
 copy with :func:`lightledger.tasks.run.reduce_visit` in a fresh Python
 process (so that one run's memory high-water mark does not leak into the
 next).  Worker counts alternate, ``--repeat`` runs each, and the run with the
@@ -45,11 +46,16 @@ def child(visit_path, workers, events_path):
 
     from lightledger.tasks.run import reduce_visit
 
+    def cpu_now():
+        me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+        return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
     def record(kind):
         def handler(task, *args):
             line = {"event": kind, "family": task.task_family,
                     "stage": getattr(task, "stage", None), "time": time.time(),
-                    "seconds": args[0] if args else None, "pid": os.getpid()}
+                    "seconds": args[0] if args else None, "pid": os.getpid(),
+                    "cpu": cpu_now(), "task": task.task_id}
             with open(events_path, "a") as fh:   # children of a forked worker append too
                 fh.write(json.dumps(line) + "\n")
         return handler
@@ -57,15 +63,21 @@ def child(visit_path, workers, events_path):
     luigi.Task.event_handler(luigi.Event.START)(record("start"))
     luigi.Task.event_handler(luigi.Event.PROCESSING_TIME)(record("done"))
 
-    t0 = time.perf_counter()
+    t0, c0, w0 = time.perf_counter(), cpu_now(), time.time()
     result = reduce_visit(visit_path, workers=workers)
     wall = time.perf_counter() - t0
+    cpu = cpu_now() - c0
+    w1 = time.time()
+    lines = [json.loads(s) for s in Path(events_path).read_text().splitlines() if s.strip()]
+    before = min(e["time"] for e in lines) - w0 if lines else float("nan")
+    after = w1 - max(e["time"] for e in lines) if lines else float("nan")
     entries = {}
     notebook = Path(visit_path).parent / "notebook"
     for entry in notebook.glob("*/entry.json"):
         doc = json.loads(entry.read_text())
         entries[doc["stage"]] = doc["seconds"]
     out = {"ok": result.ok, "messages": result.messages, "wall": wall, "entries": entries,
+           "cpu": cpu, "before": before, "after": after,
            "maxrss_self_kb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
            "maxrss_children_kb": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss}
     print(json.dumps(out))
@@ -80,8 +92,12 @@ def summarise(events_path):
         done = [e for e in lines if e["stage"] == stage and e["event"] == "done"]
         if not done:
             continue
+        begun = {e["task"]: e["cpu"] for e in lines
+                 if e["stage"] == stage and e["event"] == "start" and "task" in e}
         stats[stage] = {"tasks": sum(e["seconds"] for e in done), "n": len(done),
-                        "span": max(e["time"] for e in done) - min(starts)}
+                        "span": max(e["time"] for e in done) - min(starts),
+                        "cpu": sum(e["cpu"] - begun.get(e["task"], e["cpu"]) for e in done
+                                   if "task" in e)}
     return stats
 
 
@@ -100,14 +116,15 @@ def run_one(visit_path, workers, tmp, rep=0):
     return res
 
 
-def print_table(results, n_exposures, repeat):
+def print_table(results, n_exposures, repeat, scenario="scan-transit"):
     ws = list(results)
-    print(f"\nbench_reduce: scan-transit, {n_exposures} exposures, fastest of {repeat} runs per "
+    print(f"\nbench_reduce: {scenario}, {n_exposures} exposures, fastest of {repeat} runs per "
           f"worker count; seconds per stage "
           f"(entry = entry.json 'seconds', tasks = all of the stage's tasks summed, "
-          f"span = wall time of the stage)")
+          f"span = wall time of the stage, cpu = processor time of its tasks and of the "
+          f"processes they started)")
     head = f"{'stage':<11}" + "".join(f"{f'{w}w entry':>10}{f'{w}w tasks':>10}{f'{w}w span':>10}"
-                                      for w in ws)
+                                      f"{f'{w}w cpu':>10}" for w in ws)
     print(head)
     print("-" * len(head))
     for stage in STAGES:
@@ -117,12 +134,19 @@ def print_table(results, n_exposures, repeat):
             st = r["stages"].get(stage, {})
             row += f"{r['entries'].get(stage, float('nan')):>10.2f}"
             row += f"{st.get('tasks', float('nan')):>10.2f}{st.get('span', float('nan')):>10.2f}"
+            row += f"{st.get('cpu', float('nan')):>10.2f}"
         print(row)
+    for label, key in (("before", "before"), ("after", "after")):
+        print(f"{label:<11}" + "".join(f"{'':>20}{results[w].get(key, float('nan')):>10.2f}{'':>10}"
+                                       for w in ws))
     print("-" * len(head))
     print(f"{'total':<11}" + "".join(
         f"{sum(results[w]['entries'].values()):>10.2f}"
         f"{sum(s['tasks'] for s in results[w]['stages'].values()):>10.2f}"
-        f"{results[w]['wall']:>10.2f}" for w in ws) + "   (total span = reduce_visit wall time)")
+        f"{results[w]['wall']:>10.2f}{results[w].get('cpu', float('nan')):>10.2f}" for w in ws)
+          + "   (total span = reduce_visit wall time; before/after = its time before the first "
+          "task started and after the last ended: validation pass, plan, imports, notebook page; "
+          "total cpu = the reducing process and its reaped children)")
     print(f"\n{'':<26}" + "".join(f"{f'{w} worker(s)':>14}" for w in ws))
     print(f"{'Luigi tasks run':<26}" + "".join(
         f"{sum(s['n'] for s in results[w]['stages'].values()):>14d}" for w in ws))
@@ -138,7 +162,9 @@ def print_table(results, n_exposures, repeat):
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--exposures", type=int, default=48, help="exposures of the scan visit")
+    ap.add_argument("--scenario", default="scan-transit",
+                    help="scenario to render (scan-transit, stare-eclipse, ...)")
+    ap.add_argument("--exposures", type=int, default=48, help="exposures of the visit")
     ap.add_argument("--workers", type=int, nargs="+", default=[1, 2], help="worker counts to compare")
     ap.add_argument("--repeat", type=int, default=2,
                     help="reductions per worker count, alternating; the fastest is shown")
@@ -153,8 +179,9 @@ def main(argv=None):
 
     with tempfile.TemporaryDirectory(prefix="lightledger-bench-") as tmp:
         t0 = time.perf_counter()
-        base = render("scan-transit", Path(tmp) / "visit", seed=0, n_exposures=args.exposures)
-        print(f"rendered {args.exposures} scan exposures in {time.perf_counter() - t0:.1f} s")
+        base = render(args.scenario, Path(tmp) / "visit", seed=0, n_exposures=args.exposures)
+        print(f"rendered {args.exposures} exposures of {args.scenario} in "
+              f"{time.perf_counter() - t0:.1f} s")
         results = {}
         for rep in range(args.repeat):
             for w in args.workers:          # worker counts alternate: load elsewhere hits both
@@ -163,7 +190,7 @@ def main(argv=None):
                 res = run_one(folder / base.name, w, tmp, rep)
                 if w not in results or res["wall"] < results[w]["wall"]:
                     results[w] = res
-        print_table(results, args.exposures, args.repeat)
+        print_table(results, args.exposures, args.repeat, args.scenario)
     return 0
 
 
