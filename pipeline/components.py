@@ -137,6 +137,27 @@ class TrapRamp:
     in a visit whose first orbit is left out the fast population has emptied
     during the gaps anyway.
 
+    A band whose pixels receive different rates (a spectrum's columns) traps
+    at each pixel's own rate, and the sum of such ramps is not the ramp of
+    one mean rate: the fill constant :math:`c = \\kappa f + 1/\\tau` differs
+    from pixel to pixel.  When the inputs hold the band's parts
+    (covariates ``trap_rate.G`` and ``trap_share.G`` for G = 0, 1, ...: the
+    rate per pixel of each part, e.g. each spectral channel, and its share of
+    the band's electrons), the columns are the shares' sum of each part's
+    columns at its own rate, with the detector's constants
+    :math:`\\kappa_p, \\tau_p` and efficiencies shared by every part:
+
+    .. math:: 1 - \\sum_p \\eta_p \\sum_g w_g(t)\\, G_p(f_g; \\kappa_p, \\tau_p),
+
+    so that a channel fitted at the white light's shapes with its own rate
+    is the same detector model.  Without them ``trap_rate`` is the one rate.
+
+    The shape parameters are refined between their grid values (the grids
+    are coarse, a factor of about 2 per value, and a fit held at a grid
+    value loses chi-square that an information criterion then counts
+    against the model), and :meth:`limits` keeps their grids' extensions
+    to what the exposures can tell apart.
+
     Parameters
     ----------
     reference_rate : float
@@ -166,6 +187,7 @@ class TrapRamp:
     fill_grids: tuple = DEFAULT_FILL_GRIDS
     release_grids: tuple = DEFAULT_RELEASE_GRIDS
     label: str = "trap"
+    refine: bool = True
 
     def __post_init__(self):
         if not (np.isfinite(self.reference_rate) and self.reference_rate > 0):
@@ -180,10 +202,50 @@ class TrapRamp:
     def shapes(self):
         out = []
         for p in range(self.populations):
-            out.append(ShapeParam(f"fill{p}", _positive_grid(self.fill_grids[p], f"fill{p} grid")))
+            out.append(ShapeParam(f"fill{p}", _positive_grid(self.fill_grids[p], f"fill{p} grid"),
+                                  refine=self.refine))
             out.append(ShapeParam(f"release{p}",
-                                  _positive_grid(self.release_grids[p], f"release{p} grid")))
+                                  _positive_grid(self.release_grids[p], f"release{p} grid"),
+                                  refine=self.refine))
         return tuple(out)
+
+    def limits(self, inputs, mask=None):
+        """The range of each shape parameter the exposures can tell apart, seconds.
+
+        A population that fills within one exposure loses the same charge
+        in every orbit's first exposure whatever its fill time, and one that
+        fills over longer than the visit is a straight trend: fill times
+        from the shortest exposure to the visit's span.  One that empties
+        between two exposures loses the same share of every exposure, and
+        one that never empties during the visit is a population that never
+        empties: release times from the shortest interval between exposure
+        starts to ten times the span.
+
+        Returns
+        -------
+        dict
+            ``{"LABEL.fillP": (shortest, longest), "LABEL.releaseP": ...}``
+            for :func:`~lightledger.pipeline.shapesearch.search_shapes`;
+            empty without the exposure times and starts.
+        """
+        start = inputs.covariates.get("exposure_start")
+        texp = inputs.covariates.get("exposure_time")
+        if start is None or texp is None:
+            return {}
+        keep = np.isfinite(start) & np.isfinite(texp) & (texp > 0)
+        if mask is not None:
+            keep &= ~np.asarray(mask, bool)
+        if np.count_nonzero(keep) < 2:
+            return {}
+        t, x = np.asarray(start, float)[keep], np.asarray(texp, float)[keep]
+        span = float(t.max() + x[np.argmax(t)] - t.min())
+        step = np.diff(np.sort(t))
+        step = float(step[step > 0].min()) if np.any(step > 0) else float(x.min())
+        out = {}
+        for p in range(self.populations):
+            out[f"{self.label}.fill{p}"] = (float(x.min()), span)
+            out[f"{self.label}.release{p}"] = (step, 10.0 * span)
+        return out
 
     def block(self, inputs, shape):
         start = inputs.need("exposure_start", self.label)
@@ -197,15 +259,45 @@ class TrapRamp:
         order = np.argsort(start, kind="stable")
         if np.any(order != np.arange(order.size)):
             raise ParameterError(f"{self.label}: exposure_start must be in time order")
-        basis = trap_ramp_basis(rate, start, texp, kappa, release, orbit=orbit)
+        rates, shares = _band_parts(inputs, rate, self.label)
+        basis = trap_ramp_basis(rates, start, texp, kappa, release, orbit=orbit)
         eta = 3 * np.arange(P)                 # the efficiency columns of each population
-        cols = basis.columns[:, 0, eta]
+        w = shares[:, :, None]                 # (n_exposures, n_parts, 1)
+        cols = np.sum(basis.columns[:, :, eta] * w, axis=1)
         names = tuple(f"{self.label}{p}" for p in range(P))
         derivs = []
         for p in range(P):
-            derivs.append(-basis.derivatives[2 * p][:, 0, eta])      # d / d ln(fill)
-            derivs.append(basis.derivatives[2 * p + 1][:, 0, eta])   # d / d ln(release)
+            derivs.append(-np.sum(basis.derivatives[2 * p][:, :, eta] * w, axis=1))    # d / d ln(fill)
+            derivs.append(np.sum(basis.derivatives[2 * p + 1][:, :, eta] * w, axis=1))  # d / d ln(release)
         return Block(cols, names, tuple(derivs))
+
+
+def _band_parts(inputs, rate, label):
+    """Rates per pixel (n_exposures, n_parts) and shares of the band's parts, or the one rate.
+
+    The parts are the covariates ``trap_rate.0``, ``trap_rate.1``, ... with
+    ``trap_share.0``, ... (shares normalised to sum to 1 at each exposure).
+    """
+    cov = inputs.covariates
+    n_parts = 0
+    while f"trap_rate.{n_parts}" in cov:
+        n_parts += 1
+    if n_parts == 0:
+        r = np.asarray(rate, float)
+        return r[:, None], np.ones((r.size, 1))
+    rates = np.stack([np.asarray(cov[f"trap_rate.{g}"], float) for g in range(n_parts)], axis=1)
+    try:
+        shares = np.stack([np.asarray(cov[f"trap_share.{g}"], float) for g in range(n_parts)],
+                          axis=1)
+    except KeyError:
+        raise ParameterError(f"{label}: each trap_rate.G needs its trap_share.G (the part's "
+                             f"share of the band's electrons)") from None
+    if not (np.all(np.isfinite(shares)) and np.all(shares >= 0)):
+        raise ParameterError(f"{label}: trap_share.G must be finite shares >= 0")
+    total = shares.sum(axis=1, keepdims=True)
+    if np.any(total <= 0):
+        raise ParameterError(f"{label}: the trap_share.G of an exposure sum to 0")
+    return rates, shares / total
 
 
 @dataclass(frozen=True)

@@ -102,6 +102,10 @@ def fit_light_curve(inputs, flux, variance, template, model, *, mask=None, **eve
 
     params = model.shape_params()
     limits = ramp_limits(inputs, model, mask, (OrbitRamp,))
+    for comp in model.components:
+        if hasattr(comp, "limits"):          # the charge-trapping ramp's time scales
+            own = comp.limits(inputs, mask)
+            limits.update(own)
     search = search_shapes(evaluate, params, limits=limits)
     result = search.result
     if not params:

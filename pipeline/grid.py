@@ -78,6 +78,12 @@ class Curves:
         Fraction of each channel's flux inside the white band (default 1:
         the white light holds every channel); used for the variance of a
         channel divided by the white light (:mod:`.commonmode`).
+    white_parts : (ndarray, ndarray), optional
+        The white band's parts for charge trapping: their incident rates per
+        pixel, shape (n_exposures, n_parts), and their shares of the white
+        light's electrons, shape (n_parts,); the white light's trapping ramp
+        is then the sum of the parts' ramps, each at its own rate
+        (:class:`~lightledger.pipeline.components.TrapRamp`).
     """
 
     inputs: object
@@ -90,6 +96,7 @@ class Curves:
     white_rate: object = None
     rate: object = None
     white_share: object = None
+    white_parts: object = None
 
     @property
     def n_channels(self):
@@ -105,8 +112,14 @@ class Curves:
     def white_inputs(self):
         if self.white_rate is None:
             return self.inputs
-        return replace(self.inputs, covariates={**self.inputs.covariates,
-                                                "trap_rate": np.asarray(self.white_rate)})
+        cov = {**self.inputs.covariates, "trap_rate": np.asarray(self.white_rate)}
+        if self.white_parts is not None:
+            rates, shares = self.white_parts
+            rates = np.asarray(rates, float)
+            for g in range(rates.shape[1]):
+                cov[f"trap_rate.{g}"] = rates[:, g]
+                cov[f"trap_share.{g}"] = np.full(rates.shape[0], float(np.asarray(shares)[g]))
+        return replace(self.inputs, covariates=cov)
 
 
 @dataclass(frozen=True)

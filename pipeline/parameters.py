@@ -319,7 +319,7 @@ STAGES = {
               "sinusoids) hidden by the eclipse, depth at mid-eclipse; 'systematic' = independent "
               "sinusoids multiplying the systematics", choices=("planet", "systematic")),
     ) + _PHASE_CURVE),
-    "joint": StageSpec("joint", "5", "the visits of a programme fitted together: each its own "
+    "joint": StageSpec("joint", "6", "the visits of a programme fitted together: each its own "
                        "systematics, one planet per channel, over a grid of systematics models",
                        (Param("models", (), "strs",
                               "systematics models of the joint fit's grid, each fitted to every "

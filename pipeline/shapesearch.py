@@ -23,14 +23,14 @@ Pure functions; the fit is a callable, so the single-visit fit and the joint
 programme fit share this search.
 """
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy.optimize import minimize_scalar
+from scipy.optimize import minimize, minimize_scalar
 
 from .errors import ParameterError
 
-__all__ = ["ShapeSearch", "ramp_limits", "search_shapes"]
+__all__ = ["ShapeSearch", "ramp_limits", "search_shapes", "within_limits"]
 
 
 @dataclass(frozen=True)
@@ -69,7 +69,8 @@ def _beyond(grid, lower, log):
     return float(a * (a / b)) if log else float(a + (a - b))
 
 
-def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None):
+def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None,
+                  max_evaluations=150):
     """Profile a fit over shape parameters.
 
     Parameters
@@ -87,6 +88,10 @@ def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None):
     limits : dict of str to (float, float), optional
         Qualified name to the (lowest, highest) value a grid may be extended
         to; a parameter without limits is extended freely.
+    max_evaluations : int, optional
+        Fits at most of the joint refinement, when more than one parameter is
+        refined: after each is refined alone, a simplex (Nelder-Mead) moves
+        them together within the span of their grids.
 
     Returns
     -------
@@ -96,10 +101,12 @@ def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None):
     Notes
     -----
     Cost: one fit per grid value of each parameter per cycle, plus one per
-    value added past an end, plus about 20 per refined parameter.  A coordinate-wise search finds the joint minimum
-    when the parameters are weakly coupled (different components); strongly
-    coupled parameters of one component are better searched on a joint grid
-    by the component itself.
+    value added past an end, plus about 20 for a refined parameter (up to
+    ``max_evaluations`` for several, refined together by a simplex).  A
+    coordinate-wise search finds the joint minimum when the parameters are
+    weakly coupled (different components); strongly coupled parameters of
+    one component (a trap population's fill and release times) need the
+    joint refinement.
     """
     params = tuple(params)
     grids = {}
@@ -156,10 +163,11 @@ def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None):
             best_idx[name] = i
         if not moved:
             break
+    refined = [(n, sp) for n, sp in params if sp.refine and grids[n].size > 1]
     for name, sp in params:
         grid = grids[name]
-        if not (sp.refine and grid.size > 1):
-            continue
+        if not (sp.refine and grid.size > 1) or len(refined) > 1:
+            continue                     # several refined parameters: refined together below
         i = best_idx[name]
         lo, hi = grid[max(i - 1, 0)], grid[min(i + 1, grid.size - 1)]
         fwd, back = (np.log, np.exp) if sp.log else ((lambda x: x), (lambda x: x))
@@ -175,11 +183,53 @@ def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None):
         trial[name] = float(back(opt.x))
         if run(trial).chi2 < run(values).chi2:
             values = trial
+    if len(refined) > 1:
+        values = _refine_jointly(run, values, refined, grids, max_evaluations)
     from_data = any(grids[n].size > 1 or sp.refine for n, sp in params)
     at_edge = tuple(n for n, _ in params
                     if grids[n].size > 1 and values[n] in (float(grids[n][0]), float(grids[n][-1])))
     extended = tuple(n for n, _ in params if added[n])
     return ShapeSearch(values, run(values), from_data, count[0], at_edge, extended)
+
+
+def _refine_jointly(run, values, refined, grids, max_evaluations):
+    """Minimise chi-square over the refined parameters together (simplex), within their grids.
+
+    Parameters refined one at a time stop where the others hold them; two
+    time scales of one component (a trap population's fill and release
+    times) trade against each other, and only a joint step follows the
+    valley between them.  The simplex starts at ``values`` (the best grid
+    point) with steps of a third of each grid's spacing, never leaves the
+    span of each (extended) grid, stops when its points agree within 0.001
+    in chi-square and in the parameters (0.1 % for a logarithmic one), and
+    its result is kept only when it lowers chi-square.
+    """
+    names = [n for n, _ in refined]
+    logs = [sp.log for _, sp in refined]
+    fwd = [np.log if lg else (lambda x: x) for lg in logs]
+    back = [np.exp if lg else (lambda x: x) for lg in logs]
+    lo = np.array([f(grids[n][0]) for f, n in zip(fwd, names)])
+    hi = np.array([f(grids[n][-1]) for f, n in zip(fwd, names)])
+    x0 = np.array([f(values[n]) for f, n in zip(fwd, names)])
+    step = (hi - lo) / np.maximum([grids[n].size - 1 for n in names], 1) / 3.0
+
+    def chi(x):
+        if np.any(x < lo) or np.any(x > hi):
+            return np.inf
+        trial = dict(values)
+        trial.update({n: float(b(v)) for n, b, v in zip(names, back, x)})
+        c = run(trial).chi2
+        return c if np.isfinite(c) else np.inf
+
+    simplex = np.vstack([x0] + [x0 + np.eye(len(names))[k] * step[k] for k in range(len(names))])
+    opt = minimize(chi, x0, method="Nelder-Mead",
+                   options={"initial_simplex": simplex, "xatol": 1e-3, "fatol": 1e-3,
+                            "maxfev": int(max_evaluations)})
+    if np.isfinite(opt.fun) and opt.fun < chi(x0):
+        out = dict(values)
+        out.update({n: float(b(v)) for n, b, v in zip(names, back, opt.x)})
+        return out
+    return values
 
 
 def ramp_limits(inputs, model, mask, ramp_types):
@@ -214,3 +264,32 @@ def ramp_limits(inputs, model, mask, ramp_types):
         return {}
     span = (float(t[keep].min()), float(t[keep].max()))
     return {f"{c.label}.tau": span for c in model.components if isinstance(c, ramp_types)}
+
+
+def within_limits(params, limits):
+    """Shape parameters with their grids cut to ``limits`` (values outside are not tried).
+
+    A grid with no value inside its limits keeps its median clipped to them,
+    so that every parameter still has a value.
+
+    Parameters
+    ----------
+    params : sequence of (str, ShapeParam)
+    limits : dict of str to (float, float)
+        Qualified name to (lowest, highest); parameters not named are unchanged.
+
+    Returns
+    -------
+    tuple of (str, ShapeParam)
+    """
+    out = []
+    for name, sp in params:
+        if name in limits:
+            lo, hi = limits[name]
+            g = np.asarray(sp.grid, dtype=float)
+            inside = g[(g >= lo) & (g <= hi)]
+            if inside.size == 0:
+                inside = np.array([np.clip(np.median(g), lo, hi)])
+            sp = replace(sp, grid=tuple(float(x) for x in inside))
+        out.append((name, sp))
+    return tuple(out)

@@ -30,7 +30,7 @@ from scipy.optimize import minimize, minimize_scalar
 from .errors import ParameterError
 from .eventfit import fit_event, with_shapes
 from .fiterrors import linearise_fit
-from .components import TiedOrbitRamp
+from .components import TiedOrbitRamp, TrapRamp
 from .shapesearch import ramp_limits, search_shapes
 from .systematics import OrbitRamp
 from .transit import eclipse_flux, transit_flux
@@ -216,6 +216,10 @@ def fit_white(inputs, flux, variance, model, event, *, free=("t0",), mask=None, 
 
     shapes, chi_prev = {}, np.inf
     limits = ramp_limits(inputs, model, mask, (OrbitRamp, TiedOrbitRamp))
+    for comp in model.components:
+        if isinstance(comp, TrapRamp):           # trap time scales: not tried outside them
+            own = comp.limits(inputs, mask)
+            limits.update(own)
     for _cycle in range(max(int(max_cycles), 1)):
         search = search_shapes(lambda values: fit(current, values), params, limits=limits)
         shapes = search.values

@@ -10,6 +10,8 @@ the a priori event shape (:func:`event_template`).  Used by the detrend task
 (:mod:`.detrend`) and the phase-curve fits (:mod:`.phasecurve`).
 """
 
+import warnings
+
 import numpy as np
 
 from lightledger.pipeline.detrend import tied_phase_curve
@@ -21,7 +23,7 @@ from lightledger.pipeline.modelspec import (DEFAULT_PHASE_SCAN_GRID, DEFAULT_PHA
 from lightledger.pipeline.systematics import PhaseSinusoids, SystematicsInputs, SystematicsModel
 from lightledger.pipeline.whitelight import event_template as _event_template
 
-__all__ = ["event_template", "grid_setup", "white_share", "left_out_rows", "phase_grid_models", "SINGLE_MODEL",
+__all__ = ["event_template", "grid_setup", "white_share", "white_parts", "left_out_rows", "phase_grid_models", "SINGLE_MODEL",
            "systematics_setup", "channel_exclusions"]
 
 
@@ -106,11 +108,12 @@ def grid_setup(lc, channels, event, params):
     E = np.asarray(lc["error"], float)
     white_rate = _median_rate(wf[:, None], np.array([pixels.sum()]), texp, relative)[:, 0]
     rate = _median_rate(F, pixels, texp, relative)
+    share = white_share(channels)
     curves = Curves(inputs, wf, we ** 2, bad | np.asarray(lc["white_mask"], bool), F, E ** 2,
                     np.asarray(lc["mask"], bool) | bad[:, None],
                     white_rate=white_rate if np.all(np.isfinite(white_rate)) else None,
                     rate=rate if np.all(np.isfinite(rate)) else None,
-                    white_share=white_share(channels))
+                    white_share=share, white_parts=white_parts(F, rate, share))
     ref = float(np.nanmedian(white_rate)) if np.any(np.isfinite(white_rate)) else None
     ld = None
     if params["limb_darkening"] == "table" and channels is not None:
@@ -126,6 +129,31 @@ def grid_setup(lc, channels, event, params):
                    ld_prior=params["limb_darkening_prior"]
                    if params["limb_darkening"] == "fit" else None)
     return specs, curves, options, stare
+
+
+def white_parts(flux, rate, share=None):
+    """The white band's parts for its charge-trapping ramp: the channels' rates and shares.
+
+    Each channel's pixels trap at the channel's own rate; its share of the
+    white light's electrons is its median flux times the fraction of it
+    inside the white band.  Channels without a finite rate or flux are left
+    out.  None when fewer than two channels remain (the white light's one
+    rate is then used).
+
+    Returns
+    -------
+    (ndarray, ndarray) or None
+        Rates per pixel (n_exposures, n_parts) and shares (n_parts,).
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)      # a channel with no finite flux
+        level = np.nanmedian(np.asarray(flux, float), axis=0)
+    rate = np.asarray(rate, float)
+    w = level * (1.0 if share is None else np.asarray(share, float))
+    keep = np.isfinite(w) & (w > 0) & np.all(np.isfinite(rate), axis=0) & np.all(rate > 0, axis=0)
+    if np.count_nonzero(keep) < 2:
+        return None
+    return rate[:, keep], w[keep] / w[keep].sum()
 
 
 def white_share(channels):
