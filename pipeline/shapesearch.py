@@ -23,14 +23,14 @@ Pure functions; the fit is a callable, so the single-visit fit and the joint
 programme fit share this search.
 """
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 import numpy as np
 from scipy.optimize import minimize, minimize_scalar
 
 from .errors import ParameterError
 
-__all__ = ["ShapeSearch", "ramp_limits", "search_shapes", "within_limits"]
+__all__ = ["ShapeSearch", "ramp_limits", "search_shapes"]
 
 
 @dataclass(frozen=True)
@@ -70,7 +70,7 @@ def _beyond(grid, lower, log):
 
 
 def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None,
-                  max_evaluations=150):
+                  max_evaluations=200):
     """Profile a fit over shape parameters.
 
     Parameters
@@ -166,8 +166,8 @@ def search_shapes(evaluate, params, *, max_cycles=3, max_extend=4, limits=None,
     refined = [(n, sp) for n, sp in params if sp.refine and grids[n].size > 1]
     for name, sp in params:
         grid = grids[name]
-        if not (sp.refine and grid.size > 1) or len(refined) > 1:
-            continue                     # several refined parameters: refined together below
+        if not (sp.refine and grid.size > 1):
+            continue
         i = best_idx[name]
         lo, hi = grid[max(i - 1, 0)], grid[min(i + 1, grid.size - 1)]
         fwd, back = (np.log, np.exp) if sp.log else ((lambda x: x), (lambda x: x))
@@ -198,8 +198,8 @@ def _refine_jointly(run, values, refined, grids, max_evaluations):
     Parameters refined one at a time stop where the others hold them; two
     time scales of one component (a trap population's fill and release
     times) trade against each other, and only a joint step follows the
-    valley between them.  The simplex starts at ``values`` (the best grid
-    point) with steps of a third of each grid's spacing, never leaves the
+    valley between them.  The simplex starts at ``values`` (each refined
+    alone) with steps of a third of each grid's spacing, never leaves the
     span of each (extended) grid, stops when its points agree within 0.001
     in chi-square and in the parameters (0.1 % for a logarithmic one), and
     its result is kept only when it lowers chi-square.
@@ -265,31 +265,3 @@ def ramp_limits(inputs, model, mask, ramp_types):
     span = (float(t[keep].min()), float(t[keep].max()))
     return {f"{c.label}.tau": span for c in model.components if isinstance(c, ramp_types)}
 
-
-def within_limits(params, limits):
-    """Shape parameters with their grids cut to ``limits`` (values outside are not tried).
-
-    A grid with no value inside its limits keeps its median clipped to them,
-    so that every parameter still has a value.
-
-    Parameters
-    ----------
-    params : sequence of (str, ShapeParam)
-    limits : dict of str to (float, float)
-        Qualified name to (lowest, highest); parameters not named are unchanged.
-
-    Returns
-    -------
-    tuple of (str, ShapeParam)
-    """
-    out = []
-    for name, sp in params:
-        if name in limits:
-            lo, hi = limits[name]
-            g = np.asarray(sp.grid, dtype=float)
-            inside = g[(g >= lo) & (g <= hi)]
-            if inside.size == 0:
-                inside = np.array([np.clip(np.median(g), lo, hi)])
-            sp = replace(sp, grid=tuple(float(x) for x in inside))
-        out.append((name, sp))
-    return tuple(out)

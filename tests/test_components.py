@@ -224,3 +224,40 @@ def test_band_of_pixels_trapping_at_their_own_rates_is_recovered():
     assert np.all(np.abs(pulls[1:]) < 0.5), np.round(pulls, 3)
     one = fit_grid(specs, Curves(**kw), event, free=(), n_shifts=0, reference_rate=300.0)
     assert one.chi2[0, 0] > 0.3, one.chi2[0, 0]
+
+
+def test_trap_limits_and_band_parts_validation():
+    # The time scales the exposures can tell apart (see TrapRamp.limits): fill times from
+    # the shortest exposure to the visit's span, release times from the shortest interval
+    # between exposure starts (3.5 min here) to ten spans; masked exposures do not count.
+    inputs = _inputs()
+    start = inputs.covariates["exposure_start"]
+    comp = TrapRamp(reference_rate=300.0, populations=2)
+    span = start[-1] + TEXP - start[0]
+    lim = comp.limits(inputs)
+    assert lim["trap.fill1"] == pytest.approx((TEXP, span))
+    assert lim["trap.release0"] == pytest.approx((210.0, 10 * span))
+    late = inputs.orbit >= 2
+    assert comp.limits(inputs, mask=late)["trap.fill0"][1] < span / 2
+    # the band's parts need their shares
+    cov = dict(inputs.covariates, **{"trap_rate.0": np.full(inputs.n, 200.0),
+                                     "trap_rate.1": np.full(inputs.n, 400.0),
+                                     "trap_share.0": np.full(inputs.n, 0.5)})
+    bad = SystematicsInputs(inputs.time, orbit=inputs.orbit, orbit_time=inputs.orbit_time,
+                            covariates=cov)
+    with pytest.raises(ParameterError, match="trap_share"):
+        comp.block(bad, {"fill0": 100.0, "release0": 500.0, "fill1": 500.0, "release1": 1e4})
+
+
+def test_white_parts_from_the_channels():
+    # The white band's parts: the channels' rates and their shares of the white light's
+    # electrons (median flux times the fraction inside the white band); a channel with no
+    # finite flux is left out, and fewer than two parts leave the one rate.
+    from lightledger.tasks.detrendsetup import white_parts
+
+    flux = np.array([[100.0, 300.0, np.nan]] * 5)
+    rate = np.array([[10.0, 30.0, np.nan]] * 5)
+    rates, shares = white_parts(flux, rate, np.array([1.0, 0.5, 1.0]))
+    np.testing.assert_allclose(shares, [100 / 250, 150 / 250])
+    np.testing.assert_allclose(rates, rate[:, :2])
+    assert white_parts(flux[:, :1], rate[:, :1]) is None
