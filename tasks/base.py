@@ -38,7 +38,6 @@ visit's settings and chunks (:mod:`.runplan`), entries and made-records
 """
 
 import getpass
-import os
 import socket
 import time
 from datetime import datetime, timezone
@@ -236,25 +235,6 @@ class VisitTask(FolderTask, luigi.Task):
     def forced(self):
         return bool(self.force_from) and \
             STAGE_ORDER.index(self.stage) >= STAGE_ORDER.index(self.force_from)
-
-    def complete(self):
-        """One file test (two for a forced stage; an entry is also parsed)."""
-        path = Path(self.output().path)
-        try:
-            st = os.stat(path)
-        except FileNotFoundError:
-            return False
-        entry = self.folder / ENTRY_NAME
-        if self.forced:
-            try:
-                est = st if path == entry else os.stat(entry)
-            except FileNotFoundError:
-                est = None          # the folder is being made anew
-            if est is not None and est.st_mtime < self.force_after:
-                return False
-        if path.name == ENTRY_NAME:
-            return read_entry(path, self.stage) is not None
-        return True
 
     # -- progress, failure, entry -------------------------------------------------
     def progress(self, done, total, what, *, part=None):

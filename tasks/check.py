@@ -23,21 +23,21 @@ time) to find exposures whose pixels are all non-finite or all saturated;
 ``read_data=False`` skips that for a headers-only look.
 """
 
-import math
 import os
-import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-
-from lightledger.pipeline.errors import InputFileError, LightledgerError, ParameterError
+from lightledger.pipeline.errors import LightledgerError, ParameterError
 from lightledger.pipeline.parameters import STAGE_ORDER
-from lightledger.pipeline.rawreads import summarize_exposures
 
+from .checkreads import (_SCAN_BLOCK_BYTES, _read_block, _scan_blocks,  # noqa: F401
+                         _scan_reads, clip_level)
+from .checkstages import (_check_channels, _check_excluded_channels,  # noqa: F401
+                          _dispersion_range, event_coverage)
 from .config import load_visit
+from .exclusions import apply_exclusions
 from .problems import Problems
-from .rawio import read_exposure, read_exposures, report_set_aside, set_aside, survey, usable
+from .rawio import report_set_aside, survey, usable
 from .references import check_references, load_throughput
 
 __all__ = ["CheckReport", "check_visit", "apply_exclusions", "clip_level", "event_coverage",
@@ -94,193 +94,6 @@ class CheckReport:
         n, aside = len(self.refs), len(self.set_aside)
         return (f"{n} exposures, {n - aside} to reduce, {aside} set aside"
                 if self.refs else "no exposures")
-
-
-def clip_level(ref, bias, saturation):
-    """ADU above which a repeated top value counts as clipped (None: any value).
-
-    Floating-point storage: any exact repeat of a pixel's top is a clip.
-    Integer storage, where small values repeat by chance: only tops above
-    half the saturation level (ADU above bias).
-    """
-    return None if ref.bitpix < 0 else np.asarray(bias, float) + 0.5 * float(saturation)
-
-
-def apply_exclusions(refs, exclude, raw_dir, visit_path, problems):
-    """Set aside the exposures the observer excludes by hand; errors for names that match nothing."""
-    out = list(refs)
-    names = {Path(r.file).name for r in refs}
-    for k, (name, reason) in enumerate(exclude.get("files", ())):
-        if name not in names:
-            problems.error(visit_path, f"exclude.files[{k}] names {name!r}, which is not a "
-                                       f"*.fits file of {raw_dir}")
-            continue
-        why = f"excluded by the visit description (exclude.files){': ' + reason if reason else ''}"
-        out = [set_aside(r, why) if Path(r.file).name == name else r for r in out]
-    n_numbered = sum(1 for r in refs if math.isfinite(r.start_mjd))
-    for k, (first, last, reason) in enumerate(exclude.get("exposures", ())):
-        if last >= n_numbered:
-            problems.error(visit_path, f"exclude.exposures[{k}] names exposure {last}; the visit's "
-                                       f"exposures are numbered 0 to {n_numbered - 1}")
-            continue
-        why = f"excluded by the visit description (exclude.exposures){': ' + reason if reason else ''}"
-        out = [set_aside(r, why) if first <= r.exposure <= last and math.isfinite(r.start_mjd)
-               else r for r in out]
-    for k, (lo, hi, reason) in enumerate(exclude.get("times", ())):
-        why = f"excluded by the visit description (exclude.times){': ' + reason if reason else ''}"
-        hit = 0
-        for i, r in enumerate(out):
-            if not math.isfinite(r.start_mjd):
-                continue
-            end = r.start_mjd + (r.read_times[-1] if r.read_times else 0.0) / 86400.0
-            if r.start_mjd <= hi and end >= lo:
-                hit += 1
-                out[i] = set_aside(r, why)
-        if not hit:
-            problems.warning(visit_path, f"exclude.times[{k}] covers no exposure of the visit")
-    return out
-
-
-def _dispersion_range(visit, shape, origin, problems):
-    """Pixel-edge wavelengths (um) of the subarray, or None after an error."""
-    from lightledger.pipeline.wavelength import column_wavelengths, reference_column
-
-    profile = visit.profile
-    if profile.dispersion is None or profile.column_offset is None \
-            or visit.target.get("source_x") is None:
-        return None
-    x_ref = reference_column(visit.target["source_x"], profile.column_offset)
-    edges = column_wavelengths(np.arange(shape[1] + 1) - 0.5, profile.dispersion, x_ref,
-                               origin_x=origin[0])
-    if not np.all(np.isfinite(edges)) or np.any(np.diff(edges) <= 0):
-        problems.error(profile.path, f"dispersion.coefficients {list(profile.dispersion)} do not "
-                                     f"give wavelengths increasing with column over the visit's "
-                                     f"columns {origin[0]}-{origin[0] + shape[1] - 1} "
-                                     f"(x_ref = target.source_x + dispersion.column_offset "
-                                     f"= {x_ref:g})")
-        return None
-    if edges[0] <= 0:
-        problems.error(profile.path, f"dispersion.coefficients give a wavelength of "
-                                     f"{edges[0]:.4g} um at column {origin[0]}: wavelengths "
-                                     f"must be positive")
-        return None
-    return edges
-
-
-def _check_channels(visit, edges, problems):
-    """Channel definition of the bin stage against the subarray's wavelengths; n_channels."""
-    from lightledger.pipeline.binning import channel_edges_from_list, uniform_channel_edges
-
-    params = visit.stages["bin"]
-    lo, hi = float(edges[0]), float(edges[-1])
-    span = f"the subarray's {lo:.4f}-{hi:.4f} um (dispersion.coefficients of {visit.profile.path})"
-    n_channels = None
-    if params["edges"]:
-        where = visit.source("bin", "edges")
-        label = "stages.bin.edges" if where == str(visit.path) else "bin.edges"
-        try:
-            ch = channel_edges_from_list(params["edges"])
-        except ParameterError:
-            problems.error(where, f"{label} must be at least two strictly increasing "
-                                  f"wavelengths (um), got {list(params['edges'])}")
-            ch = None
-        if ch is not None:
-            if ch[0] < lo - 1e-9 or ch[-1] > hi + 1e-9:
-                problems.error(where, f"{label} {ch[0]:.4f}-{ch[-1]:.4f} um reach outside {span}")
-            n_channels = len(ch) - 1
-    elif params["width"] > 0:
-        where = visit.source("bin", "width")
-        try:
-            n_channels = len(uniform_channel_edges((lo, hi), width=params["width"])) - 1
-        except ParameterError:
-            label = "stages.bin.width" if where == str(visit.path) else "bin.width"
-            problems.error(where, f"{label} = {params['width']:g} um is wider than {span}")
-    else:
-        n_channels = params["n_channels"]
-        if n_channels > len(edges) - 1:
-            where = visit.source("bin", "n_channels")
-            label = "stages.bin.n_channels" if where == str(visit.path) else "bin.n_channels"
-            problems.error(where, f"{label} = {n_channels} is more channels than the "
-                                  f"{len(edges) - 1} columns of the subarray")
-    white = params["white_range"]
-    if white:
-        where = visit.source("bin", "white_range")
-        label = "stages.bin.white_range" if where == str(visit.path) else "bin.white_range"
-        if len(white) != 2 or not white[1] > white[0]:
-            problems.error(where, f"{label} must be [lo, hi] in um with hi > lo, got {list(white)}")
-        elif white[0] < lo - 1e-9 or white[1] > hi + 1e-9:
-            problems.error(where, f"{label} {white[0]:.4f}-{white[1]:.4f} um reaches outside {span}")
-    return n_channels
-
-
-def event_coverage(visit, refs):
-    """Problem text when the exposures cannot measure the event's depth, else None.
-
-    The event's template (from the a priori ephemeris) must be zero on some
-    exposures (the baseline) and positive on others (the event): without a
-    baseline the depth is degenerate with the flux level, without the event
-    there is nothing to measure.  Times are the exposures' mid-times in
-    BJD_TDB (Eastman et al. 2010), interpolated from a coarse grid as the bin
-    stage takes them.
-    """
-    from lightledger.pipeline.timing import interpolated_barycentric_times
-
-    from .detrendsetup import event_template
-
-    event, target = visit.event, visit.target
-    if event.get("kind") == "phase-curve":
-        return None      # the full-orbit fit takes whatever transits and eclipses the visit holds
-    if any(event.get(k) is None for k in ("kind", "t0", "period", "duration", "rp_rs", "a_rs",
-                                          "inclination")) \
-            or target.get("ra") is None or target.get("dec") is None or not refs:
-        return None
-    mid = np.array([r.start_mjd + 0.5 * r.read_times[-1] / 86400.0 for r in refs])
-    geo = [r.obsgeo for r in refs]
-    obsgeo = None if all(g is None for g in geo) else np.array(
-        [g if g is not None else (0.0, 0.0, 0.0) for g in geo], float)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        bjd = interpolated_barycentric_times(mid, target["ra"], target["dec"],
-                                             obsgeo_m=obsgeo).bjd_tdb
-        template = np.asarray(event_template(bjd, event), float)
-    inside = template > 1e-9
-    # the exposures the detrend stage fits: a multi-orbit scan visit leaves its first orbit out
-    # (tasks/detrend.py with detrend.drop_first_orbit; orbits split as the bin stage does)
-    from lightledger.pipeline.covariates import orbit_numbers
-
-    stare = all(r.scan_velocity == 0 for r in refs)
-    orbit, _ = orbit_numbers(np.array([r.start_mjd for r in refs]), stare=stare,
-                             gap_minutes=visit.stages["bin"]["orbit_gap_minutes"] or None)
-    fitted = np.ones(len(refs), bool)
-    dropped = ""
-    if visit.stages["detrend"]["drop_first_orbit"] and not stare and len(np.unique(orbit)) > 2:
-        fitted = orbit != orbit[0]
-        dropped = (" once the first orbit is left out (stages.detrend.drop_first_orbit = true; "
-                   "set it false to fit the first orbit)")
-    name = event["kind"]
-    centre = event["t0"] + (0.5 * event["period"] if name == "eclipse" else 0.0)
-    n_cycles = round((0.5 * (bjd[0] + bjd[-1]) - centre) / event["period"])
-    centre += n_cycles * event["period"]
-    span = (f"the exposures span BJD_TDB {bjd.min():.5f} to {bjd.max():.5f}; the nearest "
-            f"{name} is centred at {centre:.5f}")
-    if not inside.any():
-        hint = (" (event.t0 is a full Julian date, e.g. 2460000.5)"
-                if event["t0"] < 2.4e6 else "")
-        return (f"event: no exposure falls inside the {name} predicted by event.t0, event.period "
-                f"and the orbit (event.a_rs, event.inclination): {span}{hint}; there is no depth "
-                f"to measure (use --until bin for the light curves alone)")
-    if inside.all():
-        return (f"event: every exposure falls inside the {name} ({span}): without exposures "
-                f"outside it the depth cannot be told from the flux level (use --until bin for "
-                f"the light curves alone)")
-    if not inside[fitted].any():
-        return (f"event: no fitted exposure falls inside the {name}{dropped} ({span}); use "
-                f"--until bin for the light curves alone")
-    if inside[fitted].all():
-        return (f"event: every fitted exposure falls inside the {name}{dropped} ({span}): the "
-                f"depth cannot be told from the flux level; use --until bin for the light curves "
-                f"alone")
-    return None
 
 
 def _notebook_writable(visit, problems):
@@ -396,96 +209,6 @@ def parse_settings(settings, problems=None):
     return out
 
 
-def _check_excluded_channels(visit, n_channels, problems):
-    for k, (first, last, _) in enumerate(visit.exclude.get("channels", ())):
-        if n_channels is not None and last >= n_channels:
-            problems.error(visit.path, f"exclude.channels[{k}] names channel {last}; the bin "
-                                       f"stage makes channels 0 to {n_channels - 1}")
-
-
-#: Bytes of float64 reads the validation pass summarises at once (a block of one file's exposures).
-_SCAN_BLOCK_BYTES = 4 << 20
-
-
-def _scan_blocks(refs, todo):
-    """Indices of ``todo`` in blocks of one file, one frame shape and one storage, in order."""
-    block, key = [], None
-    for i in todo:
-        r = refs[i]
-        k = (r.file, tuple(r.shape), r.bitpix, r.bscale)
-        size = 8 * int(np.prod(r.shape))
-        if block and (k != key or (len(block) + 1) * size > _SCAN_BLOCK_BYTES):
-            yield block
-            block = []
-        block.append(i)
-        key = k
-    if block:
-        yield block
-
-
-def _read_block(refs):
-    """The reads of a block of exposures (float64), or None when one of them cannot be read."""
-    try:
-        return read_exposures(refs, dtype=np.float64)
-    except InputFileError:
-        return None
-
-
-def _scan_reads(refs, references, profile, problems, progress):
-    """Set aside exposures with no usable pixel; warn about wrapped integer storage.
-
-    The exposures of one file are read together (one memory map) and summarised a block at a
-    time; an exposure of a block that cannot be read is read again alone, for its own reason.
-    """
-    out = list(refs)
-    todo = [i for i, r in enumerate(out) if not r.excluded]
-    wrapped = []
-    done = 0
-    for block in _scan_blocks(out, todo):
-        if progress is not None:
-            progress(done, len(todo))
-        done += len(block)
-        chosen = [out[i] for i in block]
-        reads = _read_block(chosen)
-        if reads is None:
-            good = []
-            for i in block:
-                try:
-                    good.append((i, read_exposure(out[i])[None]))
-                except InputFileError as exc:
-                    out[i] = set_aside(out[i], f"cannot read the reads ({str(exc).split(': ', 1)[-1]})")
-            block = [i for i, _ in good]
-            reads = np.concatenate([a for _, a in good]) if good else None
-        if reads is None:
-            continue
-        r0 = out[block[0]]
-        summaries = summarize_exposures(reads, bias=references.bias, saturation=profile.saturation,
-                                        span=r0.wrap,
-                                        clip_level=clip_level(r0, references.bias, profile.saturation))
-        del reads
-        for i, summary in zip(block, summaries):
-            r = out[i]
-            if summary.n_not_finite == summary.n_pixels:
-                out[i] = set_aside(r, "every pixel is NaN or infinite in every read")
-            elif summary.n_usable == 0:
-                kind = "saturated or clipped" if summary.n_clipped else "saturated"
-                out[i] = set_aside(r, f"every pixel is {kind} from read {summary.first_untrusted} on "
-                                      f"(fewer than 2 usable reads; detector.saturation "
-                                      f"{profile.saturation:g} ADU above bias)")
-            if summary.n_wrapped:
-                wrapped.append((r, summary.n_wrapped))
-    if progress is not None and todo:
-        progress(len(todo), len(todo))
-    if wrapped:
-        r, n = wrapped[0]
-        bits = abs(r.bitpix)
-        more = f"; likewise {len(wrapped) - 1} more exposures" if len(wrapped) > 1 else ""
-        problems.warning(r.label, f"{n} pixels wrapped around the {bits}-bit integer storage of "
-                                  f"READS (a read drops by more than half of 2**{bits} ADU); their "
-                                  f"reads from the wrap on are treated as saturated{more}")
-    return out
-
-
 def _finish(report, visit):
     """Report set-aside exposures (errors when the visit says stop) and an empty visit."""
     problems = report.problems
@@ -495,8 +218,6 @@ def _finish(report, visit):
     if report.refs and not report.usable:
         problems.error(visit.raw, f"no usable exposure: all {len(report.refs)} are set aside "
                                   f"(reasons above)")
-
-
 
 
 def visit_exposures(visit_path, settings_text, settings):

@@ -19,7 +19,7 @@ from pathlib import Path
 
 from . import locks
 from .digests import sha256_of
-from .entries import ENTRY_NAME, _stat_key, made_record_path, read_made_record
+from .entries import ENTRY_NAME, _stat_key, made_record_path, read_entry, read_made_record
 from .products import known_digest, part_pattern, write_json
 
 __all__ = ["FolderTask", "guarded", "supersede", "remove_parts"]
@@ -28,8 +28,9 @@ __all__ = ["FolderTask", "guarded", "supersede", "remove_parts"]
 class FolderTask:
     """What a task that makes one notebook folder shares: locks, forcing, made-records.
 
-    A subclass (a :class:`luigi.Task`) provides ``folder``, ``output()``,
-    ``force_after``, ``run_id`` and ``forced``; its ``run()`` is wrapped
+    A subclass (a :class:`luigi.Task`) provides ``stage``, ``folder``,
+    ``output()``, ``force_after``, ``run_id`` and ``forced``; it is complete
+    when its output is (:meth:`complete`); its ``run()`` is wrapped
     (:func:`guarded`): the folder's shared lock and the output's exclusive
     lock are held while it runs, leftover temporary files of the output are
     removed, a forced stage's old folder is moved aside first, the run
@@ -41,6 +42,31 @@ class FolderTask:
         super().__init_subclass__(**kwargs)
         if "run" in cls.__dict__:
             cls.run = guarded(cls.__dict__["run"])
+
+    def complete(self):
+        """One file test (two for a forced stage; an entry is also parsed).
+
+        The output exists; when the stage is forced, its folder's entry (or
+        the output, when that is the entry) is not older than the run's
+        start (``force_after``); an entry output must also parse as an entry
+        of ``stage``.
+        """
+        path = Path(self.output().path)
+        try:
+            st = os.stat(path)
+        except FileNotFoundError:
+            return False
+        entry = self.folder / ENTRY_NAME
+        if self.forced:
+            try:
+                est = st if path == entry else os.stat(entry)
+            except FileNotFoundError:
+                est = None          # the folder is being made anew
+            if est is not None and est.st_mtime < self.force_after:
+                return False
+        if path.name == ENTRY_NAME:
+            return read_entry(path, self.stage) is not None
+        return True
 
     def check_identity(self):
         """Raise when the task's inputs no longer give its identity (default: nothing to check)."""

@@ -12,7 +12,6 @@ into ``NOTEBOOK/joint-IDENT/``.
 """
 
 import json
-import os
 import socket
 import time
 from datetime import datetime, timezone
@@ -26,7 +25,7 @@ from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER, STAGES
 
 from .applicability import not_applying
-from .base import (ENTRY_NAME, PROGRESS, FolderTask, product_digest, read_entry,
+from .base import (ENTRY_NAME, PROGRESS, FolderTask, product_digest,
                    settings_from_text, user_name, visit_config)
 from .products import Provenance, relative_input, write_json
 from .programmefile import (joint_facts, joint_identity, joint_params, load_programme,
@@ -148,17 +147,6 @@ class JointDetrend(FolderTask, luigi.Task):
 
     def output(self):
         return luigi.LocalTarget(str(self.folder / ENTRY_NAME))
-
-    def complete(self):
-        """The entry exists and is valid (and, when forced, newer than the run's start)."""
-        path = Path(self.output().path)
-        try:
-            st = os.stat(path)
-        except FileNotFoundError:
-            return False
-        if self.forced and st.st_mtime < self.force_after:
-            return False
-        return read_entry(path, self.stage) is not None
 
     def final_product(self):
         return self.folder / "planet.fits"
