@@ -2,14 +2,17 @@
 
 A phase curve (the planet's flux over the whole orbit, with its transits and
 eclipses; :func:`lightledger.pipeline.programme.fit_programme`) is fitted once
-per systematics model of a grid.  Each light curve (the white band and every
-channel) ranks the models by BIC or AIC, weights them by
-:math:`e^{-\\mathrm{IC}/2}` normalised, and marginalises every planet
-quantity (radius ratio, transit and eclipse depths, night side, extremes,
-amplitude, offset of the maximum) over them: the weighted mean, with an
-error that adds the spread between models to their own errors (Gibson 2014;
-Wakeford et al. 2016; :func:`lightledger.pipeline.grid.rank_fits`,
-:func:`lightledger.pipeline.grid.marginalise_fits`).
+per systematics model of a grid.  The white band ranks the models by BIC or
+AIC and weights them by :math:`e^{-\\mathrm{IC}/2}` normalised; each channel
+weighs them by :math:`W_{\\rm white}\\, e^{-\\mathrm{IC}/2}` normalised, the
+white band's weights as the models' prior (as the single-visit grid does,
+:func:`lightledger.pipeline.gridrank.channel_prior`).  Each light curve then
+marginalises every planet quantity (radius ratio, transit and eclipse depths,
+night side, extremes, amplitude, offset of the maximum) over them: the
+weighted mean, with an error that adds the spread between models to their
+own errors (Gibson 2014; Wakeford et al. 2016;
+:func:`lightledger.pipeline.gridrank.rank_fits`,
+:func:`lightledger.pipeline.gridrank.marginalise_fits`).
 
 The same function serves one visit and a programme of visits fitted jointly:
 give it one fit per model, all of the same visits and channels.
@@ -22,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .errors import AllMaskedError, ParameterError
-from .grid import marginalise_fits, rank_fits
+from .gridrank import marginalise_fits, rank_fits
 
 __all__ = ["PLANET_QUANTITIES", "planet_quantity", "planet_interval", "PhaseGrid",
            "fit_phase_grid", "marginal_interval"]
@@ -82,6 +85,8 @@ class PhaseGrid:
     fits : tuple
         One ProgrammeFit per model (None where it failed).
     chi2, bic, aic, weight : ndarray of float, shape (n_models, 1 + n_channels)
+        ``weight``: the white band's from its criterion alone, a channel's
+        with the white band's weights as the models' prior.
     n_params, n_points : ndarray of int, shape (n_models, 1 + n_channels)
     values, errors : dict of str to ndarray of float, shape (n_models, 1 + n_channels)
         Each quantity of :data:`PLANET_QUANTITIES` and its error per fit.
@@ -177,8 +182,15 @@ def fit_phase_grid(fits, names, *, criterion="bic", failures=()):
     BIC = chi2 + k ln N and AIC = chi2 + 2k per light curve, k and N from
     each joint fit (every visit's systematics columns and shape parameters,
     the planet's coefficients, the radius when fitted; the fitted exposures
-    of every visit); weights :math:`\\propto e^{-\\mathrm{IC}/2}`
-    (Gibson 2014).  The marginalised error is
+    of every visit); the white band's weights :math:`W_{m} \\propto
+    e^{-\\mathrm{IC}_m/2}` (Gibson 2014), a channel's :math:`\\propto W_m
+    e^{-\\mathrm{IC}_m/2}` with its own criterion.  A channel holds a fraction
+    of the white band's signal: alone it tells a systematic the white band
+    shows (a ramp) from noise less well, and by its own criterion a model
+    without it would win on its fewer parameters, every channel alike.  Every model here has its own white fit and none divides a
+    common mode out, so the prior of
+    :func:`~lightledger.pipeline.gridrank.channel_prior` is the white band's
+    weights themselves.  The marginalised error is
     :math:`\\sqrt{\\sum W \\sigma^2 + \\sum W (x - \\bar x)^2}` (Wakeford et
     al. 2016).  Cost: negligible beside the fits.
     """
@@ -213,6 +225,9 @@ def fit_phase_grid(fits, names, *, criterion="bic", failures=()):
         raise AllMaskedError("no systematics model could be fitted to every light curve of the "
                              "phase curve")
     bic, aic, weight = rank_fits(chi2, n_params, n_points, criterion=criterion)
+    if n_curves > 1:
+        weight[:, 1:] = rank_fits(chi2[:, 1:], n_params[:, 1:], n_points[:, 1:],
+                                  criterion=criterion, prior=weight[:, 0])[2]
     value, error, within, between = {}, {}, {}, {}
     for q in PLANET_QUANTITIES:
         x = values[q]

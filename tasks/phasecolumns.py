@@ -108,7 +108,8 @@ PHASE_GRID_COLUMNS = {
     "chi2": ("", "chi-square of the fit"),
     "bic": ("", "chi2 + n_params ln(n_points)"),
     "aic": ("", "chi2 + 2 n_params"),
-    "weight": ("", "exp(-criterion/2), normalised over the models of this light curve"),
+    "weight": ("", "exp(-criterion/2) normalised over the models (white band); times the "
+                   "white band's weight as prior (channels)"),
     **{name: ("deg" if name == "offset_deg" else "", f"{name} of this model's fit")
        for name in ("rp_rs", "transit_depth", "eclipse_depth", "night_flux", "max_flux",
                     "min_flux", "amplitude", "offset_deg")},

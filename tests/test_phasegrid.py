@@ -1,8 +1,10 @@
 """Tests of lightledger.pipeline.phasegrid: phase-curve quantities marginalised over models.
 
 Sources: the marginalisation of Wakeford et al. 2016 (ApJ 819, 10; weights
-exp(-BIC/2) normalised, Gibson 2014, MNRAS 445, 3401; BIC of Schwarz 1978)
-computed by hand below; angles averaged on one branch (common practice).
+exp(-BIC/2) normalised, Gibson 2014, MNRAS 445, 3401; BIC of Schwarz 1978, AIC of
+Akaike 1974) computed by hand below; a channel's prior on the models taken from the
+white light's weights and multiplying each model's likelihood (Bayes' theorem); angles
+averaged on one branch (common practice).
 """
 
 from types import SimpleNamespace
@@ -51,14 +53,52 @@ def test_two_models_by_hand():
     np.testing.assert_allclose(grid.within["eclipse_depth"][0], 31.2413e-6, atol=2e-10)
     np.testing.assert_allclose(grid.between["eclipse_depth"][0], 18.6678e-6, atol=2e-10)
     np.testing.assert_allclose(grid.error["eclipse_depth"][0], 36.3938e-6, atol=2e-10)
-    # the channel ranks on its own: B's chi2 is 20 lower for 2 more parameters,
-    # BIC_B - BIC_A = -20 + 2 ln 100 = -10.7897, W_B = 1 / (1 + exp(-5.39483)) = 0.995481
-    np.testing.assert_allclose(grid.weight[1, 1], 0.995481, atol=2e-6)
+    # the channel weighs the models with the white light's weights as prior: B's chi2 is
+    # 20 lower for 2 more parameters, BIC_B - BIC_A = -20 + 2 ln 100 = -10.7897, so
+    # W_B = 1 / (1 + (0.891405 / 0.108595) exp(-5.39483)) = 1 / (1 + 8.20852 / 220.2647)
+    # = 0.964072 (0.995481 by its own BIC alone)
+    np.testing.assert_allclose(grid.weight[1, 1], 0.964072, atol=2e-6)
     assert grid.best.tolist() == [0, 1]
     top = grid.top_fit()
     assert top.white is a.white and top.channels[0] is b.channels[0]
     # no transit in either fit: the radius is not measured
     assert np.isnan(grid.value["transit_depth"][0]) and np.isnan(grid.error["rp_rs"][1])
+
+
+def test_channels_take_the_white_weights_as_prior_by_hand():
+    # Weights proportional to prior x exp(-BIC/2) (Gibson 2014; the prior of a model
+    # multiplies its likelihood, Bayes), the prior of a channel being the white light's
+    # weights.  N = 50 points everywhere; ln 50 = 3.912023, 2 ln 3 = 2.197225.
+    # White: A chi2 40, B chi2 42.197225, both k = 5: exp(-dBIC/2) = 3 -> W = 0.75, 0.25.
+    # Channel 0: A chi2 42.197225, B chi2 40, k = 5: B three times as likely as A;
+    # prior x likelihood 0.75 x 1 : 0.25 x 3 -> W = 0.5, 0.5 (0.25, 0.75 by its own BIC).
+    # Depths 400 and 500 ppm +- 30 ppm: mean 450 ppm, error sqrt(900 + 2500) = 58.3095 ppm
+    # (Wakeford et al. 2016).
+    # Channel 1: A chi2 30, k = 5; B chi2 30 - ln 50 - 2 ln 9 = 21.693528, k = 6:
+    # BIC_B - BIC_A = -2 ln 9, B nine times as likely; 0.75 x 1 : 0.25 x 9 -> W = 0.25, 0.75
+    # (0.1, 0.9 by its own BIC).
+    two_ln3 = 2 * np.log(3.0)
+    a = ProgrammeFit(white=_joint(40.0, 5, 50, 400e-6, 30e-6),
+                     channels=(_joint(40.0 + two_ln3, 5, 50, 400e-6, 30e-6),
+                               _joint(30.0, 5, 50, 400e-6, 30e-6)))
+    b = ProgrammeFit(white=_joint(40.0 + two_ln3, 5, 50, 500e-6, 30e-6),
+                     channels=(_joint(40.0, 5, 50, 500e-6, 30e-6),
+                               _joint(30.0 - np.log(50.0) - 2 * np.log(9.0), 6, 50,
+                                      500e-6, 30e-6)))
+    grid = fit_phase_grid([a, b], ["A", "B"])
+    np.testing.assert_allclose(grid.weight, [[0.75, 0.5, 0.25], [0.25, 0.5, 0.75]], atol=1e-12)
+    np.testing.assert_allclose(grid.value["eclipse_depth"][1], 450e-6, atol=1e-15)
+    np.testing.assert_allclose(grid.error["eclipse_depth"][1], 58.3095e-6, atol=2e-10)
+    # the criteria themselves are each light curve's own (BIC = chi2 + k ln N)
+    np.testing.assert_allclose(grid.bic[:, 2], [30 + 5 * np.log(50.0),
+                                                30 - 2 * np.log(9.0) + 5 * np.log(50.0)])
+    assert grid.best.tolist() == [0, 0, 1]
+    # AIC = chi2 + 2k (Akaike 1974): the white weights are 0.75, 0.25 again (same k); channel
+    # 1: AIC_A = 40, AIC_B = 33.693528, exp(-dAIC/2) = 9 sqrt(50) / e = 23.411704, so
+    # W_B = 0.25 x 23.411704 / (0.25 x 23.411704 + 0.75) = 5.852926 / 6.602926 = 0.886414
+    grid = fit_phase_grid([a, b], ["A", "B"], criterion="aic")
+    np.testing.assert_allclose(grid.weight[:, 0], [0.75, 0.25], atol=1e-12)
+    np.testing.assert_allclose(grid.weight[:, 2], [0.113586, 0.886414], atol=2e-6)
 
 
 def test_interval_sides_marginalised_by_hand():

@@ -74,19 +74,23 @@ def test_programme_products_pages_and_truth(pair, science):
         assert [c for c in table if f"`{c}`" not in readme] == []
 
     # The joint grid: every model fitted to both visits, ranked per light curve, the planet
-    # marginalised over it (Wakeford et al. 2016: weights exp(-BIC/2) normalised, the
+    # marginalised over it (Wakeford et al. 2016: weights exp(-BIC/2) normalised, a
+    # channel's times the white band's weight as the models' prior, Bayes' theorem; the
     # weighted mean, an error adding the spread between models), checked against the GRID
     # table the product carries; the programme page shows it.
     planet = Table.read(result.final, hdu="PLANET")
     grid = Table.read(result.final, hdu="GRID")
     assert set(grid["model"]) == set(JOINT_MODELS) and len(grid) == 2 * len(planet)
+    white = {int(r["model_index"]): float(r["weight"]) for r in grid[grid["channel"] == -1]}
     for row in planet:
         rows = grid[grid["channel"] == row["channel"]]
         w = np.asarray(rows["weight"], float)
         bic = np.asarray(rows["bic"], float)
         assert abs(w.sum() - 1) < 1e-9
-        assert w == pytest.approx(np.exp(-(bic - bic.min()) / 2) / np.sum(np.exp(
-            -(bic - bic.min()) / 2)), rel=1e-9, abs=1e-15)
+        prior = np.array([1.0 if row["channel"] == -1 else white[int(m)]
+                          for m in rows["model_index"]])
+        like = prior * np.exp(-(bic - bic.min()) / 2)
+        assert w == pytest.approx(like / like.sum(), rel=1e-9, abs=1e-15)
         d, e = np.asarray(rows["eclipse_depth"], float), np.asarray(rows["eclipse_depth_error"],
                                                                       float)
         mean = np.sum(w * d)
@@ -129,16 +133,23 @@ def test_single_phase_curve_visit(phase_single):
     assert np.isnan(np.ma.filled(planet["transit_depth_error"][0], np.nan))   # no transit in it
     assert (Path(result.final).parent / "detrended.fits").is_file()
     # The planet is marginalised over the phase-curve grid (Wakeford et al. 2016: weights
-    # exp(-BIC/2) normalised per light curve, the weighted mean, the error adding the
-    # spread between models): check PLANET against its own GRID table.
+    # exp(-BIC/2) normalised, a channel's times the white band's weight as the models'
+    # prior, Bayes' theorem; the weighted mean, the error adding the spread between
+    # models): check PLANET against its own GRID table.
     grid = Table.read(result.final, hdu="GRID")
     models = set(grid["model"])
     assert len(models) == fits.getheader(result.final)["NMODELS"] >= 2
     assert len(grid) == len(models) * len(planet)
+    white = {int(r["model_index"]): float(r["weight"]) for r in grid[grid["channel"] == -1]}
     for row in planet:
         rows = grid[grid["channel"] == row["channel"]]
         w = np.asarray(rows["weight"], float)
         assert abs(w.sum() - 1) < 1e-9
+        bic = np.asarray(rows["bic"], float)
+        prior = np.array([1.0 if row["channel"] == -1 else white[int(m)]
+                          for m in rows["model_index"]])
+        expect = prior * np.exp(-0.5 * (bic - bic.min()))
+        np.testing.assert_allclose(w, expect / expect.sum(), rtol=1e-9, atol=1e-12)
         d, e = np.asarray(rows["eclipse_depth"], float), np.asarray(rows["eclipse_depth_error"], float)
         mean = np.sum(w * d)
         assert row["eclipse_depth"] == pytest.approx(mean, rel=1e-9, abs=1e-12)
