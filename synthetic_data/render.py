@@ -159,8 +159,6 @@ def _write_visit(model, path, wdepth, profile="instrument.toml"):
     duration = _event_duration(sc)
     orbit_keys = (f"eccentricity = {sc.eccentricity!r}\nomega = {sc.omega_deg!r}\n"
                   if sc.kind == "phase-curve" else "")
-    # A visit-long quadratic trend needs a quadratic in the detrending.
-    detrend = "visit_order = 2\n" if sc.kind == "phase-curve" and sc.visit_curve else ""
     text = f'''# Visit description of a fictional visit (rendered by the forward model)
 [visit]
 name = "{sc.visit_name}"
@@ -193,7 +191,7 @@ u2 = {sc.u2!r}
 edges = {_toml_list(edges)}
 white_range = {_toml_list([edges[0], edges[-1]])}
 [stages.detrend]
-{detrend}'''
+'''
     path.write_text(text)
 
 

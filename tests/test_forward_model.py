@@ -284,3 +284,25 @@ def test_unknown_scenario_names_valid_ones(tmp_path):
     with pytest.raises(ParameterError, match="scan-transit"):
         render("no-such-scenario", tmp_path)
     assert set(SCENARIOS) == {"scan-transit", "stare-eclipse", "phase-orbit", "phase-pair"}
+
+
+@pytest.mark.parametrize("name", ["scan-transit", "stare-eclipse", "phase-orbit"])
+def test_rendered_visit_description_uses_only_known_stage_keys(name, tmp_path):
+    # The visit description a render writes must reduce as written: every [stages.X] key
+    # is a parameter the stage declares (pipeline/parameters.py), and the validation pass
+    # finds no unknown key in it (the profile and raw folder are not rendered here).
+    from lightledger.pipeline.parameters import STAGES
+    from lightledger.synthetic_data.render import _write_visit
+    from lightledger.tasks.config import load_visit
+    from lightledger.tasks.problems import Problems
+
+    sc = get_scenario(name)
+    model = vm.build_visit(sc, seed=1, n_exposures=2 * sc.n_orbits)
+    path = tmp_path / "visit.toml"
+    _write_visit(model, path, 1e-3)
+    stages = tomllib.loads(path.read_text())["stages"]
+    for stage, keys in stages.items():
+        assert set(keys) <= {p.name for p in STAGES[stage].params}, (stage, keys)
+    problems = Problems()
+    load_visit(path, (), problems)
+    assert not [p.line for p in problems.errors if "unknown key" in p.line]
