@@ -187,10 +187,10 @@ def fit_phase_grid(fits, names, *, criterion="bic", failures=()):
     e^{-\\mathrm{IC}_m/2}` with its own criterion.  A channel holds a fraction
     of the white band's signal: alone it tells a systematic the white band
     shows (a ramp) from noise less well, and by its own criterion a model
-    without it would win on its fewer parameters, every channel alike.  Every model here has its own white fit and none divides a
-    common mode out, so the prior of
-    :func:`~lightledger.pipeline.gridrank.channel_prior` is the white band's
-    weights themselves.  The marginalised error is
+    without it would win on its fewer parameters, every channel alike.
+    Every model here has its own white fit and none divides a common mode
+    out, so the prior of :func:`~lightledger.pipeline.gridrank.channel_prior`
+    is the white band's weights themselves.  The marginalised error is
     :math:`\\sqrt{\\sum W \\sigma^2 + \\sum W (x - \\bar x)^2}` (Wakeford et
     al. 2016).  Cost: negligible beside the fits.
     """
