@@ -96,14 +96,18 @@ DEFAULT_STARE_GRID = (
 #: Default grid for a phase curve of low-Earth orbits with spatial scans: the
 #: planet's flux varies over the whole visit, so only a visit-long slope (or
 #: curvature) is tried beside the orbit-phase polynomial, the ramp variants and
-#: the charge-trapping ramp.  Every model is fitted to every light curve with
-#: its own shapes (a joint fit ties nothing to the white light), so the grid is
-#: kept short.
+#: the charge-trapping ramp.  The visit-long curvature comes with per-orbit and
+#: with shared ramp amplitudes: on a visit of many orbits the per-orbit ramps
+#: cost a parameter per orbit, and without a curved member of the shared ramp
+#: the criterion takes the straight one and the phase curve absorbs the
+#: curvature.  Every model is fitted to every light curve with its own shapes
+#: (a joint fit ties nothing to the white light), so the grid is kept short.
 DEFAULT_PHASE_SCAN_GRID = (
     "visit1+orbit2+scan+ramp",
     "visit1+orbit1+scan+ramp",
     "visit2+orbit2+scan+ramp",
     "visit1+orbit2+scan+ramp-shared",
+    "visit2+orbit2+scan+ramp-shared",
     "visit1+orbit1+scan+traps",
 )
 
