@@ -277,7 +277,7 @@ STAGES = {
               "orbit; 0 = found from the intervals (the break between the cadence and the "
               "occultation gaps, with a warning when it is ambiguous)", minimum=0.0),
     )),
-    "detrend": StageSpec("detrend", "17", "light curves divided by a systematics model", (
+    "detrend": StageSpec("detrend", "18", "light curves divided by a systematics model", (
         Param("models", (), "strs",
               "systematics models to fit, rank and marginalise over, each tokens joined by '+': "
               "visit0|visit1|visit2|visitexp, orbit0..orbit4, scan, ramp|ramp-first|ramp-shared, "
@@ -319,7 +319,7 @@ STAGES = {
               "sinusoids) hidden by the eclipse, depth at mid-eclipse; 'systematic' = independent "
               "sinusoids multiplying the systematics", choices=("planet", "systematic")),
     ) + _PHASE_CURVE),
-    "joint": StageSpec("joint", "6", "the visits of a programme fitted together: each its own "
+    "joint": StageSpec("joint", "7", "the visits of a programme fitted together: each its own "
                        "systematics, one planet per channel, over a grid of systematics models",
                        (Param("models", (), "strs",
                               "systematics models of the joint fit's grid, each fitted to every "
