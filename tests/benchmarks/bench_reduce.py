@@ -42,6 +42,7 @@ STAGES = ("calibrate", "extract", "bin", "detrend")
 
 def child(visit_path, workers, events_path):
     """Reduce one visit in this process; print one JSON line of results."""
+    import lightledger.tasks.cli  # noqa: F401  (one BLAS thread per process, before numpy loads)
     import luigi
 
     from lightledger.tasks.run import reduce_visit
