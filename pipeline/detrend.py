@@ -33,6 +33,7 @@ from functools import partial
 import numpy as np
 
 from .diagnostics import BinnedRms, binned_rms
+from .argchecks import vector as _vector
 from .errors import ParameterError
 from .eventfit import DetrendResult, fit_event, with_shapes
 from .eventshapes import eclipse_template, phase_curve_basis, transit_template
@@ -46,14 +47,6 @@ __all__ = ["DetrendResult", "ChannelFits", "BinnedRms", "transit_template",
            "tied_phase_curve", "fit_at_fitted_radius", "detrend_light_curve", "fit_channels",
            "binned_rms",
            "DEFAULT_TAU_GRID"]
-
-
-def _vector(x, name, n=None):
-    a = np.asarray(x, dtype=float)
-    if a.ndim != 1 or (n is not None and a.size != n):
-        want = f"({n},)" if n is not None else "1-D"
-        raise ParameterError(f"{name} must have shape {want}; got {a.shape}")
-    return a
 
 
 def fit_light_curve(inputs, flux, variance, template, model, *, mask=None, **event_options):

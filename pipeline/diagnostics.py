@@ -8,17 +8,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .argchecks import vector as _vector
 from .errors import AllMaskedError, ParameterError
 
 __all__ = ["BinnedRms", "binned_rms", "ResidualQuality", "residual_quality"]
-
-
-def _vector(x, name, n=None):
-    a = np.asarray(x, dtype=float)
-    if a.ndim != 1 or (n is not None and a.size != n):
-        want = f"({n},)" if n is not None else "1-D"
-        raise ParameterError(f"{name} must have shape {want}; got {a.shape}")
-    return a
 
 
 @dataclass(frozen=True)

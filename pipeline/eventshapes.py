@@ -12,24 +12,10 @@ Times are days; shapes are dimensionless.  Inputs are not modified.
 
 import numpy as np
 
+from .argchecks import vector as _vector, order as _order
 from .errors import ParameterError
 
 __all__ = ["transit_template", "eclipse_template", "phase_curve_basis"]
-
-
-def _vector(x, name, n=None):
-    a = np.asarray(x, dtype=float)
-    if a.ndim != 1 or (n is not None and a.size != n):
-        want = f"({n},)" if n is not None else "1-D"
-        raise ParameterError(f"{name} must have shape {want}; got {a.shape}")
-    return a
-
-
-def _order(order, name):
-    k = int(order)
-    if k < 0 or k != order:
-        raise ParameterError(f"{name} must be an integer >= 0; got {order!r}")
-    return k
 
 
 def transit_template(model_flux):

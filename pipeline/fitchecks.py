@@ -7,15 +7,8 @@ argument and what is wrong).  Inputs are not modified.
 
 import numpy as np
 
+from .argchecks import vector as _vector
 from .errors import ParameterError
-
-
-def _vector(x, name, n=None):
-    a = np.asarray(x, dtype=float)
-    if a.ndim != 1 or (n is not None and a.size != n):
-        want = f"({n},)" if n is not None else "1-D"
-        raise ParameterError(f"{name} must have shape {want}; got {a.shape}")
-    return a
 
 
 def _prepare(flux, variance, template, mask, n=None):

@@ -13,6 +13,7 @@ Inputs are not modified.
 
 import numpy as np
 
+from .argchecks import vector as _vector, order as _order
 from .errors import ParameterError
 
 __all__ = ["polynomial_basis", "orbit_phase_basis", "ramp_basis", "scan_direction_basis",
@@ -20,21 +21,6 @@ __all__ = ["polynomial_basis", "orbit_phase_basis", "ramp_basis", "scan_directio
 
 #: Default ramp time scales, days (1 to 60 minutes, log-spaced).
 DEFAULT_TAU_GRID = np.geomspace(1.0, 60.0, 16) / 1440.0
-
-
-def _vector(x, name, n=None):
-    a = np.asarray(x, dtype=float)
-    if a.ndim != 1 or (n is not None and a.size != n):
-        want = f"({n},)" if n is not None else "1-D"
-        raise ParameterError(f"{name} must have shape {want}; got {a.shape}")
-    return a
-
-
-def _order(order, name):
-    k = int(order)
-    if k < 0 or k != order:
-        raise ParameterError(f"{name} must be an integer >= 0; got {order!r}")
-    return k
 
 
 def _scaled(t):
