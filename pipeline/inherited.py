@@ -75,9 +75,11 @@ def inherited_error(result, lin, template, time, event, ld, own, common, common_
     and :math:`-\Delta E_w/E_w` (the event's columns: depth or planet
     coefficients and event parameters) for ``res``, :math:`E_w = m_w/S_w`.  Shape
     parameters (time scales, through their logarithms) are propagated by
-    refitting the channel at each one moved by its error (at most
-    :data:`MAX_SHAPE_LOG_ERROR`): the channel's own columns may trade with
-    them far from linearly.  The shapes, the event and the common mode are
+    refitting the channel at them moved together along each principal
+    direction of their covariance by its error (no shape by more than
+    :data:`MAX_SHAPE_LOG_ERROR`; :func:`_shape_variance`): the channel's own
+    columns may trade with them far from linearly, and correlated shapes
+    move together.  The shapes, the event and the common mode are
     taken as independent sources; for ``res`` the noise the white light shares
     with the channel is in the divided channel's variance
     (:func:`~lightledger.pipeline.commonmode.divide_common_mode`).
@@ -88,21 +90,10 @@ def inherited_error(result, lin, template, time, event, ld, own, common, common_
     wl = own.linearisation
     nb_w, ne_w, ns_w, ng_w = wl.blocks
     cov_own = wl.covariance(own.result.error_scale)
-    # 1. shapes: refits at each shape moved by its (capped) error
+    # 1. shapes: refits along the principal directions of their (capped) covariance
     if ns_w and len(shape_names) == ns_w:
         idx = np.arange(nb_w + ne_w, nb_w + ne_w + ns_w)
-        c = cov_own[np.ix_(idx, idx)]
-        sd = np.sqrt(np.clip(np.diag(c), 0.0, None))
-        step = np.minimum(sd, MAX_SHAPE_LOG_ERROR)
-        grad = np.zeros(ns_w)
-        for k, name in enumerate(shape_names):
-            if not step[k] > 0:
-                continue
-            up = refit_depth({**own.shapes, name: own.shapes[name] * np.exp(step[k])})
-            dn = refit_depth({**own.shapes, name: own.shapes[name] * np.exp(-step[k])})
-            grad[k] = (up - dn) / (2 * step[k])
-        scale = np.where(sd > 0, step / np.where(sd > 0, sd, 1.0), 0.0)
-        total += float(grad @ (c * np.outer(scale, scale)) @ grad)
+        total += _shape_variance(cov_own[np.ix_(idx, idx)], own.shapes, shape_names, refit_depth)
     # 2. the event parameters the white light fitted, through the template
     free = tuple(own.event_errors)          # in the order the white light fitted them
     if ng_w and len(free) == ng_w:
@@ -129,3 +120,44 @@ def inherited_error(result, lin, template, time, event, ld, own, common, common_
             R = ratio[:, None] * J
         total += inherited_variance(h, [(R, cl.covariance(common.result.error_scale))])
     return float(np.sqrt(max(total, 0.0)))
+
+
+def _shape_variance(cov, shapes, names, refit_depth):
+    r"""Variance of a channel's depth from the white fit's shape parameters, by refits.
+
+    The shapes' covariance :math:`C` (in their logarithms) is decomposed as
+    :math:`C = \sum_k \lambda_k v_k v_k^T`; the channel is refitted at the
+    shapes moved by :math:`\pm\sqrt{\lambda_k} v_k` (the step shortened so
+    that no shape moves by more than :data:`MAX_SHAPE_LOG_ERROR`: the depth's
+    change over that range, not an extrapolation over many e-folds) and
+
+    .. math:: \sigma^2 = \sum_k \left(\frac{d(+u_k) - d(-u_k)}{2}\right)^2,
+              \quad u_k = \sqrt{\lambda_k} v_k,
+
+    the first-order propagation :math:`g^T C g` evaluated with central
+    differences along uncorrelated directions (symmetric sigma points; Julier
+    & Uhlmann 1997, the unscented transform, from memory).  Moving each shape
+    alone instead, with the others held, ignores that correlated shapes (a
+    trap population's fill and release times, which trade against each
+    other) move together: a move the white light rules out changes the
+    channel's depth far from linearly, and the covariance's correlations no
+    longer cancel it.  Cost: two refits per shape parameter.
+    """
+    cov = np.asarray(cov, float)
+    cov = 0.5 * (cov + cov.T)
+    lam, vec = np.linalg.eigh(cov)
+    total = 0.0
+    base = np.array([float(shapes[n]) for n in names])
+    for k in range(lam.size):
+        if not lam[k] > 0:
+            continue
+        u = np.sqrt(lam[k]) * vec[:, k]
+        big = float(np.max(np.abs(u)))
+        if not big > 0:
+            continue
+        shrink = min(1.0, MAX_SHAPE_LOG_ERROR / big)
+        step = u * shrink
+        up = refit_depth({**shapes, **dict(zip(names, base * np.exp(step)))})
+        dn = refit_depth({**shapes, **dict(zip(names, base * np.exp(-step)))})
+        total += (0.5 * (up - dn)) ** 2
+    return float(total)

@@ -97,3 +97,54 @@ def test_an_unconstrained_time_scale_adds_a_bounded_error():
     cond = 1 / (depth_col @ (w * depth_col) - (ones @ (w * depth_col)) ** 2 / w.sum())
     assert lin.depth_variance() < cond + (0.5 * SHAPE_LOG_PRIOR) ** 2
     assert lin.depth_variance(prior=False) > 1e3 * lin.depth_variance()
+
+
+def test_shape_refits_reproduce_first_order_propagation():
+    # For a depth linear in the shapes' logarithms, d = g . ln(theta / theta0), the
+    # refits along the covariance's principal directions give g^T C g exactly (the
+    # propagation of errors, common practice), correlations included.
+    from lightledger.pipeline.inherited import _shape_variance
+    names = ("a.fill0", "a.release0", "a.fill1")
+    shapes = {"a.fill0": 300.0, "a.release0": 900.0, "a.fill1": 4000.0, "event.t0": 0.1}
+    g = np.array([40e-6, -25e-6, 10e-6])
+    sd = np.array([0.3, 0.2, 0.4])
+    corr = np.array([[1.0, -0.8, 0.3], [-0.8, 1.0, -0.1], [0.3, -0.1, 1.0]])
+    cov = corr * np.outer(sd, sd)
+
+    def depth(values):
+        assert values["event.t0"] == 0.1            # what is not a shape stays
+        return 0.01 + g @ np.log([values[n] / shapes[n] for n in names])
+
+    assert _shape_variance(cov, shapes, names, depth) == pytest.approx(g @ cov @ g, rel=1e-9)
+
+
+def test_correlated_shapes_move_together_in_the_refits():
+    # Two time scales the white light measures mostly through one combination (a
+    # fill and a release time trading against each other), one of them loosely
+    # (its error beyond the cap of MAX_SHAPE_LOG_ERROR).  A channel depth linear in
+    # the well-measured combination has the exact variance g^T C g (propagation of
+    # errors, common practice).  Moving each shape alone by its capped error moves
+    # them by different fractions of their errors, off the correlated direction the
+    # white light allows, and overstates it; moving them along the principal
+    # directions, shortened together, does not (a capped move can only understate).
+    from lightledger.pipeline.inherited import MAX_SHAPE_LOG_ERROR, _shape_variance
+    names = ("t.fill0", "t.release0")
+    shapes = {"t.fill0": 300.0, "t.release0": 3000.0}
+    sd = np.array([0.3, 2.0])
+    rho = 0.99
+    cov = np.array([[1.0, rho], [rho, 1.0]]) * np.outer(sd, sd)
+    b = 50e-6
+    g = b * np.array([1 / sd[0], -1 / sd[1]])
+
+    def depth(values):
+        return g @ np.log([values[n] / shapes[n] for n in names])
+
+    exact = g @ cov @ g
+    var = _shape_variance(cov, shapes, names, depth)
+    assert 0.5 * exact < var <= exact * (1 + 1e-9)
+    step = np.minimum(sd, MAX_SHAPE_LOG_ERROR)
+    delta = np.array([depth({**shapes, n: shapes[n] * np.exp(step[k])})
+                      - depth({**shapes, n: shapes[n] * np.exp(-step[k])})
+                      for k, n in enumerate(names)]) / 2
+    alone = delta @ (cov / np.outer(sd, sd)) @ delta
+    assert alone > 5 * exact
