@@ -19,7 +19,7 @@ not enter: columns are evaluated on every exposure (NaN where a covariate is
 not finite, which the fits leave out).  Inputs are not modified.
 """
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -28,7 +28,8 @@ from .systematics import DEFAULT_TAU_GRID, Block, ShapeParam
 from .traps import trap_ramp_basis
 
 __all__ = ["VisitExponential", "TiedOrbitRamp", "TrapRamp", "Decorrelation",
-           "DEFAULT_VISIT_TAU_GRID", "DEFAULT_FILL_GRIDS", "DEFAULT_RELEASE_GRIDS"]
+           "DEFAULT_VISIT_TAU_GRID", "DEFAULT_FILL_GRIDS", "DEFAULT_RELEASE_GRIDS",
+           "trap_limits"]
 
 #: Time scales of the visit-long exponential, days (30 min to 2 days, log-spaced).
 DEFAULT_VISIT_TAU_GRID = tuple(np.geomspace(30.0, 2880.0, 9) / 1440.0)
@@ -270,6 +271,49 @@ class TrapRamp:
             derivs.append(-np.sum(basis.derivatives[2 * p][:, :, eta] * w, axis=1))    # d / d ln(fill)
             derivs.append(np.sum(basis.derivatives[2 * p + 1][:, :, eta] * w, axis=1))  # d / d ln(release)
         return Block(cols, names, tuple(derivs))
+
+
+def trap_limits(model, inputs, mask=None):
+    """The trap time scales' limits, and their release grids held within them.
+
+    Each :class:`TrapRamp` of ``model`` gives the range of its fill and
+    release times the exposures can tell apart (:meth:`TrapRamp.limits`),
+    past which the grids are not extended.  Release-time grid values outside
+    it are moved to its ends: a population that empties between two
+    exposures is in equilibrium with the incident rate at every exposure,
+    and since the event dims that rate, its column follows the event and its
+    efficiency trades with the depth (another model, not a ramp).  Fill-time
+    grids are kept: a population filling within one exposure still shapes
+    that exposure by how far it fills.
+
+    Parameters
+    ----------
+    model : SystematicsModel
+    inputs : SystematicsInputs
+    mask : array_like of bool, optional
+        True where an exposure is not fitted.
+
+    Returns
+    -------
+    (params, limits)
+        ``model.shape_params()`` with the release grids held within their
+        limits, and the limits (qualified names to (lowest, highest), seconds)
+        for :func:`~lightledger.pipeline.shapesearch.search_shapes`.
+    """
+    limits = {}
+    held = set()
+    for comp in model.components:
+        if isinstance(comp, TrapRamp):
+            limits.update(comp.limits(inputs, mask))
+            held |= {f"{comp.label}.release{p}" for p in range(comp.populations)}
+    params = []
+    for name, sp in model.shape_params():
+        if name in limits and name in held:
+            low, high = limits[name]
+            grid = np.unique(np.clip(np.asarray(sp.grid, float), low, high))
+            sp = replace(sp, grid=tuple(float(x) for x in grid))
+        params.append((name, sp))
+    return tuple(params), limits
 
 
 def _band_parts(inputs, rate, label):

@@ -34,6 +34,7 @@ import numpy as np
 
 from .diagnostics import BinnedRms, binned_rms
 from .argchecks import vector as _vector
+from .components import trap_limits
 from .errors import ParameterError
 from .eventfit import DetrendResult, fit_event, with_shapes
 from .eventshapes import eclipse_template, phase_curve_basis, transit_template
@@ -93,12 +94,9 @@ def fit_light_curve(inputs, flux, variance, template, model, *, mask=None, **eve
                          basis_derivatives=d.derivatives if derivatives else None,
                          **event_options)
 
-    params = model.shape_params()
     limits = ramp_limits(inputs, model, mask, (OrbitRamp,))
-    for comp in model.components:
-        if hasattr(comp, "limits"):          # the charge-trapping ramp's time scales
-            own = comp.limits(inputs, mask)
-            limits.update(own)
+    params, own = trap_limits(model, inputs, mask)     # the charge-trapping ramp's time scales
+    limits.update(own)
     search = search_shapes(evaluate, params, limits=limits)
     result = search.result
     if not params:

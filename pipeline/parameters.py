@@ -277,7 +277,7 @@ STAGES = {
               "orbit; 0 = found from the intervals (the break between the cadence and the "
               "occultation gaps, with a warning when it is ambiguous)", minimum=0.0),
     )),
-    "detrend": StageSpec("detrend", "19", "light curves divided by a systematics model", (
+    "detrend": StageSpec("detrend", "20", "light curves divided by a systematics model", (
         Param("models", (), "strs",
               "systematics models to fit, rank and marginalise over, each tokens joined by '+': "
               "visit0|visit1|visit2|visitexp, orbit0..orbit4, scan, ramp|ramp-first|ramp-shared, "

@@ -30,7 +30,7 @@ from scipy.optimize import minimize, minimize_scalar
 from .errors import ParameterError
 from .eventfit import fit_event, with_shapes
 from .fiterrors import linearise_fit
-from .components import TiedOrbitRamp, TrapRamp
+from .components import TiedOrbitRamp, trap_limits
 from .shapesearch import ramp_limits, search_shapes
 from .systematics import OrbitRamp
 from .transit import eclipse_flux, transit_flux
@@ -192,7 +192,6 @@ def fit_white(inputs, flux, variance, model, event, *, free=("t0",), mask=None, 
             raise ParameterError(f"free event parameters must be among {', '.join(GEOMETRY_PARAMS)}; "
                                  f"got {name!r}")
     current = dict(event)
-    params = model.shape_params()
     count = [0]
     templates = {}
 
@@ -216,10 +215,8 @@ def fit_white(inputs, flux, variance, model, event, *, free=("t0",), mask=None, 
 
     shapes, chi_prev = {}, np.inf
     limits = ramp_limits(inputs, model, mask, (OrbitRamp, TiedOrbitRamp))
-    for comp in model.components:
-        if isinstance(comp, TrapRamp):           # trap time scales: not tried outside them
-            own = comp.limits(inputs, mask)
-            limits.update(own)
+    params, own = trap_limits(model, inputs, mask)    # trap time scales: not tried outside them
+    limits.update(own)
     for _cycle in range(max(int(max_cycles), 1)):
         search = search_shapes(lambda values: fit(current, values), params, limits=limits)
         shapes = search.values

@@ -1,5 +1,7 @@
 """Tests of lightledger.pipeline.components and lightledger.pipeline.modelspec."""
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 
@@ -261,3 +263,49 @@ def test_white_parts_from_the_channels():
     np.testing.assert_allclose(shares, [100 / 250, 150 / 250])
     np.testing.assert_allclose(rates, rate[:, :2])
     assert white_parts(flux[:, :1], rate[:, :1]) is None
+
+
+def test_trap_release_grids_are_held_within_what_the_exposures_tell_apart():
+    # components.trap_limits moves the release grids' values outside TrapRamp.limits to
+    # the limits (release times from the 210 s interval between exposures, here);
+    # values inside, the fill grids (a fill time below the exposure's still shapes it,
+    # test above) and other shapes stay.
+    from lightledger.pipeline.components import trap_limits
+    inputs = _inputs()
+    comp = TrapRamp(reference_rate=300.0, populations=2)
+    model = SystematicsModel((VisitPolynomial(1), OrbitRamp(), comp))
+    params, limits = trap_limits(model, inputs)
+    assert limits == comp.limits(inputs)
+    grids = dict(params)
+    before = dict(model.shape_params())
+    for name in ("trap.release0", "trap.release1"):
+        low, high = limits[name]
+        g = np.asarray(grids[name].grid)
+        old = np.asarray(before[name].grid)
+        assert g.min() >= low * (1 - 1e-12) and g.max() <= high * (1 + 1e-12)
+        assert set(old[(old >= low) & (old <= high)]) <= set(g)
+    assert min(grids["trap.release0"].grid) == pytest.approx(210.0)
+    assert min(before["trap.release0"].grid) < 210.0
+    for name in ("trap.fill0", "trap.fill1", "ramp.tau"):
+        assert grids[name] == before[name]
+
+
+def test_a_trap_population_emptying_between_exposures_follows_the_rate():
+    # Trapping equations (Zhou et al. 2017): dn/dt = kappa f (1 - n) - n / tau.  With
+    # tau far below the 130 s gap between exposures the traps are empty at each
+    # exposure's start and reach their equilibrium within it, so the charge lost is a
+    # function of that exposure's rate alone: a 1 % dip of the rate (an event) gives
+    # the column the event's shape, which then trades with the depth.  A population
+    # that keeps its charge between exposures (tau at the 210 s interval and above)
+    # does not.
+    inputs = _inputs()
+    rate = 300.0 * (1 - 0.01 * transit_template(_transit(inputs.time)))
+    dimmed = replace(inputs, covariates={**inputs.covariates, "trap_rate": rate})
+    comp = TrapRamp(reference_rate=300.0, populations=1)
+
+    def corr(release):
+        col = comp.block(dimmed, {"fill0": 100.0, "release0": release}).columns[:, 0]
+        return abs(np.corrcoef(col, rate)[0, 1])
+
+    assert corr(1.0) > 0.999
+    assert corr(2000.0) < 0.9
