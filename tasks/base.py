@@ -53,8 +53,8 @@ from lightledger.pipeline.parameters import STAGE_ORDER, STAGES
 # ``from lightledger.tasks.base import NAME`` keeps working for each of them.
 from .entries import (ENTRY_NAME, MADE_SUFFIX, _entry_outputs, _stat_key,  # noqa: F401
                       made_record_path, product_digest, read_entry, read_made_record)
-from .foldertask import (FolderTask, _claim, _guarded, _record, guarded,  # noqa: F401
-                         remove_parts, supersede)
+from .foldertask import (PROGRESS, FolderTask, _claim, _guarded, _record,  # noqa: F401
+                         guarded, remove_parts, supersede)
 from .identities import (_DIGESTS, _MEMORY, _hash, _stage_facts, content_identity,  # noqa: F401
                          digest_cache, file_digest, profile_content, raw_files, raw_identity,
                          raw_identity_from_record, raw_identity_of, stage_dir, stage_facts,
@@ -237,44 +237,6 @@ class VisitTask(FolderTask, luigi.Task):
             STAGE_ORDER.index(self.stage) >= STAGE_ORDER.index(self.force_from)
 
     # -- progress, failure, entry -------------------------------------------------
-    def progress(self, done, total, what, *, part=None):
-        """Report progress to Luigi's scheduler and to the command line's bar of the stage.
-
-        A task that is its whole stage gives its own ``done`` of ``total``
-        steps; a chunk task gives ``part`` (its chunk number), the units it
-        has done and the stage's total units (see ``tasks/console.py``).
-        """
-        percent = 100.0 * done / max(total, 1)
-        try:
-            self.set_status_message(f"{what}: {done}/{total}")
-            self.set_progress_percentage(round(percent, 1))
-        except Exception:  # no scheduler attached (a task run by hand)
-            pass
-        reporter = PROGRESS.get("callback")
-        if reporter is not None:
-            reporter(self.stage, what, done, total, part)
-
-    def on_failure(self, exception):
-        """Record the reason and exit status for the command line, then let Luigi record its own.
-
-        A user's mistake or a failure of the machine is one line per problem
-        (see :func:`lightledger.tasks.problems.describe_failure`); a pipeline
-        error that names no file is prefixed with the visit and the task.
-        """
-        from .problems import describe_failure
-
-        status, text = describe_failure(exception, context=self._failure_context())
-        if status == 1:
-            text = text.replace("lightledger: internal error", f"lightledger: {self.task_family} "
-                                                                "failed: internal error", 1)
-        try:
-            folder = Path(self.config.notebook) / ".failures" / (self.run_id or "by-hand")
-            folder.mkdir(parents=True, exist_ok=True)
-            (folder / f"{self.task_id}.txt").write_text(f"{status}\n{text}\n", encoding="utf-8")
-        except Exception:
-            pass
-        return super().on_failure(exception)
-
     def task_seconds(self, paths):
         """Seconds the tasks that made ``paths`` ran (from their made-records)."""
         return float(sum(read_made_record(p).get("seconds", 0.0) for p in paths))
@@ -357,6 +319,3 @@ def user_name():
 
 _user = user_name
 
-
-#: Where the command line puts its progress reporter (one per process).
-PROGRESS = {}

@@ -22,7 +22,10 @@ from .digests import sha256_of
 from .entries import ENTRY_NAME, _stat_key, made_record_path, read_entry, read_made_record
 from .products import known_digest, part_pattern, write_json
 
-__all__ = ["FolderTask", "guarded", "supersede", "remove_parts"]
+__all__ = ["FolderTask", "guarded", "supersede", "remove_parts", "PROGRESS"]
+
+#: Where the command line puts its progress reporter (one per process).
+PROGRESS = {}
 
 
 class FolderTask:
@@ -35,8 +38,13 @@ class FolderTask:
     lock are held while it runs, leftover temporary files of the output are
     removed, a forced stage's old folder is moved aside first, the run
     returns at once when another reducer made the output meanwhile, and the
-    output's made-record is written after it.
+    output's made-record is written after it.  It reports progress
+    (:meth:`progress`) and records a failure's status and line for the
+    command line (:meth:`on_failure`, naming ``_failure_context()``).
     """
+
+    #: Whether an internal error's line names the task's family.
+    failure_names_task = True
 
     def __init_subclass__(cls, **kwargs):
         super().__init_subclass__(**kwargs)
@@ -67,6 +75,51 @@ class FolderTask:
         if path.name == ENTRY_NAME:
             return read_entry(path, self.stage) is not None
         return True
+
+    def progress(self, done, total, what, *, part=None):
+        """Report progress to Luigi's scheduler and to the command line's bar of the stage.
+
+        A task that is its whole stage gives its own ``done`` of ``total``
+        steps; a chunk task gives ``part`` (its chunk number), the units it
+        has done and the stage's total units (see ``tasks/console.py``).
+        """
+        percent = 100.0 * done / max(total, 1)
+        try:
+            self.set_status_message(f"{what}: {done}/{total}")
+            self.set_progress_percentage(round(percent, 1))
+        except Exception:  # no scheduler attached (a task run by hand)
+            pass
+        reporter = PROGRESS.get("callback")
+        if reporter is not None:
+            reporter(self.stage, what, done, total, part)
+
+    def on_failure(self, exception):
+        """Record the reason and exit status for the command line, then let Luigi record its own.
+
+        A user's mistake or a failure of the machine is one line per problem
+        (see :func:`lightledger.tasks.problems.describe_failure`); a pipeline
+        error that names no file is prefixed with ``_failure_context()`` (the
+        visit or programme and the stage).  The line goes to
+        ``NOTEBOOK/.failures/RUN/TASK_ID.txt`` (status, then text), which the
+        command line reads after the build.
+        """
+        from .problems import describe_failure
+
+        status, text = describe_failure(exception, context=self._failure_context())
+        if status == 1 and self.failure_names_task:
+            text = text.replace("lightledger: internal error", f"lightledger: {self.task_family} "
+                                                                "failed: internal error", 1)
+        try:
+            folder = Path(self.config.notebook) / ".failures" / (self.run_id or "by-hand")
+            folder.mkdir(parents=True, exist_ok=True)
+            (folder / f"{self.task_id}.txt").write_text(f"{status}\n{text}\n", encoding="utf-8")
+        except Exception:
+            pass
+        return super().on_failure(exception)
+
+    def _failure_context(self):
+        """What a failure's line names when the error names no file (the subclass says)."""
+        return f"{self.stage} stage"
 
     def check_identity(self):
         """Raise when the task's inputs no longer give its identity (default: nothing to check)."""

@@ -25,7 +25,7 @@ from lightledger.pipeline.errors import LightledgerError
 from lightledger.pipeline.parameters import STAGE_ORDER, STAGES
 
 from .applicability import not_applying
-from .base import (ENTRY_NAME, PROGRESS, FolderTask, product_digest,
+from .base import (ENTRY_NAME, FolderTask, product_digest,
                    settings_from_text, user_name, visit_config)
 from .products import Provenance, relative_input, write_json
 from .programmefile import (joint_facts, joint_identity, joint_params, load_programme,
@@ -151,28 +151,11 @@ class JointDetrend(FolderTask, luigi.Task):
     def final_product(self):
         return self.folder / "planet.fits"
 
-    def progress(self, done, total, what):
-        try:
-            self.set_status_message(f"{what}: {done}/{total}")
-            self.set_progress_percentage(round(100.0 * done / max(total, 1), 1))
-        except Exception:  # no scheduler attached
-            pass
-        reporter = PROGRESS.get("callback")
-        if reporter is not None:
-            reporter(self.stage, what, done, total)
+    # an internal error's line names the programme and the stage, not the task family
+    failure_names_task = False
 
-    def on_failure(self, exception):
-        """Record the reason and exit status for the command line (as the visits' tasks do)."""
-        from .problems import describe_failure
-
-        status, text = describe_failure(exception, context=f"{self.programme} (joint stage)")
-        try:
-            folder = Path(self.config.notebook) / ".failures" / (self.run_id or "by-hand")
-            folder.mkdir(parents=True, exist_ok=True)
-            (folder / f"{self.task_id}.txt").write_text(f"{status}\n{text}\n", encoding="utf-8")
-        except Exception:
-            pass
-        return super().on_failure(exception)
+    def _failure_context(self):
+        return f"{self.programme} (joint stage)"
 
     def run(self):
         from lightledger.pipeline.phasegrid import fit_phase_grid
