@@ -16,7 +16,7 @@ import numpy as np
 from numpy.polynomial import legendre
 from scipy import sparse
 
-from .ramps import masked_median
+from .maskedmedian import masked_median
 
 # --------------------------------------------------------------------------
 # profile smoothing kernels
@@ -53,7 +53,7 @@ def _median_smooth(y, w, window):
     """Running median along the last axis over pixels with ``w > 0``.
 
     The median of each window ignores the other pixels (as ``numpy.nanmedian``
-    would, with the same result) through :func:`.ramps.masked_median`, which
+    would, with the same result) through :func:`.maskedmedian.masked_median`, which
     sorts windows of up to 8 pixels by a comparator network: several times
     faster than ``nanmedian`` on the 7-pixel screening window.
     """

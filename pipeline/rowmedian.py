@@ -16,7 +16,7 @@ Batcher, K. E. 1968, AFIPS Spring Joint Computer Conference 32, 307,
 import numpy as np
 from scipy import ndimage
 
-from .ramps import _merge_network
+from .maskedmedian import _merge_network
 
 #: Widths up to this use the comparator network in :func:`_median_filter_rows`.
 _FILTER_NETWORK_MAX = 9

@@ -10,7 +10,7 @@ cosmic rays (see its Notes).
 import numpy as np
 
 from .errors import ParameterError
-from .ramps import masked_median
+from .maskedmedian import masked_median
 from .rowmedian import (_FILTER_NETWORK_MAX, _median9_triples, _median_filter_rows,
                         _network_median, _sort3)
 

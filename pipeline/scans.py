@@ -39,7 +39,7 @@ from . import mask as dq
 from .background import clipped_mean, estimate_background
 from .destripe import destripe as _destripe
 from .errors import ParameterError
-from .ramps import masked_median
+from .maskedmedian import masked_median
 # re-exported: the band finding and the row filter were split out of this module
 from .rowmedian import (_FILTER_CHUNK, _FILTER_NETWORK_MAX, _median5_flat,  # noqa: F401
                         _median9_flat, _median9_triples, _median_filter_rows, _sort3)

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .errors import AllMaskedError, ParameterError
-from .ramps import masked_median
+from .maskedmedian import masked_median
 from .sourcemask import _MAD_TO_SIGMA, _SCALE_SAMPLE
 
 __all__ = ["TraceMasks", "trace_source_masks"]
