@@ -358,6 +358,31 @@ def blank_figures():
     return _blank_figures
 
 
+#: The model grid of visits reduced by tests whose subject is not the grid (the notebook's
+#: bookkeeping, validation, scheduling): two models, so ranking and marginalising still run.
+#: The default scan grid is ~90 % of reducing a 12-exposure visit (16 s of 20 s with stand-in
+#: figures; 2 s with these two); the session's scan_visit and stare_visit, the science
+#: tests and tests/test_grid.py keep the default grids.
+SHORT_SCAN_GRID = ("visit1+scan+ramp", "visit1+orbit1+scan+ramp")
+
+
+def _short_grid(visit_toml, models=SHORT_SCAN_GRID):
+    """Give a rendered visit description a short detrend grid (in its [stages.detrend])."""
+    path = Path(visit_toml)
+    text = path.read_text(encoding="utf-8")
+    assert text.count("[stages.detrend]\n") == 1, f"{path}: no [stages.detrend] table"
+    listed = ", ".join(f'"{m}"' for m in models)
+    path.write_text(text.replace("[stages.detrend]\n", f"[stages.detrend]\nmodels = [{listed}]\n"),
+                    encoding="utf-8")
+    return path
+
+
+@pytest.fixture(scope="session")
+def short_grid():
+    """``short_grid(visit_toml, models=SHORT_SCAN_GRID)``: a rendered visit's short model grid."""
+    return _short_grid
+
+
 @contextlib.contextmanager
 def _blank_figures():
     from lightledger.tasks import figures

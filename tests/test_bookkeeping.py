@@ -29,10 +29,10 @@ N_EXPOSURES = 12
 
 
 @pytest.fixture(scope="module")
-def rendered(tmp_path_factory):
+def rendered(tmp_path_factory, short_grid):
     """A 12-exposure scan visit (one raw file per exposure), rendered once, never reduced."""
     root = tmp_path_factory.mktemp("bookkeeping") / "visit"
-    render("scan-transit", root, seed=7, n_exposures=N_EXPOSURES)
+    short_grid(render("scan-transit", root, seed=7, n_exposures=N_EXPOSURES))
     return root
 
 

@@ -155,7 +155,7 @@ def test_headers_only_pass_reads_no_data(raw_stare, tmp_path):
 # --------------------------------------------------------------------------------------------
 
 @pytest.fixture(scope="module")
-def troubled_visit(tmp_path_factory):
+def troubled_visit(tmp_path_factory, short_grid):
     """A 24-exposure scan visit with three unusable exposures and a free-text name, reduced.
 
     The ephemeris is moved by 1.2 event durations, so the model's transit misses the real
@@ -182,7 +182,7 @@ def troubled_visit(tmp_path_factory):
     text = text.replace(f'name = "{doc["visit"]["name"]}"', 'name = "Éclipse –\\tdamaged"', 1)
     text += '\n[exclude]\nchannels = [{channel = 2, reason = "a column of dead pixels"}]\n'
     visit.write_text(text)
-    return visit, damaged
+    return short_grid(visit), damaged
 
 
 @pytest.mark.slow

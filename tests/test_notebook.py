@@ -39,9 +39,9 @@ def _stage_folders(notebook, stage):
 
 
 @pytest.fixture(scope="module")
-def visit(tmp_path_factory, quick_figures):
+def visit(tmp_path_factory, quick_figures, short_grid):
     root = tmp_path_factory.mktemp("notebook-visit")
-    visit_toml = render("scan-transit", root, seed=3, n_exposures=24)
+    visit_toml = short_grid(render("scan-transit", root, seed=3, n_exposures=24))
     first = reduce_visit(visit_toml, workers=1)
     assert first.ok, first.messages
     return visit_toml, first

@@ -39,10 +39,14 @@ def _reduce(visit, **kwargs):
 
 
 @pytest.fixture(scope="module")
-def reduced(tmp_path_factory, quick_figures):
-    """A 12-exposure scan visit rendered and reduced once by one reducer (the reference)."""
+def reduced(tmp_path_factory, quick_figures, short_grid):
+    """A 12-exposure scan visit rendered and reduced once by one reducer (the reference).
+
+    Its detrend stage fits the short grid (tests/conftest.py): what is tested is the
+    notebook, whatever the stages compute.
+    """
     root = tmp_path_factory.mktemp("integrity")
-    visit = render("scan-transit", root / "visit", seed=11, n_exposures=N_EXPOSURES)
+    visit = short_grid(render("scan-transit", root / "visit", seed=11, n_exposures=N_EXPOSURES))
     shutil.copytree(root / "visit", root / "pristine")          # never reduced
     result = _reduce(visit)
     assert result.ok, result.messages
@@ -286,10 +290,11 @@ def test_a_killed_reducer_leaves_nothing_stuck(reduced, tmp_path):
     assert _current(notebook) == _current(visit.parent / "notebook")
 
 
-def test_rendering_again_reuses_every_product(reduced, tmp_path):
+def test_rendering_again_reuses_every_product(reduced, tmp_path, short_grid):
     visit, _ = reduced
     copy = _copy(visit.parent, tmp_path / "copy")
     render("scan-transit", copy.parent, seed=11, n_exposures=N_EXPOSURES)   # as `demo` does again
+    short_grid(copy)                                     # the description as the fixture made it
     again = _reduce(copy)
     assert again.ok and again.ran == []
     assert len(collect_entries(copy.parent / "notebook")) == 4

@@ -44,8 +44,8 @@ def _free_port():
 
 
 @pytest.mark.skipif(LUIGID is None, reason="luigid is neither beside the interpreter nor on PATH")
-def test_two_reducers_share_a_central_scheduler(tmp_path):
-    visit = render("scan-transit", tmp_path / "visit", seed=6, n_exposures=20)
+def test_two_reducers_share_a_central_scheduler(tmp_path, short_grid):
+    visit = short_grid(render("scan-transit", tmp_path / "visit", seed=6, n_exposures=20))
     port = _free_port()
     (tmp_path / "log").mkdir()
     daemon = subprocess.Popen([LUIGID, "--port", str(port), "--address", "127.0.0.1",
