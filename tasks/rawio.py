@@ -30,7 +30,6 @@ structure walk (:mod:`.fitsblocks`), one file's exposures
 (:mod:`.rawread`) live in their own modules and are re-exported here.
 """
 
-import hashlib
 import math
 from dataclasses import replace
 from pathlib import Path
@@ -40,6 +39,7 @@ from astropy.table import Table
 
 from lightledger.pipeline.errors import InputFileError
 
+from .digests import sha256_of  # noqa: F401  (the one file digest; rawio.sha256_of kept)
 # the FITS structure walk, one file's exposures and reading the reads, one module each,
 # re-exported here so that ``from lightledger.tasks.rawio import NAME`` keeps working
 from .fitsblocks import (_BITPIX, _MAX_HEADER_BLOCKS, BLOCK, HDUInfo, _card,  # noqa: F401
@@ -201,15 +201,6 @@ def inventory(raw_dir, profile, problems=None):
         return refs
     problems.extend(collected)
     return refs
-
-
-def sha256_of(path, block=1 << 20):
-    """Hex SHA-256 of a file's bytes."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(block), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
 
 
 def inventory_table(refs):
