@@ -189,8 +189,10 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         stripes.
     destripe_options : dict, optional
         Extra keyword options passed to ``destripe`` for staring exposures;
-        default ``{"method": "stream"}`` (``"median"`` gives row and column
-        medians; ``smoothing``, ``clip``, ``iterations``, ``min_pixels``).
+        default ``{"method": "stream", "smoothing": "gap"}`` (the stream
+        model, its smoothness measured at the rows it bridges across the
+        trace; ``"median"`` gives row and column medians; ``smoothing``,
+        ``clip``, ``iterations``, ``min_pixels``).
     detect_clipping : bool, optional
         Also drop, like saturated reads, reads that repeat their pixel's top
         value exactly (a clip; :func:`lightledger.pipeline.rawreads.clipped_reads`
@@ -296,7 +298,7 @@ def calibrate_exposure(reads_adu, read_times, *, bias_adu, dark_rate, flat,
         raw_bad = badref | ref_bad | ~np.all(np.isfinite(e), axis=0)
         dmask = trace_source_mask(np.nan_to_num(e[-1] - e[0]), rows=rows, mask=raw_bad, **mopts).mask
         smask = smask | dmask
-    dopts = {"method": "stream"}
+    dopts = {"method": "stream", "smoothing": "gap"}
     dopts.update(destripe_options or {})
 
     bopts = dict(background_options or {})

@@ -268,7 +268,7 @@ def _staring_block(raw, setup, *, bias_adu, dark_rate, flat, nonlinearity, bad_p
         smask = smask | dmask
     sat_any = np.zeros((n, ny, nx), bool) if saturated is None else np.any(saturated, axis=0)
     if setup.destripe == "differences":
-        dopts = {"method": "stream"}
+        dopts = {"method": "stream", "smoothing": "gap"}
         dopts.update(destripe_options or {})
         d = np.diff(e, axis=0)
         e[0] = 0.0

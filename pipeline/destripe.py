@@ -17,7 +17,10 @@ relative to the frame's level, so the background level is kept.
   with first differences, plus one offset per column (the same for every
   row), fitted jointly by back-fitting to the pixels outside the mask.  Rows
   crossed by the source are bridged from the unmasked pixels at their two
-  ends and from the rows before and after them.  Cost: one factorisation of
+  ends and from the rows before and after them; its smoothness comes from
+  the data, measured between neighbouring rows or (``smoothing="gap"``, the
+  calibrate stage's choice for stares) at the separation it bridges, which
+  suits 1/f noise.  Cost: one factorisation of
   the tridiagonal smoother matrix per fit (twice when outliers are
   rejected), reused by every frame and back-fitting pass, and one
   tridiagonal solve of length ny nx per frame and pass, O(n ny nx); about
@@ -34,7 +37,7 @@ from scipy.linalg.lapack import dpttrf as _pttrf, dpttrs as _pttrs
 from .errors import ParameterError
 from .ramps import masked_median
 
-__all__ = ["DestripeResult", "destripe", "stream_smoothing", "AXES", "METHODS"]
+__all__ = ["DestripeResult", "destripe", "stream_smoothing", "bridged_rows", "AXES", "METHODS"]
 
 #: Allowed values of ``axes`` in :func:`destripe`.
 AXES = ("rows", "columns", "both")
@@ -101,11 +104,17 @@ def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5, metho
         Minimum usable pixels per row or column.
     method : {"median", "stream"}
         See the module docstring for model and cost.
-    smoothing : float, optional
+    smoothing : float or "gap", optional
         ``"stream"``: weight of the squared first differences of the stream
         model, pixels**2 (the model follows the data on scales longer than
         about ``sqrt(smoothing)`` pixels along the stream).  Default: from
-        the data, :func:`stream_smoothing`.
+        the data, :func:`stream_smoothing` with the stream's step variance
+        measured between consecutive full rows; ``"gap"``: measured at the
+        separation the model bridges, the longest run of rows that are not
+        full plus one (:func:`bridged_rows`; at most the largest separation
+        with enough pairs of full rows).  ``"gap"`` suits 1/f read noise,
+        whose wander across many rows is smaller than a random walk fitted
+        between neighbouring rows says (see :func:`stream_smoothing`).
     clip : float or None
         ``"stream"``: rejection threshold, robust sigma (None = no rejection).
     iterations : int
@@ -120,7 +129,7 @@ def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5, metho
     ------
     ParameterError
         Unknown ``axes`` or ``method``, shapes that do not broadcast, or
-        ``smoothing <= 0``.
+        ``smoothing`` neither ``"gap"`` nor a number > 0.
 
     Notes
     -----
@@ -170,8 +179,9 @@ def destripe(frames, source_mask, *, axes="both", mask=None, min_pixels=5, metho
     except ValueError:
         raise ParameterError(f"source_mask and mask must broadcast to frames' shape {f.shape}") from None
     bad = bad | ~np.isfinite(f)
-    if smoothing is not None and not (np.isfinite(smoothing) and smoothing > 0):
-        raise ParameterError(f"smoothing must be a finite number > 0 pixels**2, or None; got {smoothing!r}")
+    if smoothing is not None and not (isinstance(smoothing, str) and smoothing == "gap") and not (
+            not isinstance(smoothing, str) and np.isfinite(smoothing) and smoothing > 0):
+        raise ParameterError(f"smoothing must be a finite number > 0 pixels**2, 'gap' or None; got {smoothing!r}")
     if int(iterations) < 1:
         raise ParameterError(f"iterations must be an integer >= 1; got {iterations!r}")
     if method == "stream":
@@ -244,7 +254,7 @@ def _robust_var(x):
     return float((_MAD_TO_SIGMA * _median(np.abs(x - _median(x)))) ** 2)
 
 
-def stream_smoothing(frames, usable, *, min_fraction=0.9):
+def stream_smoothing(frames, usable, *, min_fraction=0.9, lag=1, min_pairs=20):
     """Smoothing weight of the stream model from the data: white variance over step variance.
 
     Mask contract: only pixels where ``usable`` is True enter; the inputs are
@@ -258,6 +268,13 @@ def stream_smoothing(frames, usable, *, min_fraction=0.9):
         True = pixel may be used.
     min_fraction : float
         Rows with at least this fraction of usable pixels count as full rows.
+    lag : int
+        Largest separation of the two full rows whose means are compared,
+        rows (>= 1): the step variance is measured at the largest separation
+        ``k <= lag`` with at least ``min_pairs`` differences over the frames
+        (``k = 1``, consecutive rows, when none has).
+    min_pairs : int
+        Differences needed at a separation ``k > 1``.
 
     Returns
     -------
@@ -269,12 +286,19 @@ def stream_smoothing(frames, usable, *, min_fraction=0.9):
     -----
     The white variance is ``sigma**2 = var(F[y, x+1] - F[y, x]) / 2`` over
     usable neighbours.  For a random walk of step variance ``q`` per pixel
-    the difference of the means of two consecutive rows of ``nx`` pixels has
-    variance ``q (2 nx**2 + 1) / (3 nx)``, plus ``sigma**2 (1 / n_1 + 1 /
-    n_2)`` from the white noise of the two means (derived by summing the
-    walk's steps with their weights); column offsets cancel in the
-    difference.  Both variances are robust, (1.4826 MAD)**2 (common
-    practice).
+    the difference of the means of two rows of ``nx`` pixels ``k`` rows apart
+    has variance ``q ((k - 1) nx + (2 nx**2 + 1) / (3 nx))``, plus
+    ``sigma**2 (1 / n_1 + 1 / n_2)`` from the white noise of the two means
+    (derived by summing the walk's steps with their weights); column offsets
+    cancel in the difference.  Both variances are robust, (1.4826 MAD)**2
+    (common practice).
+
+    Read noise of 1/f (pink) spectrum is not a random walk: its variance
+    over a separation grows about as the logarithm of the separation, not
+    linearly, so ``q`` measured between consecutive rows overstates how far
+    the stream wanders across several rows.  ``lag`` measures ``q`` at the
+    scale the smoother has to bridge (see ``smoothing="gap"`` of
+    :func:`destripe`); for a random walk every ``k`` gives the same ``q``.
     """
     f = np.asarray(frames, dtype=float)
     u = np.asarray(usable, dtype=bool)
@@ -298,15 +322,42 @@ def stream_smoothing(frames, usable, *, min_fraction=0.9):
     fallback = (0.5 * nx) ** 2
     if consec.size < 3 or s2 <= 0:
         return float(fallback)
+    k, first = 1, consec
+    for sep in range(min(int(lag), ny - 1), 1, -1):
+        pairs = np.flatnonzero(full[:-sep] & full[sep:])
+        if n_fr * pairs.size >= min_pairs:
+            k, first = sep, pairs
+            break
     means = np.where(u, f, 0.0).sum(axis=2) / np.maximum(cnt, 1)     # (n_frames, ny)
-    dm = (means[:, consec + 1] - means[:, consec]).ravel()
-    white = s2 * float(np.mean(1.0 / cnt[consec] + 1.0 / cnt[consec + 1]))
+    dm = (means[:, first + k] - means[:, first]).ravel()
+    white = s2 * float(np.mean(1.0 / cnt[first] + 1.0 / cnt[first + k]))
     v = _robust_var(dm) - white
     n_tot = ny * nx
     if v <= 0:
         return float(n_tot) ** 2
-    q = v * 3.0 * nx / (2.0 * nx ** 2 + 1.0)
+    q = v / ((k - 1) * nx + (2.0 * nx ** 2 + 1.0) / (3.0 * nx))
     return float(np.clip(s2 / q, 1.0, float(n_tot) ** 2))
+
+
+def bridged_rows(usable, *, min_fraction=0.9):
+    """Longest run of consecutive rows that are not full, rows.
+
+    Parameters
+    ----------
+    usable : array_like of bool, shape (ny, nx)
+        True = pixel may be used.
+    min_fraction : float
+        Rows with at least this fraction of usable pixels count as full rows.
+
+    Returns
+    -------
+    int
+        0 when every row is full.
+    """
+    u = np.asarray(usable, dtype=bool)
+    part = np.concatenate([[0], (u.sum(axis=1) < min_fraction * u.shape[1]).astype(int), [0]])
+    edges = np.flatnonzero(np.diff(part))
+    return int((edges[1::2] - edges[::2]).max()) if edges.size else 0
 
 
 def _stream(f, bad, axes, min_pixels, smoothing, clip, iterations):
@@ -324,8 +375,14 @@ def _stream(f, bad, axes, min_pixels, smoothing, clip, iterations):
     y = np.where(usable, fr, 0.0)
     do_rows = axes in ("rows", "both")
     do_cols = axes in ("columns", "both")
-    lam = float(smoothing) if smoothing is not None else (
-        stream_smoothing(y, usable) if do_rows else float("nan"))
+    if not do_rows:
+        lam = float("nan")
+    elif smoothing is None:
+        lam = stream_smoothing(y, usable)
+    elif isinstance(smoothing, str):         # "gap"
+        lam = stream_smoothing(y, usable, lag=bridged_rows(usable) + 1)
+    else:
+        lam = float(smoothing)
 
     def fit(use):
         w = use.ravel().astype(float)

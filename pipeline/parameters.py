@@ -208,7 +208,7 @@ def _check_model(text):
 
 
 STAGES = {
-    "calibrate": StageSpec("calibrate", "5", "raw ramps to calibrated frames", (
+    "calibrate": StageSpec("calibrate", "6", "raw ramps to calibrated frames", (
         Param("ramp_method", "fit", "str",
               "staring ramps: 'fit' = weighted up-the-ramp slope, 'diff' = sum of read differences",
               choices=("fit", "diff")),
