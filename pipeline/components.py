@@ -20,6 +20,7 @@ not finite, which the fits leave out).  Inputs are not modified.
 """
 
 from dataclasses import dataclass, replace
+from functools import cached_property
 
 import numpy as np
 
@@ -63,7 +64,7 @@ class VisitExponential:
     refine: bool = False
     label: str = "visitexp"
 
-    @property
+    @cached_property             # validated once; the fits ask for it at every design
     def shapes(self):
         return (ShapeParam("tau", _positive_grid(self.tau_grid, "tau_grid"), refine=self.refine),)
 
@@ -96,7 +97,7 @@ class TiedOrbitRamp:
         if self.amplitudes not in ("shared", "first"):
             raise ParameterError(f"amplitudes must be 'shared' or 'first'; got {self.amplitudes!r}")
 
-    @property
+    @cached_property             # validated once; the fits ask for it at every design
     def shapes(self):
         return (ShapeParam("tau", _positive_grid(self.tau_grid, "tau_grid"), refine=self.refine),)
 
@@ -179,8 +180,8 @@ class TrapRamp:
     quoted fill times.  Derivatives: with respect to :math:`\\ln` fill,
     :math:`-\\partial/\\partial\\ln\\kappa`; with respect to :math:`\\ln\\tau`,
     as computed by :func:`~lightledger.pipeline.traps.trap_ramp_basis`.
-    Cost per evaluation: one pass over the exposures for 1 + 4 P parameter
-    sets at once.
+    Cost per evaluation: one pass over the exposures for 5 parameter sets at
+    once, the efficiencies' columns only.
     """
 
     reference_rate: float
@@ -199,7 +200,7 @@ class TrapRamp:
         if len(self.fill_grids) < self.populations or len(self.release_grids) < self.populations:
             raise ParameterError("fill_grids and release_grids need one grid per population")
 
-    @property
+    @cached_property             # validated once; the fits ask for it at every design
     def shapes(self):
         out = []
         for p in range(self.populations):
@@ -261,15 +262,15 @@ class TrapRamp:
         if np.any(order != np.arange(order.size)):
             raise ParameterError(f"{self.label}: exposure_start must be in time order")
         rates, shares = _band_parts(inputs, rate, self.label)
-        basis = trap_ramp_basis(rates, start, texp, kappa, release, orbit=orbit)
-        eta = 3 * np.arange(P)                 # the efficiency columns of each population
+        basis = trap_ramp_basis(rates, start, texp, kappa, release, orbit=orbit,
+                                efficiency_only=True)
         w = shares[:, :, None]                 # (n_exposures, n_parts, 1)
-        cols = np.sum(basis.columns[:, :, eta] * w, axis=1)
+        cols = np.sum(basis.columns * w, axis=1)
         names = tuple(f"{self.label}{p}" for p in range(P))
         derivs = []
         for p in range(P):
-            derivs.append(-np.sum(basis.derivatives[2 * p][:, :, eta] * w, axis=1))    # d / d ln(fill)
-            derivs.append(np.sum(basis.derivatives[2 * p + 1][:, :, eta] * w, axis=1))  # d / d ln(release)
+            derivs.append(-np.sum(basis.derivatives[2 * p] * w, axis=1))      # d / d ln(fill)
+            derivs.append(np.sum(basis.derivatives[2 * p + 1] * w, axis=1))   # d / d ln(release)
         return Block(cols, names, tuple(derivs))
 
 

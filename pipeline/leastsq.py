@@ -16,8 +16,10 @@ import numpy as np
 
 __all__ = ["weighted_lstsq", "gauss_newton_bilinear"]
 
+_EPS = float(np.finfo(float).eps)
 
-def weighted_lstsq(A, y, w):
+
+def weighted_lstsq(A, y, w, *, sw=None, covariance=True):
     """Weighted linear least squares by SVD; returns (coefficients, covariance).
 
     Parameters
@@ -28,11 +30,16 @@ def weighted_lstsq(A, y, w):
         Data.
     w : ndarray of float, shape (n_points,)
         Weights, inverse variances of ``y``.
+    sw : ndarray of float, shape (n_points,), optional
+        ``sqrt(w)``, when the caller already has it (a solve repeated with
+        the same weights).
+    covariance : bool, optional
+        False: the covariance is not computed (None is returned in its place).
 
     Returns
     -------
     coefficients : ndarray of float, shape (n_params,)
-    covariance : ndarray of float, shape (n_params, n_params)
+    covariance : ndarray of float, shape (n_params, n_params), or None
         :math:`(A^T W A)^{-1}` restricted to the resolved directions.
 
     Notes
@@ -49,14 +56,17 @@ def weighted_lstsq(A, y, w):
     directions and left out (minimum-norm solution in the scaled
     coordinates).
     """
-    sw = np.sqrt(w)
+    if sw is None:
+        sw = np.sqrt(w)
     Aw = A * sw[:, None]
-    norm = np.sqrt(np.sum(Aw * Aw, axis=0))
+    norm = np.sqrt((Aw * Aw).sum(axis=0))
     norm = np.where(norm > 0, norm, 1.0)
     U, sv, Vt = np.linalg.svd(Aw / norm, full_matrices=False)
-    keep = sv > max(Aw.shape) * np.finfo(float).eps * (sv[0] if sv.size else 0.0)
+    keep = sv > max(Aw.shape) * _EPS * (sv[0] if sv.size else 0.0)
     inv = np.where(keep, 1.0 / np.where(keep, sv, 1.0), 0.0)
     coef = (Vt.T @ (inv * (U.T @ (y * sw)))) / norm
+    if not covariance:
+        return coef, None
     cov = ((Vt.T * inv ** 2) @ Vt) / np.outer(norm, norm)
     return coef, cov
 
@@ -86,11 +96,12 @@ def gauss_newton_bilinear(fu, wu, Bu, Qu, Du, max_iter):
     derivatives are ``Du`` (shape (n_nonlinear, n_fit, n_basis)).
     """
     k, m = Bu.shape[1], Qu.shape[1]
-    p_lin, _ = weighted_lstsq(np.concatenate([Bu, Qu], axis=1), fu, wu)
+    sw = np.sqrt(wu)            # every solve below has the same weights
+    p_lin, _ = weighted_lstsq(np.concatenate([Bu, Qu], axis=1), fu, wu, sw=sw, covariance=False)
     a = p_lin[:k]
     S_u = Bu @ a
     wq = wu[:, None] * Qu * Qu
-    num, den = np.sum(wq * S_u[:, None], axis=0), np.sum(wq, axis=0)
+    num, den = (wq * S_u[:, None]).sum(axis=0), wq.sum(axis=0)
     with np.errstate(divide="ignore", invalid="ignore"):
         scale = np.where(den > 0, num / den, 0.0)
         c = np.where(scale != 0, p_lin[k:] / scale, 0.0)
@@ -99,23 +110,23 @@ def gauss_newton_bilinear(fu, wu, Bu, Qu, Du, max_iter):
         E_u = 1.0 + Qu @ c
         r = fu - S_u * E_u
         J = np.concatenate([Bu * E_u[:, None], S_u[:, None] * Qu], axis=1)
-        step, _ = weighted_lstsq(J, r, wu)
+        step, _ = weighted_lstsq(J, r, wu, sw=sw, covariance=False)
         # Step halving guards against an overshoot far from the minimum.
         lam = 1.0
-        chi_now = np.sum(wu * r * r)
+        chi_now = (wu * r * r).sum()
         for _h in range(30):
             a_try, c_try = a + lam * step[:k], c + lam * step[k:]
             r_try = fu - (Bu @ a_try) * (1.0 + Qu @ c_try)
-            if np.sum(wu * r_try * r_try) <= chi_now * (1 + 1e-15) + 1e-300:
+            if (wu * r_try * r_try).sum() <= chi_now * (1 + 1e-15) + 1e-300:
                 break
             lam *= 0.5
         a, c = a_try, c_try
-        size = np.max(np.abs(lam * step) / np.maximum(np.abs(np.append(a, c)), 1e-300))
-        if size < 1e-13 or np.max(np.abs(lam * step[k:])) < 1e-15:
+        size = (np.abs(lam * step) / np.maximum(np.abs(np.concatenate((a, c))), 1e-300)).max()
+        if size < 1e-13 or np.abs(lam * step[k:]).max() < 1e-15:
             break
     S_u = Bu @ a
     E_u = 1.0 + Qu @ c
     G = (Du @ a).T * E_u[:, None]          # d f / d theta_j
     J = np.concatenate([Bu * E_u[:, None], S_u[:, None] * Qu, G], axis=1)
-    _, cov = weighted_lstsq(J, np.zeros(fu.size), wu)
+    _, cov = weighted_lstsq(J, np.zeros(fu.size), wu, sw=sw)
     return a, c, cov[:k + m, :k + m]

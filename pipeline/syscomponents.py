@@ -11,6 +11,7 @@ Times are days; columns are dimensionless.  Inputs are not modified.
 """
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -94,7 +95,7 @@ class OrbitRamp:
     fit_tau: bool = False
     label: str = "ramp"
 
-    @property
+    @cached_property             # validated once; the fits ask for it at every design
     def shapes(self):
         grid = np.asarray(self.tau_grid, dtype=float).ravel()
         if grid.size < 1 or not np.all(np.isfinite(grid) & (grid > 0)):

@@ -279,7 +279,8 @@ def trap_history(rate, start, exposure_time, populations, *, initial=None, refil
                        recorded_fraction=1.0 - lost)
 
 
-def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *, orbit=None):
+def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *, orbit=None,
+                    efficiency_only=False):
     """The trapping ramp as columns linear in efficiencies, initial occupancies and refills.
 
     For fixed trap constants :math:`\\kappa_p = \\eta_p / E_{tot,p}` and release
@@ -310,6 +311,12 @@ def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *
     orbit : array_like of int, shape (n_exposures,), optional
         Orbit labels; a refill enters at the start of every orbit after the
         first.  Default: one orbit (the refill columns are then 0).
+    efficiency_only : bool, optional
+        Only the efficiencies' columns (``columns`` of shape (n_exposures,
+        n_series, n_populations), names ``"trap{p}_eta"``): a third of the
+        work, the same numbers as those columns of the full basis, laid out
+        in memory as numpy lays out that selection (``columns[..., 3 * p]``),
+        so that sums over series come out the same to the bit.
 
     Returns
     -------
@@ -343,53 +350,80 @@ def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *
                              f"one per population; got {release_times!r}")
     h = 1e-4
     n_pop = kappa.size
-    # Every parameter set at once (the one asked for, then each log-parameter
-    # stepped up and down): one pass over the exposures.
-    sets_k = np.repeat(kappa[None, :], 1 + 4 * n_pop, axis=0)
-    sets_t = np.repeat(tau[None, :], 1 + 4 * n_pop, axis=0)
-    for p in range(n_pop):
-        for which in (0, 1):
-            row = 1 + 4 * p + 2 * which
-            target = sets_k if which == 0 else sets_t
-            target[row, p] *= np.exp(h)
-            target[row + 1, p] *= np.exp(-h)
-    cols_all = _ramp_columns(f, texp, dark, new_orbit, sets_k, sets_t)
+    # Every parameter set at once (the one asked for, then every population's
+    # ln kappa stepped up and down, then its ln tau): one pass over the
+    # exposures.  The populations do not interact, so one set can step all of
+    # them, each population's columns answering to its own step only.
+    sets_k = np.repeat(kappa[None, :], 5, axis=0)
+    sets_t = np.repeat(tau[None, :], 5, axis=0)
+    sets_k[1] *= np.exp(h)
+    sets_k[2] *= np.exp(-h)
+    sets_t[3] *= np.exp(h)
+    sets_t[4] *= np.exp(-h)
+    kinds = ("eta",) if efficiency_only else ("eta", "initial", "refill")
+    u = len(kinds)
+    cols_all = _ramp_columns(f, texp, dark, new_orbit, sets_k, sets_t, units=u)
     cols = cols_all[0]
-    derivs = [(cols_all[1 + 2 * j] - cols_all[2 + 2 * j]) / (2 * h) for j in range(2 * n_pop)]
-    names = tuple(f"trap{p}_{kind}" for p in range(kappa.size)
-                  for kind in ("eta", "initial", "refill"))
-    return TrapRampBasis(columns=cols, derivatives=np.stack(derivs), names=names)
+    if efficiency_only:     # the memory order of cols: population by population
+        derivs = np.zeros((2 * n_pop, n_pop, t.size, f.shape[1])).transpose(0, 2, 3, 1)
+    else:
+        derivs = np.zeros((2 * n_pop,) + cols.shape)
+    for which in (0, 1):                    # ln kappa, ln tau
+        step = (cols_all[1 + 2 * which] - cols_all[2 + 2 * which]) / (2 * h)
+        for p in range(n_pop):
+            own = slice(u * p, u * (p + 1))
+            derivs[2 * p + which][..., own] = step[..., own]
+    names = tuple(f"trap{p}_{kind}" for p in range(kappa.size) for kind in kinds)
+    return TrapRampBasis(columns=cols, derivatives=derivs, names=names)
 
 
-def _ramp_columns(f, texp, dark, new_orbit, kappa, tau):
+def _ramp_columns(f, texp, dark, new_orbit, kappa, tau, units=3):
     """Lost fraction per unit amplitude for parameter sets ``kappa``, ``tau`` of shape
-    (n_sets, n_pop); returns shape (n_sets, n_exposures, n_series, 3 n_pop)."""
+    (n_sets, n_pop); returns shape (n_sets, n_exposures, n_series, units * n_pop).
+
+    ``units`` 3: the columns of (eta, initial, refill) per population; 1: the
+    efficiency's alone (the same numbers: the three are independent
+    superposed recursions).  The factors that do not depend on the occupancy
+    (fill rate, decay over the exposure, equilibrium occupancy, decay in the
+    dark) are computed for every exposure at once; the loop over exposures
+    then holds four array operations on the state, with the arithmetic of
+    each step unchanged (the same numbers to the bit).
+    """
     n, m = f.shape
     n_sets, n_pop = kappa.shape
-    k = kappa[:, :, None, None]
-    tp = tau[:, :, None, None]
-    # State: occupancy per unit (eta, initial, refill), shape (n_sets, n_pop, 3, m).
-    E = np.zeros((n_sets, n_pop, 3, m))
-    E[:, :, 1] = 1.0
-    unit_eta = np.zeros((1, 1, 3, 1))
+    k = kappa[None, :, :, None, None]
+    tp = tau[None, :, :, None, None]
+    fi = f[:, None, None, None, :]                          # (n, 1, 1, 1, m)
+    c = k * fi + 1.0 / tp                                   # (n, S, P, 1, m)
+    a = np.exp(-c * texp[:, None, None, None, None])
+    kept = 1.0 - a                                          # share of the gap closed in an exposure
+    unit_eta = np.zeros((1, 1, units, 1))
     unit_eta[0, 0, 0, 0] = 1.0
-    unit_refill = np.zeros((1, 1, 3, 1))
-    unit_refill[0, 0, 2, 0] = 1.0
-    release = np.exp(-dark[None, None, None, :, None] / tp[..., None])   # (S, P, 1, n-1, 1)
-    trapped = np.empty((n, n_sets, n_pop, 3, m))
+    target = unit_eta * fi / c                              # (n, S, P, units, m)
+    release = np.exp(-dark[:, None, None, None, None] / tp)  # (n-1, S, P, 1, 1)
+    # State: occupancy per unit amplitude, shape (n_sets, n_pop, units, m).
+    E = np.zeros((n_sets, n_pop, units, m))
+    if units > 1:
+        E[:, :, 1] = 1.0
+    trapped = np.empty((n, n_sets, n_pop, units, m))
     for i in range(n):                      # time order
-        fi = f[i][None, None, None, :]
-        c = k * fi + 1.0 / tp                              # (S, P, 1, m)
-        a = np.exp(-c * texp[i])
-        trapped[i] = (1.0 - a) * (unit_eta * fi / c - E)
-        E = E + trapped[i]
+        step = trapped[i]
+        np.subtract(target[i], E, out=step)
+        np.multiply(kept[i], step, out=step)
+        E = E + step
         if i + 1 < n:
-            E = E * release[..., i, :]
-            if new_orbit[i]:
-                E = E + unit_refill
+            E *= release[i]
+            if new_orbit[i] and units > 2:
+                E[:, :, 2] += 1.0
     incident = f * texp[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
         lost = np.where(incident[:, None, None, None, :] > 0,
                         trapped / incident[:, None, None, None, :], 0.0)
-    # (n, S, P, 3, m) -> (S, n, m, P * 3)
-    return lost.transpose(1, 0, 4, 2, 3).reshape(n_sets, n, m, n_pop * 3)
+    if units == 1:
+        # (n, S, P, 1, m) -> (S, n, m, P), stored population by population (the
+        # memory order of numpy's selection of columns ``full[..., 3 * p]``), so
+        # that a sum over series adds in the same order as over the full basis's
+        # selected columns and gives the same bits.
+        return np.ascontiguousarray(lost[:, :, :, 0].transpose(1, 2, 0, 3)).transpose(0, 2, 3, 1)
+    # (n, S, P, units, m) -> (S, n, m, P * units)
+    return lost.transpose(1, 0, 4, 2, 3).reshape(n_sets, n, m, n_pop * units)
