@@ -105,27 +105,29 @@ def gauss_newton_bilinear(fu, wu, Bu, Qu, Du, max_iter):
     with np.errstate(divide="ignore", invalid="ignore"):
         scale = np.where(den > 0, num / den, 0.0)
         c = np.where(scale != 0, p_lin[k:] / scale, 0.0)
+    # The systematics, event factor, residual and chi-square of the current
+    # (a, c); an accepted step's trial values are those of the next iterate.
+    E_u = 1.0 + Qu @ c
+    r = fu - S_u * E_u
+    chi_now = (wu * r * r).sum()
     for _ in range(int(max_iter)):
-        S_u = Bu @ a
-        E_u = 1.0 + Qu @ c
-        r = fu - S_u * E_u
         J = np.concatenate([Bu * E_u[:, None], S_u[:, None] * Qu], axis=1)
         step, _ = weighted_lstsq(J, r, wu, sw=sw, covariance=False)
         # Step halving guards against an overshoot far from the minimum.
         lam = 1.0
-        chi_now = (wu * r * r).sum()
         for _h in range(30):
             a_try, c_try = a + lam * step[:k], c + lam * step[k:]
-            r_try = fu - (Bu @ a_try) * (1.0 + Qu @ c_try)
-            if (wu * r_try * r_try).sum() <= chi_now * (1 + 1e-15) + 1e-300:
+            S_try = Bu @ a_try
+            E_try = 1.0 + Qu @ c_try
+            r_try = fu - S_try * E_try
+            chi_try = (wu * r_try * r_try).sum()
+            if chi_try <= chi_now * (1 + 1e-15) + 1e-300:
                 break
             lam *= 0.5
-        a, c = a_try, c_try
+        a, c, S_u, E_u, r, chi_now = a_try, c_try, S_try, E_try, r_try, chi_try
         size = (np.abs(lam * step) / np.maximum(np.abs(np.concatenate((a, c))), 1e-300)).max()
         if size < 1e-13 or np.abs(lam * step[k:]).max() < 1e-15:
             break
-    S_u = Bu @ a
-    E_u = 1.0 + Qu @ c
     G = (Du @ a).T * E_u[:, None]          # d f / d theta_j
     J = np.concatenate([Bu * E_u[:, None], S_u[:, None] * Qu, G], axis=1)
     _, cov = weighted_lstsq(J, np.zeros(fu.size), wu, sw=sw)
