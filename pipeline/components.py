@@ -180,8 +180,9 @@ class TrapRamp:
     quoted fill times.  Derivatives: with respect to :math:`\\ln` fill,
     :math:`-\\partial/\\partial\\ln\\kappa`; with respect to :math:`\\ln\\tau`,
     as computed by :func:`~lightledger.pipeline.traps.trap_ramp_basis`.
-    Cost per evaluation: one pass over the exposures for 5 parameter sets at
-    once, the efficiencies' columns only.
+    Cost per evaluation: one pass over the exposures for the efficiencies'
+    columns; the derivatives (5 parameter sets in one pass) are made only when
+    a design's derivatives are read.
     """
 
     reference_rate: float
@@ -263,15 +264,21 @@ class TrapRamp:
             raise ParameterError(f"{self.label}: exposure_start must be in time order")
         rates, shares = _band_parts(inputs, rate, self.label)
         basis = trap_ramp_basis(rates, start, texp, kappa, release, orbit=orbit,
-                                efficiency_only=True)
+                                efficiency_only=True, derivatives=False)
         w = shares[:, :, None]                 # (n_exposures, n_parts, 1)
         cols = np.sum(basis.columns * w, axis=1)
         names = tuple(f"{self.label}{p}" for p in range(P))
-        derivs = []
-        for p in range(P):
-            derivs.append(-np.sum(basis.derivatives[2 * p] * w, axis=1))      # d / d ln(fill)
-            derivs.append(np.sum(basis.derivatives[2 * p + 1] * w, axis=1))   # d / d ln(release)
-        return Block(cols, names, tuple(derivs))
+
+        def derivatives():                     # made only when a design's derivatives are read
+            full = trap_ramp_basis(rates, start, texp, kappa, release, orbit=orbit,
+                                   efficiency_only=True)
+            derivs = []
+            for p in range(P):
+                derivs.append(-np.sum(full.derivatives[2 * p] * w, axis=1))      # d / d ln(fill)
+                derivs.append(np.sum(full.derivatives[2 * p + 1] * w, axis=1))   # d / d ln(release)
+            return tuple(derivs)
+
+        return Block(cols, names, derivatives)
 
 
 def trap_limits(model, inputs, mask=None):

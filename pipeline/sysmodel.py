@@ -13,6 +13,7 @@ Times are days; columns are dimensionless.  Inputs are not modified.
 """
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -114,12 +115,30 @@ class Block:
     derivatives : tuple of ndarray, each of shape (n_exposures, k)
         One per shape parameter of the component, in its ``shapes`` order:
         the derivative of ``columns`` with respect to the parameter (its
-        natural logarithm when ``ShapeParam.log``).
+        natural logarithm when ``ShapeParam.log``).  A component whose
+        derivatives cost more than its columns may give the constructor a
+        callable of no argument returning that tuple (one per shape
+        parameter) instead: it is called when ``derivatives`` or the design's
+        ``derivatives`` are first read, which a shape search, comparing
+        chi-squares, never does.
     """
 
     columns: np.ndarray
     names: tuple
-    derivatives: tuple = ()
+    _derivatives: object = ()
+
+    @cached_property
+    def derivatives(self):
+        d = self._derivatives
+        return tuple(d()) if callable(d) else d
+
+    @property
+    def n_derivatives(self):
+        """Number of derivatives, without making deferred ones."""
+        return None if callable(self._derivatives) else len(self._derivatives)
+
+    def __reduce__(self):               # pickled with its derivatives made
+        return (Block, (self.columns, self.names, self.derivatives))
 
 
 @dataclass(frozen=True)
@@ -133,15 +152,25 @@ class Design:
     names : tuple of str
     derivatives : ndarray of float, shape (n_shapes, n_exposures, n_columns)
         Derivative of ``columns`` with respect to each shape parameter (or its
-        logarithm), zero in the columns of other components.
+        logarithm), zero in the columns of other components; made when first
+        read (the design is constructed with the array or a callable
+        returning it).
     shape_names : tuple of str
         Qualified shape-parameter names, ``"LABEL.NAME"``.
     """
 
     columns: np.ndarray
     names: tuple
-    derivatives: np.ndarray
+    _derivatives: object
     shape_names: tuple
+
+    @cached_property
+    def derivatives(self):
+        d = self._derivatives
+        return d() if callable(d) else d
+
+    def __reduce__(self):               # pickled with its derivatives made
+        return (Design, (self.columns, self.names, self.derivatives, self.shape_names))
 
 
 @dataclass(frozen=True)
@@ -202,16 +231,23 @@ class SystematicsModel:
         columns = np.concatenate(cols, axis=1) if cols else np.zeros((n, 0))
         names = tuple(nm for b in blocks for nm in b.names)
         shape_names = []
-        derivs = []
-        start = 0
         for comp, blk in zip(owners, blocks):
-            k = blk.columns.shape[1]
-            for sp, d in zip(comp.shapes, blk.derivatives):
-                full = np.zeros_like(columns)
-                full[:, start:start + k] = d
-                derivs.append(full)
-                shape_names.append(f"{comp.label}.{sp.name}")
-            start += k
-        D = np.stack(derivs) if derivs else np.zeros((0,) + columns.shape)
-        return Design(columns, names, D, tuple(shape_names))
+            n_derivs = len(comp.shapes) if blk.n_derivatives is None else blk.n_derivatives
+            shape_names.extend(f"{comp.label}.{sp.name}" for sp in comp.shapes[:n_derivs])
+
+        def stacked():
+            derivs = []
+            start = 0
+            for comp, blk in zip(owners, blocks):
+                k = blk.columns.shape[1]
+                for sp, d in zip(comp.shapes, blk.derivatives):
+                    full = np.zeros_like(columns)
+                    full[:, start:start + k] = d
+                    derivs.append(full)
+                start += k
+            return np.stack(derivs) if derivs else np.zeros((0,) + columns.shape)
+
+        # the derivatives are stacked (and made, for a component that defers
+        # them) only when read: a shape search compares chi-squares alone
+        return Design(columns, names, stacked, tuple(shape_names))
 

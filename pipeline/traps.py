@@ -280,7 +280,7 @@ def trap_history(rate, start, exposure_time, populations, *, initial=None, refil
 
 
 def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *, orbit=None,
-                    efficiency_only=False):
+                    efficiency_only=False, derivatives=True):
     """The trapping ramp as columns linear in efficiencies, initial occupancies and refills.
 
     For fixed trap constants :math:`\\kappa_p = \\eta_p / E_{tot,p}` and release
@@ -317,6 +317,9 @@ def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *
         work, the same numbers as those columns of the full basis, laid out
         in memory as numpy lays out that selection (``columns[..., 3 * p]``),
         so that sums over series come out the same to the bit.
+    derivatives : bool, optional
+        False: the columns alone (``derivatives`` of shape (0, ...)), a
+        fifth of the arithmetic, the same numbers.
 
     Returns
     -------
@@ -354,16 +357,21 @@ def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *
     # ln kappa stepped up and down, then its ln tau): one pass over the
     # exposures.  The populations do not interact, so one set can step all of
     # them, each population's columns answering to its own step only.
-    sets_k = np.repeat(kappa[None, :], 5, axis=0)
-    sets_t = np.repeat(tau[None, :], 5, axis=0)
-    sets_k[1] *= np.exp(h)
-    sets_k[2] *= np.exp(-h)
-    sets_t[3] *= np.exp(h)
-    sets_t[4] *= np.exp(-h)
+    n_sets = 5 if derivatives else 1
+    sets_k = np.repeat(kappa[None, :], n_sets, axis=0)
+    sets_t = np.repeat(tau[None, :], n_sets, axis=0)
+    if derivatives:
+        sets_k[1] *= np.exp(h)
+        sets_k[2] *= np.exp(-h)
+        sets_t[3] *= np.exp(h)
+        sets_t[4] *= np.exp(-h)
     kinds = ("eta",) if efficiency_only else ("eta", "initial", "refill")
     u = len(kinds)
+    names = tuple(f"trap{p}_{kind}" for p in range(kappa.size) for kind in kinds)
     cols_all = _ramp_columns(f, texp, dark, new_orbit, sets_k, sets_t, units=u)
     cols = cols_all[0]
+    if not derivatives:
+        return TrapRampBasis(columns=cols, derivatives=np.zeros((0,) + cols.shape), names=names)
     if efficiency_only:     # the memory order of cols: population by population
         derivs = np.zeros((2 * n_pop, n_pop, t.size, f.shape[1])).transpose(0, 2, 3, 1)
     else:
@@ -373,7 +381,6 @@ def trap_ramp_basis(rate, start, exposure_time, trap_constants, release_times, *
         for p in range(n_pop):
             own = slice(u * p, u * (p + 1))
             derivs[2 * p + which][..., own] = step[..., own]
-    names = tuple(f"trap{p}_{kind}" for p in range(kappa.size) for kind in kinds)
     return TrapRampBasis(columns=cols, derivatives=derivs, names=names)
 
 

@@ -71,6 +71,26 @@ def test_shape_derivatives_match_finite_differences(comp):
         np.testing.assert_allclose(d, fd, rtol=0, atol=1e-5 * max(np.abs(fd).max(), 1e-12))
 
 
+def test_deferred_trap_derivatives_are_made_when_read_and_pickled():
+    # The trap ramp defers its derivatives (a shape search reads only the
+    # columns): a design made from it gives the same derivatives as its
+    # block, stacked in the model's columns, and a pickled design (a fit sent
+    # between worker processes) carries them made.
+    import pickle
+    inputs = _inputs()
+    comp = TrapRamp(reference_rate=300.0, populations=2)
+    model = SystematicsModel((VisitPolynomial(1), comp))
+    shapes = {f"trap.{sp.name}": float(np.median(sp.grid)) for sp in comp.shapes}
+    design = model.design(inputs, shapes)
+    block = comp.block(inputs, {k.split(".")[1]: v for k, v in shapes.items()})
+    assert design.shape_names == tuple(shapes)
+    again = pickle.loads(pickle.dumps(design))
+    for d in (design.derivatives, again.derivatives):
+        assert d.shape == (4, inputs.n, 3)
+        np.testing.assert_array_equal(d[:, :, 0], 0.0)
+        np.testing.assert_array_equal(d[:, :, 1:], np.stack(block.derivatives))
+
+
 def test_tied_ramps_span_the_per_orbit_ramps():
     # One shared amplitude is the sum of the per-orbit columns; "first" splits off the
     # first orbit (Kreidberg et al. 2014 ramps, amplitudes tied between orbits).

@@ -104,6 +104,29 @@ def test_basis_reproduces_history_by_superposition():
     assert basis.names[:3] == ("trap0_eta", "trap0_initial", "trap0_refill")
 
 
+def test_efficiency_columns_alone_are_the_full_basis_columns():
+    # The cheaper forms a shape search uses: the efficiencies' columns alone,
+    # with or without derivatives, are those of the full basis to the bit, and
+    # reproduce the history of traps empty at the start and never refilled
+    # (Zhou et al. 2017 eqs. 1-3, superposition as above).
+    pops = [TrapPopulation(160.0, 0.008, 280.0), TrapPopulation(1500.0, 0.013, 16000.0)]
+    start = np.concatenate([o * 5760.0 + np.arange(8) * 100.0 for o in range(3)])
+    orbit = np.repeat(np.arange(3), 8)
+    rate = np.stack([np.full(start.size, 250.0), np.linspace(600, 580, start.size)], axis=1)
+    kappa, tau = [p.trap_constant for p in pops], [p.release_time for p in pops]
+    full = trap_ramp_basis(rate, start, 80.0, kappa, tau, orbit=orbit)
+    eta = trap_ramp_basis(rate, start, 80.0, kappa, tau, orbit=orbit, efficiency_only=True)
+    bare = trap_ramp_basis(rate, start, 80.0, kappa, tau, orbit=orbit, efficiency_only=True,
+                           derivatives=False)
+    assert eta.names == ("trap0_eta", "trap1_eta") and bare.derivatives.shape[0] == 0
+    np.testing.assert_array_equal(eta.columns, full.columns[:, :, [0, 3]])
+    np.testing.assert_array_equal(bare.columns, eta.columns)
+    np.testing.assert_array_equal(eta.derivatives, full.derivatives[:, :, :, [0, 3]])
+    hist = trap_history(rate, start, 80.0, pops, orbit=orbit)
+    np.testing.assert_allclose(1 - bare.columns @ np.array([0.008, 0.013]), hist.recorded_fraction,
+                               rtol=0, atol=1e-13)
+
+
 def test_basis_derivatives_match_finite_differences():
     # The log-derivatives against a wider finite difference (step 1e-3 in ln;
     # agreement to 1e-5 relative of the largest entry, the truncation error).
