@@ -20,8 +20,10 @@ Adding a component: write a frozen dataclass with a ``label`` (prefix of its
 column names), a ``shapes`` tuple of :class:`ShapeParam` (empty for a linear
 component) and a method ``block(inputs, shape)`` returning a :class:`Block`
 (columns, names and, for each shape parameter, the derivative of the columns
-with respect to it, or its logarithm when ``ShapeParam.log``).  Nothing else
-needs to change.
+with respect to it, or its logarithm when ``ShapeParam.log``; a component whose
+derivatives cost more than its columns may give a callable returning them,
+made only when a fit reads them, as the charge-trapping ramp does).  Nothing
+else needs to change.
 
 The code lives in three modules, re-exported here:
 :mod:`~lightledger.pipeline.sysbasis` (the basis columns),
