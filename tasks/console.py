@@ -1,8 +1,8 @@
 """What the command line shows while it works: one progress bar per stage.
 
-A stage runs as one task (``bin``, ``detrend``) or as many chunk tasks that
-may run in parallel worker processes (``calibrate``, ``extract``).  Every
-task reports to the same :class:`Progress`, which keeps one bar per stage:
+A stage runs as one task (``bin``, ``detrend``, a programme's ``joint``) or
+as many chunk tasks that may run in parallel worker processes (``calibrate``,
+``extract``).  Every task reports to the same :class:`Progress`, which keeps one bar per stage:
 
 * a task that is the whole stage reports ``(done, total)`` of its own steps;
 * a chunk task reports ``part`` (its chunk number), the units it has done
@@ -26,8 +26,8 @@ import time
 
 __all__ = ["Progress"]
 
-#: Stages that can have a bar, in the order they run.
-_STAGES = ("simulate", "calibrate", "extract", "bin", "detrend")
+#: Stages that can have a bar, in the order they run (a programme's joint fit last).
+_STAGES = ("simulate", "calibrate", "extract", "bin", "detrend", "joint")
 #: Parts (chunks) tracked per stage; chunk k counts in slot k modulo this.
 _PARTS = 4096
 _BAR = 24

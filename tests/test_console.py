@@ -59,6 +59,28 @@ def test_a_file_gets_whole_lines_only_at_start_end_and_intervals():
     assert "0/10" in lines[0] and "10/10" in lines[1]
 
 
+def test_a_programmes_joint_fit_has_its_bar(tmp_path):
+    # The joint fit (one full-orbit fit per model of its grid) is long work: its task's
+    # progress reports reach the command line's bars like a visit stage's (the rule that
+    # long work shows progress).
+    from types import SimpleNamespace
+
+    from lightledger.tasks import foldertask
+    from lightledger.tasks.joint import JointDetrend
+
+    out = io.StringIO()
+    bar = Progress(out, interval=3600.0)
+    task = JointDetrend(programme=str(tmp_path / "prog.toml"), chains="[]")
+    task.__dict__["_config"] = SimpleNamespace(notebook=tmp_path)
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setitem(foldertask.PROGRESS, "callback", bar)
+        for done in range(6):
+            task.progress(done, 5, "joint fit, visit1+orbit1+scan+ramp")
+    lines = out.getvalue().splitlines()
+    assert len(lines) == 2 and all(line.strip().startswith("joint [") for line in lines)
+    assert "0/5" in lines[0] and "5/5" in lines[1]
+
+
 def test_interruption_message_starts_its_own_line(monkeypatch, capsys):
     class StderrTerminal:
         def isatty(self):
