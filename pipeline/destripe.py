@@ -35,7 +35,7 @@ import numpy as np
 from scipy.linalg.lapack import dpttrf as _pttrf, dpttrs as _pttrs
 
 from .errors import ParameterError
-from .ramps import masked_median
+from .maskedmedian import masked_median
 
 __all__ = ["DestripeResult", "destripe", "stream_smoothing", "bridged_rows", "AXES", "METHODS"]
 
